@@ -1,0 +1,6 @@
+//! weighbridge: shortlists from screening predictions with a false discovery rate
+//! guarantee when the labeled set and the pool differ (covariate shift).
+pub mod fdr;
+pub mod pvalue;
+pub mod random;
+pub mod score;

@@ -4,3 +4,5 @@ pub mod fdr;
 pub mod pvalue;
 pub mod random;
 pub mod score;
+pub mod select;
+pub mod table;

@@ -1,0 +1,533 @@
+//! The selection pipeline: scores -> weighted conformal p-values -> BH, BY or conditional
+//! calibration, for one labeled set and one pool held in memory.
+//!
+//! Data flows one way (design.md section 3): the caller has read and validated the tables
+//! and decided the weights; this module computes scores (`crate::score`), p-values
+//! (`crate::pvalue`) and the selection (`crate::fdr`), and collects the counts and
+//! warnings a summary needs. It does no I/O.
+
+use serde::Serialize;
+use thiserror::Error;
+
+use crate::fdr::{
+    self, benjamini_hochberg, benjamini_yekutieli, check_fdr, conditional_calibration, Pruning,
+    SelectionError,
+};
+use crate::pvalue::{pool_pvalues, CalibrationSet, PValueError, PValueKind};
+use crate::score::{labeled_scores, pool_scores, ScoreKind, Thresholds};
+
+/// Which multiple-testing procedure makes the shortlist.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Procedure {
+    /// Conditional calibration with pruning: finite-sample FDR control under covariate
+    /// shift with the true weights (design.md 2.4). The default.
+    Conditional,
+    /// Benjamini–Hochberg on the weighted p-values (no finite-sample proof when weights vary).
+    Bh,
+    /// Benjamini–Yekutieli: valid under any dependence, less powerful.
+    By,
+}
+
+impl Procedure {
+    /// The name used on the command line and in summaries.
+    pub fn name(self) -> &'static str {
+        match self {
+            Procedure::Conditional => "conditional",
+            Procedure::Bh => "bh",
+            Procedure::By => "by",
+        }
+    }
+
+    /// The p-value kind used when the user does not choose one.
+    pub fn default_pvalues(self) -> PValueKind {
+        match self {
+            Procedure::Conditional => PValueKind::Conservative,
+            Procedure::Bh | Procedure::By => PValueKind::Randomized,
+        }
+    }
+}
+
+/// What the user asked for; turned into [`SelectSettings`] by [`SelectOptions::check`].
+#[derive(Clone, Debug)]
+pub struct SelectOptions {
+    /// Target FDR level `q`, in (0, 1]. Defaults to 0.1.
+    pub fdr: f64,
+    /// Defaults to conditional calibration.
+    pub procedure: Procedure,
+    /// Pruning of conditional calibration; defaults to homogeneous.
+    pub pruning: Pruning,
+    /// p-value kind; `None` means the procedure's default.
+    pub pvalues: Option<PValueKind>,
+    /// Defaults to the clipped score.
+    pub score: ScoreKind,
+    /// Seed of every random draw (randomized p-values, pruning).
+    pub seed: u64,
+}
+
+impl Default for SelectOptions {
+    fn default() -> Self {
+        SelectOptions {
+            fdr: 0.1,
+            procedure: Procedure::Conditional,
+            pruning: Pruning::Homogeneous,
+            pvalues: None,
+            score: ScoreKind::Clipped,
+            seed: crate::random::DEFAULT_SEED,
+        }
+    }
+}
+
+/// Checked settings: every combination here is valid.
+#[derive(Clone, Debug, Serialize)]
+pub struct SelectSettings {
+    pub fdr: f64,
+    pub procedure: Procedure,
+    /// Only for conditional calibration.
+    pub pruning: Option<Pruning>,
+    pub pvalues: PValueKind,
+    pub score: ScoreKind,
+    pub seed: u64,
+}
+
+/// Why a selection cannot be run.
+#[derive(Debug, Error, PartialEq)]
+#[non_exhaustive]
+pub enum SelectError {
+    /// The FDR level is not in (0, 1].
+    #[error("the FDR level must be in (0, 1], got {0}")]
+    FdrOutOfRange(f64),
+    /// Conditional calibration was asked for with randomized p-values.
+    #[error(
+        "conditional calibration needs conservative p-values: its FDR guarantee rests on \
+         them (a null unit's recomputed count must equal its oracle version whenever it is \
+         selected). Drop --pvalues randomized, or use --procedure bh"
+    )]
+    ConditionalNeedsConservative,
+    /// Lengths of the inputs disagree.
+    #[error("{what}: expected {expected} values, got {got}")]
+    LengthMismatch {
+        what: &'static str,
+        expected: usize,
+        got: usize,
+    },
+    /// The pool is empty.
+    #[error("the pool has no units")]
+    EmptyPool,
+    /// No pool unit could be selected at this level whatever its outcome.
+    #[error(
+        "no pool unit can ever be selected at FDR level {fdr}: the smallest possible p-value \
+         is {smallest_floor:.4} (a unit's p-value is at least w_j / (W + w_j); with equal \
+         weights 1 / (n + 1) for n = {n_labeled} labeled units). Use a larger labeled set \
+         or a higher --fdr"
+    )]
+    LabeledSetTooSmall {
+        fdr: f64,
+        n_labeled: usize,
+        smallest_floor: f64,
+    },
+    /// A score, weight or p-value was rejected.
+    #[error(transparent)]
+    Selection(#[from] SelectionError),
+}
+
+impl From<PValueError> for SelectError {
+    fn from(e: PValueError) -> Self {
+        SelectError::Selection(SelectionError::PValue(e))
+    }
+}
+
+impl SelectOptions {
+    /// Validate the options.
+    ///
+    /// # Errors
+    /// `fdr` outside (0, 1]; conditional calibration with randomized p-values.
+    pub fn check(&self) -> Result<SelectSettings, SelectError> {
+        check_fdr(self.fdr).map_err(|_| SelectError::FdrOutOfRange(self.fdr))?;
+        let pvalues = self
+            .pvalues
+            .unwrap_or_else(|| self.procedure.default_pvalues());
+        if self.procedure == Procedure::Conditional && pvalues == PValueKind::Randomized {
+            return Err(SelectError::ConditionalNeedsConservative);
+        }
+        Ok(SelectSettings {
+            fdr: self.fdr,
+            procedure: self.procedure,
+            pruning: (self.procedure == Procedure::Conditional).then_some(self.pruning),
+            pvalues,
+            score: self.score,
+            seed: self.seed,
+        })
+    }
+}
+
+/// The labeled side of a selection, borrowed from the caller's tables.
+#[derive(Clone, Copy, Debug)]
+pub struct LabeledInput<'a> {
+    pub outcome: &'a [f64],
+    pub prediction: &'a [f64],
+    pub thresholds: Thresholds<'a>,
+    /// `None` = every weight 1 (no shift assumed).
+    pub weights: Option<&'a [f64]>,
+}
+
+/// The pool side of a selection.
+#[derive(Clone, Copy, Debug)]
+pub struct PoolInput<'a> {
+    pub prediction: &'a [f64],
+    pub thresholds: Thresholds<'a>,
+    /// `None` = every weight 1.
+    pub weights: Option<&'a [f64]>,
+}
+
+/// Per-unit results, in the pool's input order, and the counts a summary needs.
+#[derive(Clone, Debug)]
+pub struct SelectionOutcome {
+    pub settings: SelectSettings,
+    pub n_labeled: usize,
+    /// `W`.
+    pub total_labeled_weight: f64,
+    /// Imputed pool scores `Vh_j`.
+    pub scores: Vec<f64>,
+    /// Pool weights `w_j` (1 when none were given).
+    pub weights: Vec<f64>,
+    /// The p-values the procedure used.
+    pub p_values: Vec<f64>,
+    pub selected: Vec<bool>,
+    /// Conditional calibration only: `p_j <= q K_j / m`.
+    pub first_step: Option<Vec<bool>>,
+    /// Conditional calibration only: `K_j`.
+    pub conditional_count: Option<Vec<usize>>,
+    /// `w_j / (W + w_j) > q`: never selectable at this level.
+    pub unreachable: Vec<bool>,
+    pub selected_count: usize,
+    pub first_step_count: Option<usize>,
+    /// How many BH at level q selects on the same p-values.
+    pub bh_selected_count: usize,
+    pub unreachable_count: usize,
+    /// The shared draw of homogeneous pruning.
+    pub pruning_draw: Option<f64>,
+    /// True when the given weights are not all equal.
+    pub weights_vary: bool,
+    /// Kish effective sample size of the labeled weights, `(sum w)^2 / sum w^2`.
+    pub labeled_ess: f64,
+    pub warnings: Vec<String>,
+}
+
+/// Kish (1965) effective sample size `(sum w)^2 / sum w^2`.
+///
+/// # Examples
+/// ```
+/// assert_eq!(weighbridge::select::kish_ess(&[1.0, 1.0, 1.0]), 3.0);
+/// assert!((weighbridge::select::kish_ess(&[1.0, 3.0]) - 1.6).abs() < 1e-15);
+/// ```
+pub fn kish_ess(weights: &[f64]) -> f64 {
+    let sum: f64 = weights.iter().sum();
+    let sum_sq: f64 = weights.iter().map(|w| w * w).sum();
+    if sum_sq == 0.0 {
+        0.0
+    } else {
+        sum * sum / sum_sq
+    }
+}
+
+fn check_len(what: &'static str, expected: usize, got: usize) -> Result<(), SelectError> {
+    if expected == got {
+        Ok(())
+    } else {
+        Err(SelectError::LengthMismatch {
+            what,
+            expected,
+            got,
+        })
+    }
+}
+
+/// Run the selection.
+///
+/// # Errors
+/// Invalid options, mismatched lengths, bad weights, an empty pool, or a level at which no
+/// pool unit can ever be selected.
+pub fn run_selection(
+    options: &SelectOptions,
+    labeled: LabeledInput<'_>,
+    pool: PoolInput<'_>,
+) -> Result<SelectionOutcome, SelectError> {
+    let settings = options.check()?;
+    let n = labeled.outcome.len();
+    let m = pool.prediction.len();
+    check_len("labeled predictions", n, labeled.prediction.len())?;
+    if let Some(w) = labeled.weights {
+        check_len("labeled weights", n, w.len())?;
+    }
+    if let Some(w) = pool.weights {
+        check_len("pool weights", m, w.len())?;
+    }
+    if m == 0 {
+        return Err(SelectError::EmptyPool);
+    }
+    let q = settings.fdr;
+
+    let labeled_v = labeled_scores(
+        settings.score,
+        labeled.outcome,
+        labeled.prediction,
+        labeled.thresholds,
+    );
+    let pool_v = pool_scores(settings.score, pool.prediction, pool.thresholds);
+    let calibration = CalibrationSet::new(&labeled_v, labeled.weights)?;
+    let total = calibration.total_weight();
+
+    let unreachable = fdr::unreachable(total, pool.weights, m, q);
+    let unreachable_count = unreachable.iter().filter(|&&u| u).count();
+    if unreachable_count == m {
+        let smallest_floor = (0..m)
+            .map(|j| {
+                let w = pool.weights.map_or(1.0, |w| w[j]);
+                w / (total + w)
+            })
+            .fold(f64::INFINITY, f64::min);
+        return Err(SelectError::LabeledSetTooSmall {
+            fdr: q,
+            n_labeled: n,
+            smallest_floor,
+        });
+    }
+
+    let pvalues = pool_pvalues(
+        settings.pvalues,
+        &calibration,
+        &pool_v,
+        pool.weights,
+        settings.seed,
+    )?;
+    let p = pvalues.values();
+    let bh = benjamini_hochberg(&p, q)?;
+
+    let mut first_step = None;
+    let mut conditional_count = None;
+    let mut first_step_count = None;
+    let mut pruning_draw = None;
+    let selected = match settings.procedure {
+        Procedure::Bh => bh.selected.clone(),
+        Procedure::By => benjamini_yekutieli(&p, q)?.selected,
+        Procedure::Conditional => {
+            let pruning = settings.pruning.unwrap_or(Pruning::Homogeneous);
+            let cc = conditional_calibration(
+                &calibration,
+                &pool_v,
+                pool.weights,
+                &pvalues,
+                q,
+                pruning,
+                settings.seed,
+            )?;
+            first_step_count = Some(cc.first_step_count);
+            pruning_draw = cc.pruning_draw;
+            first_step = Some(cc.first_step);
+            conditional_count = Some(cc.conditional_count);
+            cc.selected
+        }
+    };
+    let selected_count = selected.iter().filter(|&&s| s).count();
+
+    let weights: Vec<f64> = pool.weights.map_or_else(|| vec![1.0; m], <[f64]>::to_vec);
+    let weights_vary = weights_vary(labeled.weights, pool.weights);
+    let labeled_ess = labeled.weights.map_or(n as f64, kish_ess);
+
+    let mut outcome = SelectionOutcome {
+        settings,
+        n_labeled: n,
+        total_labeled_weight: total,
+        scores: pool_v,
+        weights,
+        p_values: p,
+        selected,
+        first_step,
+        conditional_count,
+        unreachable,
+        selected_count,
+        first_step_count,
+        bh_selected_count: bh.count,
+        unreachable_count,
+        pruning_draw,
+        weights_vary,
+        labeled_ess,
+        warnings: vec![],
+    };
+    outcome.warnings = selection_warnings(&outcome);
+    Ok(outcome)
+}
+
+fn weights_vary(labeled: Option<&[f64]>, pool: Option<&[f64]>) -> bool {
+    let all: Vec<f64> = labeled
+        .into_iter()
+        .chain(pool)
+        .flat_map(|w| w.iter().copied())
+        .collect();
+    all.windows(2).any(|pair| pair[0] != pair[1])
+}
+
+/// Share of the labeled set below which the Kish ESS is flagged (common practice).
+pub const ESS_FRACTION_WARNING: f64 = 0.1;
+
+/// Plain-words warnings about the selection itself, most serious first. Shift
+/// diagnostics (AUC, k-hat, balance) add their own warnings when weights are fitted.
+fn selection_warnings(o: &SelectionOutcome) -> Vec<String> {
+    let m = o.scores.len();
+    let q = o.settings.fdr;
+    let mut warnings = Vec::new();
+    if o.unreachable_count > 0 {
+        warnings.push(format!(
+            "unreachable units: {} of {} pool units ({:.1}%) can never be selected at FDR {}: \
+             their p-value floor w_j / (W + w_j) exceeds {} because their weight is large \
+             relative to the labeled set's total weight. The labeled set does not cover the \
+             region of the pool they come from; assay a few of them to extend coverage.",
+            o.unreachable_count,
+            m,
+            100.0 * o.unreachable_count as f64 / m as f64,
+            q,
+            q
+        ));
+    }
+    let ess_fraction = o.labeled_ess / o.n_labeled as f64;
+    if o.weights_vary && ess_fraction < ESS_FRACTION_WARNING {
+        warnings.push(format!(
+            "effective sample size: the labeled weights are worth {:.1} equally weighted units \
+             ({:.1}% of {}), below the {:.0}% threshold (common practice). A few labeled units \
+             decide the p-values; the shortlist will be small and unstable.",
+            o.labeled_ess,
+            100.0 * ess_fraction,
+            o.n_labeled,
+            100.0 * ESS_FRACTION_WARNING
+        ));
+    }
+    if o.weights_vary && o.settings.procedure == Procedure::Bh {
+        warnings.push(
+            "BH on weighted p-values has no finite-sample FDR guarantee (the p-values need not \
+             be positively dependent); in simulation it exceeded the target by up to about 5% \
+             of q in adversarial settings. Use --procedure conditional for the guarantee."
+                .to_string(),
+        );
+    }
+    if o.settings.pruning == Some(Pruning::Deterministic) && o.weights_vary {
+        warnings.push(format!(
+            "deterministic pruning is nearly powerless once weights vary: {} units passed the \
+             first step but only {} survived pruning. Homogeneous pruning (the default) keeps \
+             the same guarantee with more power.",
+            o.first_step_count.unwrap_or(0),
+            o.selected_count
+        ));
+    }
+    if o.selected_count == 0 {
+        warnings.push(format!(
+            "empty shortlist: no pool unit was selected at FDR {q}. BH on the same p-values \
+             would select {}.",
+            o.bh_selected_count
+        ));
+    }
+    if o.settings.pruning == Some(Pruning::Homogeneous) && o.first_step_count.unwrap_or(0) > 0 {
+        warnings.push(format!(
+            "the shortlist depends on one random draw at its margin (homogeneous pruning, \
+             draw {:.6} from seed {}); the same seed reproduces it exactly.",
+            o.pruning_draw.unwrap_or(f64::NAN),
+            o.settings.seed
+        ));
+    }
+    warnings
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn small_case() -> (Vec<f64>, Vec<f64>, Vec<f64>) {
+        // 19 labeled units, all inactive (y = 0), predictions 0.1..0.9; pool predictions.
+        let y = vec![0.0; 19];
+        let mu: Vec<f64> = (1..=19).map(|i| i as f64 / 20.0).collect();
+        let pool = vec![0.99, 0.98, 0.2, 0.1];
+        (y, mu, pool)
+    }
+
+    #[test]
+    fn conditional_with_randomized_is_a_usage_error() {
+        let options = SelectOptions {
+            pvalues: Some(PValueKind::Randomized),
+            ..SelectOptions::default()
+        };
+        assert_eq!(
+            options.check().unwrap_err(),
+            SelectError::ConditionalNeedsConservative
+        );
+    }
+
+    #[test]
+    fn fdr_out_of_range() {
+        for bad in [0.0, 1.5, -1.0, f64::NAN] {
+            let options = SelectOptions {
+                fdr: bad,
+                ..SelectOptions::default()
+            };
+            assert!(matches!(
+                options.check(),
+                Err(SelectError::FdrOutOfRange(_))
+            ));
+        }
+    }
+
+    #[test]
+    fn labeled_set_too_small_for_level() {
+        // n = 4 labeled units: the smallest unweighted p-value is 1/5 > 0.1.
+        let options = SelectOptions::default();
+        let labeled = LabeledInput {
+            outcome: &[0.0; 4],
+            prediction: &[0.1, 0.2, 0.3, 0.4],
+            thresholds: Thresholds::Constant(0.5),
+            weights: None,
+        };
+        let pool = PoolInput {
+            prediction: &[0.9],
+            thresholds: Thresholds::Constant(0.5),
+            weights: None,
+        };
+        assert!(matches!(
+            run_selection(&options, labeled, pool),
+            Err(SelectError::LabeledSetTooSmall { n_labeled: 4, .. })
+        ));
+    }
+
+    #[test]
+    fn unweighted_binary_example_by_hand() {
+        // Clipped score, all labeled inactive: V_i = 0.5 - mu_i in [-0.45, 0.45].
+        // Pool scores 0.5 - 0.99 = -0.49 and -0.48 lie below every labeled score, so their
+        // conservative p-values are (0 + 1) / 20 = 0.05 (hand computation, design.md 2.2).
+        let (y, mu, pool) = small_case();
+        let options = SelectOptions {
+            fdr: 0.2,
+            procedure: Procedure::Bh,
+            pvalues: Some(PValueKind::Conservative),
+            ..SelectOptions::default()
+        };
+        let o = run_selection(
+            &options,
+            LabeledInput {
+                outcome: &y,
+                prediction: &mu,
+                thresholds: Thresholds::Constant(0.5),
+                weights: None,
+            },
+            PoolInput {
+                prediction: &pool,
+                thresholds: Thresholds::Constant(0.5),
+                weights: None,
+            },
+        )
+        .unwrap();
+        assert_eq!(o.p_values[0], 0.05);
+        assert_eq!(o.p_values[1], 0.05);
+        // BH at 0.2 with m = 4: p_(2) = 0.05 <= 0.1; p_(3) = 16/20 > 0.15.
+        assert_eq!(o.selected, vec![true, true, false, false]);
+        assert_eq!(o.unreachable_count, 0);
+        assert!(!o.weights_vary);
+    }
+}

@@ -1,8 +1,10 @@
 //! weighbridge: shortlists from screening predictions with a false discovery rate
 //! guarantee when the labeled set and the pool differ (covariate shift).
 pub mod fdr;
+pub mod plots;
 pub mod pvalue;
 pub mod random;
 pub mod score;
 pub mod select;
+pub mod shift;
 pub mod table;

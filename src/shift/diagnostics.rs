@@ -1,0 +1,789 @@
+//! Shift diagnostics (design.md 2.6): domain-classifier AUC (cross-validated, DeLong
+//! interval, permutation test), overlap of e(x), Kish effective sample size, Pareto k-hat
+//! (PSIS), standardized mean differences on the features and on their squares and products,
+//! and the count of pool units that can never be selected because of their weight.
+//!
+//! Each function names its source. Thresholds live in `warnings`.
+
+use linfa::ParamGuard;
+use ndarray::linalg::general_mat_mul;
+use ndarray::{Array2, ArrayView2, ShapeBuilder};
+use rand::seq::SliceRandom;
+use rand::{Rng, SeedableRng};
+use rand_chacha::ChaCha8Rng;
+use rayon::prelude::*;
+use serde::Serialize;
+
+use super::features::Design;
+use super::logistic::{fit_logistic, LogisticParams};
+use super::weights::{sample_sorted, FitRowChoice};
+use super::{FeatureView, ShiftError, ShiftOptions};
+
+/// Two-sided 95% standard normal quantile, Phi^-1(0.975).
+const Z_975: f64 = 1.959_963_984_540_054;
+
+/// Midranks (1-based, ties get the average rank) of `values`.
+fn midranks(values: &[f64]) -> Vec<f64> {
+    let mut order: Vec<usize> = (0..values.len()).collect();
+    order.sort_unstable_by(|&a, &b| values[a].total_cmp(&values[b]));
+    let mut ranks = vec![0.0; values.len()];
+    let mut i = 0;
+    while i < order.len() {
+        let mut j = i + 1;
+        while j < order.len() && values[order[j]] == values[order[i]] {
+            j += 1;
+        }
+        // Positions i..j (0-based) share the average of ranks i+1..=j.
+        let rank = (i + 1 + j) as f64 / 2.0;
+        for &o in &order[i..j] {
+            ranks[o] = rank;
+        }
+        i = j;
+    }
+    ranks
+}
+
+/// An AUC with its DeLong variance and 95% interval.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct AucEstimate {
+    /// P(score of a positive > score of a negative) + 0.5 P(equal).
+    pub auc: f64,
+    /// DeLong variance estimate.
+    pub variance: f64,
+    /// AUC -+ 1.96 sqrt(variance), clipped to [0, 1].
+    pub ci: [f64; 2],
+}
+
+/// Area under the ROC curve with ties counted one half (the Mann-Whitney U statistic
+/// divided by n0 n1), with the DeLong, DeLong & Clarke-Pearson (1988, Biometrics 44:837)
+/// variance computed by midranks as in Sun & Xu (2014, IEEE Signal Processing Letters
+/// 21:1389).
+///
+/// # Formula
+/// With midranks R over all scores, R+ within positives, R- within negatives:
+/// V10_i = (R_i - R+_i) / n0 for each positive, V01_j = 1 - (R_j - R-_j) / n1 for each
+/// negative; AUC = mean V10; Var = var(V10) / n1 + var(V01) / n0 (sample variances).
+///
+/// # Errors
+/// [`ShiftError::OneClass`] unless there are at least two positives and two negatives.
+///
+/// # Examples
+/// ```
+/// use weighbridge::shift::roc_auc;
+/// let est = roc_auc(&[0.1, 0.4, 0.35, 0.8], &[false, false, true, true]).unwrap();
+/// assert_eq!(est.auc, 0.75);
+/// ```
+pub fn roc_auc(scores: &[f64], positive: &[bool]) -> Result<AucEstimate, ShiftError> {
+    assert_eq!(scores.len(), positive.len());
+    let pos: Vec<f64> = scores.iter().zip(positive).filter(|p| *p.1).map(|p| *p.0).collect();
+    let neg: Vec<f64> = scores.iter().zip(positive).filter(|p| !*p.1).map(|p| *p.0).collect();
+    let (n1, n0) = (pos.len(), neg.len());
+    if n1 < 2 || n0 < 2 {
+        return Err(ShiftError::OneClass {
+            positives: n1,
+            negatives: n0,
+        });
+    }
+    let all = midranks(scores);
+    let rp = midranks(&pos);
+    let rn = midranks(&neg);
+    let (mut v10, mut v01) = (Vec::with_capacity(n1), Vec::with_capacity(n0));
+    let (mut ip, mut ineg) = (0, 0);
+    for (r, &is_pos) in all.iter().zip(positive) {
+        if is_pos {
+            v10.push((r - rp[ip]) / n0 as f64);
+            ip += 1;
+        } else {
+            v01.push(1.0 - (r - rn[ineg]) / n1 as f64);
+            ineg += 1;
+        }
+    }
+    let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
+    let var = |v: &[f64], m: f64| v.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (v.len() - 1) as f64;
+    let auc = mean(&v10);
+    let variance = var(&v10, auc) / n1 as f64 + var(&v01, mean(&v01)) / n0 as f64;
+    let half = Z_975 * variance.sqrt();
+    Ok(AucEstimate {
+        auc,
+        variance,
+        ci: [(auc - half).max(0.0), (auc + half).min(1.0)],
+    })
+}
+
+/// Cross-validated AUC and the permutation test, as reported.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct AucSummary {
+    /// AUC of the pooled out-of-fold scores (pool = positive class).
+    pub auc: f64,
+    /// 95% DeLong interval of `auc` (treats the out-of-fold scores as fixed).
+    pub ci: [f64; 2],
+    /// DeLong standard error.
+    pub standard_error: f64,
+    /// Permutation p-value (1 + #{AUC_perm >= AUC}) / (1 + B).
+    pub permutation_p: f64,
+    /// B.
+    pub permutations: usize,
+    /// Folds.
+    pub folds: usize,
+    /// Labeled rows in the cross-validation.
+    pub labeled_rows: usize,
+    /// Pool rows in the cross-validation.
+    pub pool_rows: usize,
+}
+
+/// K-fold cross-validated domain-classifier AUC with a DeLong interval and a permutation
+/// test of "no shift".
+///
+/// The classifier two-sample test of Lopez-Paz & Oquab (2017, ICLR, "Revisiting classifier
+/// two-sample tests") scores held-out rows with a classifier trained on other rows and
+/// compares the held-out statistic with its distribution under random relabeling. Here the
+/// statistic is the AUC of the pooled out-of-fold scores (stratified folds, same solver and
+/// penalty as the main fit, on at most `cv_max_rows` fitting rows) and the null distribution
+/// comes from B random relabelings of those scores (scores held fixed, labels permuted):
+/// p = (1 + #{AUC_b >= AUC}) / (1 + B) (Phipson & Smyth 2010). Holding the scores fixed
+/// is exact for one train/test split; with K folds each fold's model saw the other folds'
+/// labels, which under "no shift" makes the cross-validated AUC slightly below 0.5 (the test
+/// errs conservative).
+pub(crate) fn cross_validated_auc(
+    design: &Design,
+    labels: &[bool],
+    rows: &FitRowChoice,
+    n: usize,
+    m: usize,
+    options: &ShiftOptions,
+    rng: &mut ChaCha8Rng,
+) -> Result<AucSummary, ShiftError> {
+    let n0 = rows.labeled.len();
+    let n1 = rows.pool.len();
+    let (k0, k1) = match options.cv_max_rows() {
+        Some(cap) if n0 + n1 > cap => {
+            let half = cap / 2;
+            if n0 <= n1 {
+                let k0 = n0.min(half);
+                (k0, (cap - k0).min(n1))
+            } else {
+                let k1 = n1.min(half);
+                ((cap - k1).min(n0), k1)
+            }
+        }
+        _ => (n0, n1),
+    };
+    // Fit-matrix rows: class 0 at 0..n0, class 1 at n0..n0+n1.
+    let mut class0: Vec<usize> = sample_sorted(rng, n0, k0);
+    let mut class1: Vec<usize> = sample_sorted(rng, n1, k1).into_iter().map(|r| n0 + r).collect();
+    class0.shuffle(rng);
+    class1.shuffle(rng);
+    let folds = options.cv_folds();
+    let mut fold_of = vec![usize::MAX; n0 + n1];
+    for (pos, &r) in class0.iter().enumerate() {
+        fold_of[r] = pos % folds;
+    }
+    for (pos, &r) in class1.iter().enumerate() {
+        fold_of[r] = pos % folds;
+    }
+    let cv_rows: Vec<usize> = (0..n0 + n1).filter(|&r| fold_of[r] != usize::MAX).collect();
+    let s0 = n as f64 / k0 as f64;
+    let s1 = m as f64 / k1 as f64;
+    let x = design.fit_matrix();
+    let nf = design.n_fit_rows();
+    let cols = 1 + design.n_terms();
+    let params = LogisticParams(options.classifier().clone()).check()?;
+    let per_fold: Vec<Result<Vec<(usize, f64)>, ShiftError>> = (0..folds)
+        .into_par_iter()
+        .map(|f| {
+            let train: Vec<usize> = cv_rows.iter().copied().filter(|&r| fold_of[r] != f).collect();
+            let t = train.len();
+            let mut buf = vec![0.0; t * cols];
+            for j in 0..cols {
+                let src = &x[j * nf..(j + 1) * nf];
+                for (o, &r) in buf[j * t..(j + 1) * t].iter_mut().zip(&train) {
+                    *o = src[r];
+                }
+            }
+            let y: Vec<bool> = train.iter().map(|&r| labels[r]).collect();
+            let s: Vec<f64> = y.iter().map(|&p| if p { s1 } else { s0 }).collect();
+            let model = fit_logistic(&buf, t, &y, Some(&s), &params)?;
+            let beta = model.coefficients();
+            Ok(cv_rows
+                .iter()
+                .copied()
+                .filter(|&r| fold_of[r] == f)
+                .map(|r| (r, (0..cols).map(|j| beta[j] * x[j * nf + r]).sum::<f64>()))
+                .collect())
+        })
+        .collect();
+    let mut score = vec![0.0; n0 + n1];
+    for fold in per_fold {
+        for (r, s) in fold? {
+            score[r] = s;
+        }
+    }
+    let scores: Vec<f64> = cv_rows.iter().map(|&r| score[r]).collect();
+    let positive: Vec<bool> = cv_rows.iter().map(|&r| labels[r]).collect();
+    let est = roc_auc(&scores, &positive)?;
+    let permutation_p = permutation_p_value(&scores, &positive, options.permutations(), rng.gen());
+    Ok(AucSummary {
+        auc: est.auc,
+        ci: est.ci,
+        standard_error: est.variance.sqrt(),
+        permutation_p,
+        permutations: options.permutations(),
+        folds,
+        labeled_rows: k0,
+        pool_rows: k1,
+    })
+}
+
+/// Monte Carlo permutation p-value of the AUC for fixed `scores`: each of the B
+/// permutations draws which rows are positive uniformly at random (same count), and
+/// p = (1 + #{rank sum_b >= observed rank sum}) / (1 + B) (Phipson & Smyth 2010, Statistical
+/// Applications in Genetics and Molecular Biology 9:39). The AUC is an increasing function
+/// of the positives' rank sum, so comparing rank sums (half-integers, exact in floating
+/// point) compares AUCs without rounding ties.
+pub fn permutation_p_value(scores: &[f64], positive: &[bool], permutations: usize, seed: u64) -> f64 {
+    let ranks = midranks(scores);
+    let total_n = scores.len();
+    let n1 = positive.iter().filter(|p| **p).count();
+    let observed: f64 = ranks.iter().zip(positive).filter(|p| *p.1).map(|p| p.0).sum();
+    let total_rank = total_n as f64 * (total_n as f64 + 1.0) / 2.0;
+    // Draw the smaller class; the positives' rank sum follows.
+    let (draw, draws_positive) = if n1 <= total_n - n1 {
+        (n1, true)
+    } else {
+        (total_n - n1, false)
+    };
+    let exceed: usize = (0..permutations)
+        .into_par_iter()
+        .map(|b| {
+            let mut rng = ChaCha8Rng::seed_from_u64(seed);
+            rng.set_stream(b as u64);
+            let picked = rand::seq::index::sample(&mut rng, total_n, draw);
+            let sum: f64 = picked.iter().map(|i| ranks[i]).sum();
+            let positives_sum = if draws_positive { sum } else { total_rank - sum };
+            usize::from(positives_sum >= observed)
+        })
+        .sum();
+    (1 + exceed) as f64 / (1 + permutations) as f64
+}
+
+/// Kish (1965, Survey Sampling, section 11.7) effective sample size
+/// ESS = (sum w)^2 / sum w^2, computed on w / max w so that it cannot overflow.
+///
+/// # Errors
+/// [`ShiftError::InvalidWeight`] for a negative or non-finite weight;
+/// [`ShiftError::TooFewRows`] when all weights are zero or the slice is empty.
+///
+/// # Examples
+/// ```
+/// use weighbridge::shift::kish_effective_sample_size;
+/// assert_eq!(kish_effective_sample_size(&[1.0, 1.0, 1.0, 1.0]).unwrap(), 4.0);
+/// assert_eq!(kish_effective_sample_size(&[3.0, 1.0]).unwrap(), 16.0 / 10.0);
+/// ```
+pub fn kish_effective_sample_size(weights: &[f64]) -> Result<f64, ShiftError> {
+    if let Some(i) = weights.iter().position(|w| !(w.is_finite() && *w >= 0.0)) {
+        return Err(ShiftError::InvalidWeight {
+            index: i,
+            value: weights[i],
+        });
+    }
+    let max = weights.iter().fold(0.0f64, |a, &b| a.max(b));
+    if max == 0.0 {
+        return Err(ShiftError::TooFewRows {
+            set: "weights",
+            rows: weights.len(),
+            needed: 1,
+            reason: "at least one positive weight",
+        });
+    }
+    let (s, s2) = weights.iter().fold((0.0, 0.0), |(s, s2), w| {
+        let v = w / max;
+        (s + v, s2 + v * v)
+    });
+    Ok(s * s / s2)
+}
+
+/// Pareto-smoothed importance sampling shape estimate k-hat of the right tail of the
+/// weights, given their logarithms (Vehtari, Simpson, Gelman, Yao, Gabry 2024, JMLR 25:72,
+/// "Pareto smoothed importance sampling"), implemented to reproduce arviz 0.x
+/// `psislw(log_w, reff=1.0)`'s k.
+///
+/// # Formula
+/// x = log w - max log w; M = ceil(min(0.2 S, 3 sqrt(S))); cutoff = max(the (M+1)-th largest
+/// x, log of the smallest normal double); tail = x > cutoff (k = inf if 4 or fewer);
+/// y = exp(tail) - exp(cutoff), sorted; generalized Pareto fit by Zhang & Stephens (2009,
+/// Technometrics 51:316): m = 30 + floor(sqrt(n)) grid points
+/// b_j = 1 / y_n + (1 - sqrt(m / (j - 1/2))) / (3 y_(floor(n/4 + 1/2))), profile
+/// k_j = mean log1p(-b_j y), log-likelihood l_j = n (log(-b_j / k_j) - k_j - 1), weights
+/// 1 / sum_i exp(l_i - l_j) (those below 10 machine epsilons dropped, then normalized),
+/// b = posterior mean, k = mean log1p(-b y), then k <- (n k + 10 * 0.5) / (n + 10).
+///
+/// # Errors
+/// [`ShiftError::NonFinite`] for a NaN or +inf log-weight (a -inf log-weight, a zero
+/// weight, is allowed).
+///
+/// # Examples
+/// ```
+/// use weighbridge::shift::pareto_khat;
+/// // Four or fewer tail values: the shape is not estimable.
+/// assert!(pareto_khat(&[0.0, 0.1, 0.2, 0.3, 0.4]).unwrap().is_infinite());
+/// ```
+pub fn pareto_khat(log_weights: &[f64]) -> Result<f64, ShiftError> {
+    if let Some(i) = log_weights.iter().position(|v| v.is_nan() || *v == f64::INFINITY) {
+        return Err(ShiftError::NonFinite {
+            feature: "log weight".into(),
+            row: i,
+            value: log_weights[i],
+        });
+    }
+    let s = log_weights.len();
+    if s < 2 {
+        return Ok(f64::INFINITY);
+    }
+    let max = log_weights.iter().fold(f64::NEG_INFINITY, |a, &b| a.max(b));
+    let mut x: Vec<f64> = log_weights.iter().map(|v| v - max).collect();
+    x.sort_unstable_by(f64::total_cmp);
+    let sf = s as f64;
+    let tail_len = (0.2 * sf).min(3.0 * (sf / 1.0).sqrt()).ceil() as usize;
+    let cutoff_index = s.saturating_sub(tail_len + 1);
+    let cutoff = x[cutoff_index].max(f64::MIN_POSITIVE.ln());
+    let exp_cutoff = cutoff.exp();
+    let tail: Vec<f64> = x
+        .iter()
+        .filter(|&&v| v > cutoff)
+        .map(|v| v.exp() - exp_cutoff)
+        .collect();
+    if tail.len() <= 4 {
+        return Ok(f64::INFINITY);
+    }
+    Ok(generalized_pareto_shape(&tail))
+}
+
+/// Zhang & Stephens (2009) empirical-Bayes shape estimate with the weakly informative
+/// prior of arviz's `_gpdfit` (see [`pareto_khat`]); `sorted` ascending, all > 0.
+fn generalized_pareto_shape(sorted: &[f64]) -> f64 {
+    let n = sorted.len();
+    let nf = n as f64;
+    let m_est = 30 + (nf.sqrt()) as usize;
+    let quartile = sorted[(nf / 4.0 + 0.5) as usize - 1];
+    let largest = sorted[n - 1];
+    let b: Vec<f64> = (1..=m_est)
+        .map(|j| {
+            let v = 1.0 - (m_est as f64 / (j as f64 - 0.5)).sqrt();
+            v / (3.0 * quartile) + 1.0 / largest
+        })
+        .collect();
+    let mean_log1p = |bj: f64| sorted.iter().map(|y| (-bj * y).ln_1p()).sum::<f64>() / nf;
+    let k: Vec<f64> = b.iter().map(|&bj| mean_log1p(bj)).collect();
+    let len_scale: Vec<f64> = b
+        .iter()
+        .zip(&k)
+        .map(|(bj, kj)| nf * ((-(bj / kj)).ln() - kj - 1.0))
+        .collect();
+    let mut weights: Vec<f64> = len_scale
+        .iter()
+        .map(|lj| 1.0 / len_scale.iter().map(|li| (li - lj).exp()).sum::<f64>())
+        .collect();
+    let keep: Vec<bool> = weights.iter().map(|w| *w >= 10.0 * f64::EPSILON).collect();
+    let mut b_kept = Vec::with_capacity(m_est);
+    let mut w_kept = Vec::with_capacity(m_est);
+    for ((w, bj), k) in weights.drain(..).zip(&b).zip(&keep) {
+        if *k {
+            w_kept.push(w);
+            b_kept.push(*bj);
+        }
+    }
+    let total: f64 = w_kept.iter().sum();
+    let b_post: f64 = b_kept.iter().zip(&w_kept).map(|(bj, w)| bj * (w / total)).sum();
+    let k_post = mean_log1p(b_post);
+    (nf * k_post + 10.0 * 0.5) / (nf + 10.0)
+}
+
+/// The sample-size dependent k-hat threshold min(1 - 1 / log10(S), 0.7) (Vehtari et al.
+/// 2024, section 3.2.4, from memory): above it the weighted estimate is unreliable.
+pub fn khat_threshold(sample_size: usize) -> f64 {
+    (1.0 - 1.0 / (sample_size as f64).log10()).min(0.7)
+}
+
+/// Pool units whose weight alone keeps their conformal p-value above q:
+/// w_j / (W + w_j) > q (design.md 2.2, the p-value floor).
+pub fn unreachable_count(pool_weights: &[f64], calibration_total: f64, fdr: f64) -> usize {
+    pool_weights
+        .iter()
+        .filter(|&&w| w / (calibration_total + w) > fdr)
+        .count()
+}
+
+/// Overlap of the two sets on the classifier's probability scale.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Overlap {
+    /// Which probability is binned.
+    pub probability: String,
+    /// Bin edges on [0, 1] (bins + 1 values).
+    pub bin_edges: Vec<f64>,
+    /// Calibration rows per bin.
+    pub labeled_counts: Vec<usize>,
+    /// Pool rows per bin.
+    pub pool_counts: Vec<usize>,
+    /// Share of pool rows with balanced probability above 0.9.
+    pub pool_share_above_0_9: f64,
+    /// Share of pool rows with balanced probability above 0.95.
+    pub pool_share_above_0_95: f64,
+}
+
+/// Histograms of the balanced probability w / (1 + w) and the pool's share above 0.9 and
+/// 0.95 (cf. the 0.1 / 0.9 trimming rule of Crump, Hotz, Imbens & Mitnik 2009, Biometrika
+/// 96:187). The balanced probability is P(pool | x) as if both sets had equal size: with
+/// unequal sizes the raw e(x) sits near m / (n + m) for every row even without shift, so
+/// fixed cut-offs on it would measure the size ratio rather than the overlap.
+pub(crate) fn overlap(labeled_balanced: &[f64], pool_balanced: &[f64], bins: usize) -> Overlap {
+    let count = |values: &[f64]| {
+        let mut c = vec![0; bins];
+        for &v in values {
+            c[((v * bins as f64) as usize).min(bins - 1)] += 1;
+        }
+        c
+    };
+    let share = |t: f64| pool_balanced.iter().filter(|&&v| v > t).count() as f64 / pool_balanced.len() as f64;
+    Overlap {
+        probability: "w/(1+w): P(pool | x) at equal set sizes".into(),
+        bin_edges: (0..=bins).map(|i| i as f64 / bins as f64).collect(),
+        labeled_counts: count(labeled_balanced),
+        pool_counts: count(pool_balanced),
+        pool_share_above_0_9: share(0.9),
+        pool_share_above_0_95: share(0.95),
+    }
+}
+
+/// Balance of one feature between the labeled set and the pool.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct FeatureBalance {
+    /// Feature name (`x`, `x^2`, `x*y`).
+    pub feature: String,
+    /// SMD with unit weights on the labeled rows.
+    pub smd_unweighted: f64,
+    /// SMD with the labeled rows weighted by w.
+    pub smd_weighted: f64,
+}
+
+/// Weighted mean and variance with the reliability-weights correction
+/// S / (S^2 - sum w^2) (Austin & Stuart 2015, Statistics in Medicine 34:3661, section 4.1);
+/// with unit weights this is the usual n - 1 sample variance.
+fn weighted_mean_var(values: &[f64], weights: Option<&[f64]>) -> (f64, f64) {
+    let w = |i: usize| weights.map_or(1.0, |w| w[i]);
+    let (s, s2, sx) = values.iter().enumerate().fold((0.0, 0.0, 0.0), |(s, s2, sx), (i, v)| {
+        let wi = w(i);
+        (s + wi, s2 + wi * wi, sx + wi * v)
+    });
+    let mean = sx / s;
+    let ss: f64 = values.iter().enumerate().map(|(i, v)| w(i) * (v - mean) * (v - mean)).sum();
+    let denom = s * s - s2;
+    let var = if denom > 0.0 { s * ss / denom } else { 0.0 };
+    (mean, var)
+}
+
+fn smd_from(mean_pool: f64, var_pool: f64, mean_lab: f64, var_lab: f64) -> f64 {
+    let diff = mean_pool - mean_lab;
+    let pooled = ((var_pool + var_lab) / 2.0).sqrt();
+    if pooled > 0.0 {
+        diff / pooled
+    } else if diff == 0.0 {
+        0.0
+    } else {
+        diff.signum() * f64::INFINITY
+    }
+}
+
+/// Standardized mean difference of a continuous feature, pool minus labeled
+/// (Austin 2009, Statistics in Medicine 28:3083, equation for continuous covariates):
+///
+/// # Formula
+/// SMD = (mean_pool - mean_labeled) / sqrt((s_pool^2 + s_labeled^2) / 2),
+///
+/// with the labeled mean and variance weighted by `labeled_weights` when given (the weighted
+/// variance uses the reliability-weights correction of Austin & Stuart 2015), and the pool
+/// unweighted (it is the target). A zero pooled SD gives 0 for equal means and +-inf
+/// otherwise.
+///
+/// # Examples
+/// ```
+/// use weighbridge::shift::standardized_mean_difference;
+/// // Means 2 and 4, sample variances 1 and 1: SMD = 2.
+/// let smd = standardized_mean_difference(&[1.0, 2.0, 3.0], None, &[3.0, 4.0, 5.0]);
+/// assert!((smd - 2.0).abs() < 1e-12);
+/// ```
+pub fn standardized_mean_difference(labeled: &[f64], labeled_weights: Option<&[f64]>, pool: &[f64]) -> f64 {
+    let (ml, vl) = weighted_mean_var(labeled, labeled_weights);
+    let (mp, vp) = weighted_mean_var(pool, None);
+    smd_from(mp, vp, ml, vl)
+}
+
+/// SMD of every input feature, calibration rows (unweighted and weighted) against the pool.
+pub(crate) fn feature_balance(
+    labeled: FeatureView<'_>,
+    pool: FeatureView<'_>,
+    calibration: &[usize],
+    calibration_weights: &[f64],
+) -> Result<Vec<FeatureBalance>, ShiftError> {
+    Ok((0..labeled.n_features())
+        .into_par_iter()
+        .map(|f| {
+            let col = labeled.column(f);
+            let lab: Vec<f64> = calibration.iter().map(|&i| col[i]).collect();
+            let (mp, vp) = weighted_mean_var(pool.column(f), None);
+            let (mu, vu) = weighted_mean_var(&lab, None);
+            let (mw, vw) = weighted_mean_var(&lab, Some(calibration_weights));
+            FeatureBalance {
+                feature: labeled.names()[f].clone(),
+                smd_unweighted: smd_from(mp, vp, mu, vu),
+                smd_weighted: smd_from(mp, vp, mw, vw),
+            }
+        })
+        .collect())
+}
+
+/// Weighted balance on squares and pairwise products of the standardized inputs.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct Adequacy {
+    /// One entry per square `x^2` and per product `x*y` of kept inputs.
+    pub features: Vec<FeatureBalance>,
+    /// Largest |weighted SMD| among the squares (0 if none).
+    pub max_abs_weighted_squares: f64,
+    /// Largest |weighted SMD| among the products (0 if none).
+    pub max_abs_weighted_products: f64,
+    /// The feature with the largest |weighted SMD|, if any.
+    pub worst_feature: Option<String>,
+}
+
+/// Sums needed for the means and variances of all squares and products at once:
+/// S = sum w, S2 = sum w^2, M1 = sum w z z', M2 = sum w (z o z)(z o z)'.
+struct Moments {
+    s: f64,
+    s2: f64,
+    m1: Array2<f64>,
+    m2: Array2<f64>,
+}
+
+fn moments(
+    design: &Design,
+    view: FeatureView<'_>,
+    rows: Option<&[usize]>,
+    weights: Option<&[f64]>,
+) -> Moments {
+    const CHUNK: usize = 4096;
+    let k = design.n_kept();
+    let count = rows.map_or(view.n_rows(), <[usize]>::len);
+    let parts: Vec<Moments> = (0..count.div_ceil(CHUNK))
+        .into_par_iter()
+        .map(|c| {
+            let lo = c * CHUNK;
+            let len = CHUNK.min(count - lo);
+            let mut z = vec![0.0; len * k];
+            design.fill_base(view, len, |t| rows.map_or(lo + t, |r| r[lo + t]), &mut z);
+            let w: Vec<f64> = (0..len).map(|t| weights.map_or(1.0, |w| w[lo + t])).collect();
+            let z2: Vec<f64> = z.iter().map(|v| v * v).collect();
+            let scaled = |src: &[f64]| {
+                let mut out = src.to_vec();
+                for a in 0..k {
+                    for (o, wt) in out[a * len..(a + 1) * len].iter_mut().zip(&w) {
+                        *o *= wt;
+                    }
+                }
+                out
+            };
+            let zw = scaled(&z);
+            let z2w = scaled(&z2);
+            fn view2(b: &[f64], len: usize, k: usize) -> ArrayView2<'_, f64> {
+                ArrayView2::from_shape((len, k).strides((1, len)), b).expect("chunk fits")
+            }
+            let mut m1 = Array2::zeros((k, k));
+            let mut m2 = Array2::zeros((k, k));
+            general_mat_mul(1.0, &view2(&z, len, k).t(), &view2(&zw, len, k), 0.0, &mut m1);
+            general_mat_mul(1.0, &view2(&z2, len, k).t(), &view2(&z2w, len, k), 0.0, &mut m2);
+            Moments {
+                s: w.iter().sum(),
+                s2: w.iter().map(|v| v * v).sum(),
+                m1,
+                m2,
+            }
+        })
+        .collect();
+    let mut total = Moments {
+        s: 0.0,
+        s2: 0.0,
+        m1: Array2::zeros((k, k)),
+        m2: Array2::zeros((k, k)),
+    };
+    for p in parts {
+        total.s += p.s;
+        total.s2 += p.s2;
+        total.m1 += &p.m1;
+        total.m2 += &p.m2;
+    }
+    total
+}
+
+impl Moments {
+    /// Mean and (reliability-weights) variance of z_a z_b.
+    fn mean_var(&self, a: usize, b: usize) -> (f64, f64) {
+        let mean = self.m1[[a, b]] / self.s;
+        let second = self.m2[[a, b]] / self.s;
+        let denom = self.s * self.s - self.s2;
+        let var = if denom > 0.0 {
+            (self.s * self.s / denom * (second - mean * mean)).max(0.0)
+        } else {
+            0.0
+        };
+        (mean, var)
+    }
+}
+
+/// Weight-model adequacy (design.md 2.6): SMD, unweighted and weighted, of z_a^2 and
+/// z_a z_b (a < b) for the standardized kept inputs z, calibration rows against the pool.
+/// A large weighted SMD here means the classifier missed part of the shift (a linear model
+/// cannot see a variance shift). Balance on higher moments and interactions is the check
+/// recommended by Austin & Stuart (2015, section 4.2); the SMD formula is Austin (2009).
+pub(crate) fn adequacy(
+    design: &Design,
+    labeled: FeatureView<'_>,
+    pool: FeatureView<'_>,
+    calibration: &[usize],
+    calibration_weights: &[f64],
+) -> Adequacy {
+    let pool_m = moments(design, pool, None, None);
+    let lab_u = moments(design, labeled, Some(calibration), None);
+    let lab_w = moments(design, labeled, Some(calibration), Some(calibration_weights));
+    let names = design.kept_names();
+    let k = names.len();
+    let mut features = Vec::with_capacity(k * (k + 1) / 2);
+    let entry = |a: usize, b: usize, name: String| {
+        let (mp, vp) = pool_m.mean_var(a, b);
+        let (mu, vu) = lab_u.mean_var(a, b);
+        let (mw, vw) = lab_w.mean_var(a, b);
+        FeatureBalance {
+            feature: name,
+            smd_unweighted: smd_from(mp, vp, mu, vu),
+            smd_weighted: smd_from(mp, vp, mw, vw),
+        }
+    };
+    for a in 0..k {
+        features.push(entry(a, a, format!("{}^2", names[a])));
+    }
+    for a in 0..k {
+        for b in a + 1..k {
+            features.push(entry(a, b, format!("{}*{}", names[a], names[b])));
+        }
+    }
+    let max_abs = |it: &[FeatureBalance]| it.iter().fold(0.0f64, |m, f| m.max(f.smd_weighted.abs()));
+    let worst_feature = features
+        .iter()
+        .max_by(|x, y| x.smd_weighted.abs().total_cmp(&y.smd_weighted.abs()))
+        .map(|f| f.feature.clone());
+    Adequacy {
+        max_abs_weighted_squares: max_abs(&features[..k]),
+        max_abs_weighted_products: max_abs(&features[k..]),
+        worst_feature,
+        features,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::shift::features::Expansion;
+    use crate::shift::test_support::{names, normal_table};
+
+    #[test]
+    fn midranks_average_ties() {
+        assert_eq!(midranks(&[3.0, 1.0, 3.0, 2.0]), vec![3.5, 1.0, 3.5, 2.0]);
+    }
+
+    #[test]
+    fn delong_matches_pairwise_definition() {
+        // The DeLong components by their O(n0 n1) definition (DeLong et al. 1988, eq. for
+        // V10 and V01) against the midrank shortcut.
+        let scores = [0.1, 0.5, 0.5, 0.7, 0.2, 0.5, 0.9, 0.3, 0.3];
+        let pos = [false, true, false, true, false, true, true, false, true];
+        let est = roc_auc(&scores, &pos).unwrap();
+        let p: Vec<f64> = scores.iter().zip(&pos).filter(|x| *x.1).map(|x| *x.0).collect();
+        let q: Vec<f64> = scores.iter().zip(&pos).filter(|x| !*x.1).map(|x| *x.0).collect();
+        let psi = |a: f64, b: f64| if a > b { 1.0 } else if a == b { 0.5 } else { 0.0 };
+        let v10: Vec<f64> = p.iter().map(|&a| q.iter().map(|&b| psi(a, b)).sum::<f64>() / q.len() as f64).collect();
+        let v01: Vec<f64> = q.iter().map(|&b| p.iter().map(|&a| psi(a, b)).sum::<f64>() / p.len() as f64).collect();
+        let auc = v10.iter().sum::<f64>() / v10.len() as f64;
+        let var = |v: &[f64]| {
+            let m = v.iter().sum::<f64>() / v.len() as f64;
+            v.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (v.len() - 1) as f64
+        };
+        let variance = var(&v10) / p.len() as f64 + var(&v01) / q.len() as f64;
+        assert!((est.auc - auc).abs() < 1e-15);
+        assert!((est.variance - variance).abs() < 1e-15);
+    }
+
+    #[test]
+    fn permutation_p_is_in_range_and_small_for_separated_scores() {
+        let scores: Vec<f64> = (0..40).map(|i| i as f64).collect();
+        let pos: Vec<bool> = (0..40).map(|i| i >= 20).collect();
+        let p = permutation_p_value(&scores, &pos, 199, 5);
+        // Perfect separation: no permutation reaches it, p = 1 / 200.
+        assert_eq!(p, 1.0 / 200.0);
+        let flipped: Vec<bool> = pos.iter().map(|p| !p).collect();
+        assert_eq!(permutation_p_value(&scores, &flipped, 199, 5), 1.0);
+    }
+
+    #[test]
+    fn ess_handles_huge_weights() {
+        let w = [1e300, 1e300, 0.0];
+        assert_eq!(kish_effective_sample_size(&w).unwrap(), 2.0);
+        assert!(matches!(
+            kish_effective_sample_size(&[1.0, -1.0]),
+            Err(ShiftError::InvalidWeight { index: 1, .. })
+        ));
+    }
+
+    #[test]
+    fn khat_threshold_values() {
+        // min(1 - 1/log10(S), 0.7): S = 100 gives 0.5; S = 10^4 gives 0.7 (capped).
+        assert!((khat_threshold(100) - 0.5).abs() < 1e-15);
+        assert_eq!(khat_threshold(10_000), 0.7);
+    }
+
+    #[test]
+    fn unreachable_floor() {
+        // W = 9: w = 1 gives floor 0.1 (not > 0.1); w = 2 gives 2/11 > 0.1.
+        assert_eq!(unreachable_count(&[1.0, 2.0, 0.5], 9.0, 0.1), 1);
+    }
+
+    #[test]
+    fn adequacy_moments_match_direct_smd() {
+        // Squares and products through the moment matrices against the direct two-pass SMD
+        // on explicitly built product columns (Austin 2009 formula).
+        let nm = names(3);
+        let lab = normal_table(700, &[0.0, 0.5, -1.0], &[1.0, 2.0, 0.5], 11);
+        let pool = normal_table(900, &[0.3, 0.0, -1.0], &[1.5, 1.0, 0.7], 12);
+        let lv = FeatureView::new(&lab, 700, &nm).unwrap();
+        let pv = FeatureView::new(&pool, 900, &nm).unwrap();
+        let lrows: Vec<usize> = (0..700).collect();
+        let prows: Vec<usize> = (0..900).collect();
+        let design = Design::build(lv, pv, &lrows, &prows, Expansion::None).unwrap();
+        let cal: Vec<usize> = (0..700).step_by(2).collect();
+        let w: Vec<f64> = cal.iter().map(|&i| 0.5 + (i as f64 * 0.01).sin().abs()).collect();
+        let ad = adequacy(&design, lv, pv, &cal, &w);
+        let z = |v: FeatureView<'_>, rows: &[usize]| {
+            let mut out = vec![0.0; rows.len() * 3];
+            design.fill_base(v, rows.len(), |t| rows[t], &mut out);
+            out
+        };
+        let zl = z(lv, &cal);
+        let zp = z(pv, &prows);
+        let (nl, np) = (cal.len(), prows.len());
+        for (entry, (a, b)) in ad.features.iter().zip([(0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2)]) {
+            let lprod: Vec<f64> = (0..nl).map(|r| zl[a * nl + r] * zl[b * nl + r]).collect();
+            let pprod: Vec<f64> = (0..np).map(|r| zp[a * np + r] * zp[b * np + r]).collect();
+            let direct_w = standardized_mean_difference(&lprod, Some(&w), &pprod);
+            let direct_u = standardized_mean_difference(&lprod, None, &pprod);
+            assert!((entry.smd_weighted - direct_w).abs() < 1e-10, "{}", entry.feature);
+            assert!((entry.smd_unweighted - direct_u).abs() < 1e-10, "{}", entry.feature);
+        }
+        assert_eq!(ad.features[3].feature, "x0*x1");
+    }
+}

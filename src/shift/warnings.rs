@@ -1,0 +1,216 @@
+//! Warnings about the shift and the weights: documented thresholds, each warning naming the
+//! diagnostic, its value, the threshold, and what it means for the shortlist, worst first
+//! (design.md 2.6).
+//!
+//! Thresholds are common practice unless a source is named beside them.
+
+use serde::Serialize;
+
+use super::ShiftSummary;
+
+/// Cross-validated AUC above this: the sets barely overlap (common practice).
+pub const AUC_HIGH: f64 = 0.95;
+/// Kish ESS below this fraction of the calibration rows (common practice).
+pub const ESS_FRACTION_LOW: f64 = 0.1;
+/// |weighted SMD| above this on an input feature (Austin 2009: 0.1 marks meaningful
+/// imbalance).
+pub const SMD_HIGH: f64 = 0.1;
+/// |weighted SMD| above this on a squared or product feature (same rule as `SMD_HIGH`).
+pub const ADEQUACY_SMD_HIGH: f64 = 0.1;
+/// Share of the pool that can never be selected above this (common practice, our choice).
+pub const UNREACHABLE_SHARE_HIGH: f64 = 0.01;
+/// Share of the pool with balanced probability above 0.9 above this (common practice; the
+/// 0.9 cut-off follows Crump, Hotz, Imbens & Mitnik 2009).
+pub const OUTSIDE_OVERLAP_SHARE_HIGH: f64 = 0.1;
+
+/// How bad a warning is. Severe ones come first.
+#[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize)]
+#[serde(rename_all = "snake_case")]
+pub enum Severity {
+    /// The weights, and so the FDR guarantee in practice, should not be trusted as they are.
+    Severe,
+    /// Worth a look; the shortlist may still be usable.
+    Caution,
+}
+
+/// One warning.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ShiftWarning {
+    /// Machine-readable diagnostic name (e.g. `khat`, `ess_fraction`).
+    pub diagnostic: String,
+    /// The diagnostic's value.
+    pub value: f64,
+    /// The threshold it crossed.
+    pub threshold: f64,
+    /// Severity.
+    pub severity: Severity,
+    /// Plain-words meaning for the shortlist.
+    pub message: String,
+    /// How far past the threshold, relative (used to order warnings of equal severity).
+    #[serde(skip)]
+    excess: f64,
+}
+
+fn warn(
+    diagnostic: &str,
+    value: f64,
+    threshold: f64,
+    severity: Severity,
+    excess: f64,
+    message: String,
+) -> ShiftWarning {
+    ShiftWarning {
+        diagnostic: diagnostic.into(),
+        value,
+        threshold,
+        severity,
+        message,
+        excess,
+    }
+}
+
+/// All warnings for a summary, worst first (severe before caution, then by how far past
+/// the threshold).
+pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
+    let mut out = Vec::new();
+    if !s.converged {
+        out.push(warn(
+            "converged",
+            s.fit.report.gradient_norm,
+            s.fit.tolerance,
+            Severity::Severe,
+            f64::INFINITY,
+            format!(
+                "the domain classifier did not converge after {} iterations (gradient norm {:.3e}); its weights are not the penalized fit and should not be used",
+                s.iterations, s.fit.report.gradient_norm
+            ),
+        ));
+    }
+    if s.fit.clamped_weights > 0 {
+        out.push(warn(
+            "clamped_weights",
+            s.fit.clamped_weights as f64,
+            0.0,
+            Severity::Severe,
+            f64::INFINITY,
+            format!(
+                "{} rows had log-weights beyond +-{} and were clamped; some rows lie far outside the other set and their weights are meaningless",
+                s.fit.clamped_weights,
+                super::weights::LOG_WEIGHT_LIMIT
+            ),
+        ));
+    }
+    if !(s.khat <= s.khat_threshold) {
+        out.push(warn(
+            "khat",
+            s.khat,
+            s.khat_threshold,
+            Severity::Severe,
+            s.khat / s.khat_threshold.max(1e-3),
+            format!(
+                "Pareto k-hat of the labeled weights is {:.2} (threshold {:.2}): the weight distribution has such a heavy tail that weighted estimates are unreliable; a few labeled compounds dominate the calibration and the FDR level is not trustworthy",
+                s.khat, s.khat_threshold
+            ),
+        ));
+    }
+    if s.ess_fraction < ESS_FRACTION_LOW {
+        out.push(warn(
+            "ess_fraction",
+            s.ess_fraction,
+            ESS_FRACTION_LOW,
+            Severity::Severe,
+            ESS_FRACTION_LOW / s.ess_fraction.max(1e-12),
+            format!(
+                "the labeled weights are worth only {:.0} of {} labeled compounds ({:.1}%, threshold {:.0}%): p-values rest on very few effective calibration points, so the shortlist will be small or noisy",
+                s.ess,
+                s.calibration_rows,
+                100.0 * s.ess_fraction,
+                100.0 * ESS_FRACTION_LOW
+            ),
+        ));
+    }
+    if s.auc > AUC_HIGH {
+        out.push(warn(
+            "auc",
+            s.auc,
+            AUC_HIGH,
+            Severity::Severe,
+            (s.auc - 0.5) / (AUC_HIGH - 0.5),
+            format!(
+                "the domain classifier tells labeled compounds from pool compounds with AUC {:.3} (threshold {AUC_HIGH}): the two sets barely overlap, weights are extreme, and much of the pool is unlike anything assayed",
+                s.auc
+            ),
+        ));
+    }
+    let m = s.pool_rows.max(1) as f64;
+    let unreachable_share = s.unreachable_count as f64 / m;
+    if unreachable_share > UNREACHABLE_SHARE_HIGH {
+        out.push(warn(
+            "unreachable_share",
+            unreachable_share,
+            UNREACHABLE_SHARE_HIGH,
+            Severity::Severe,
+            unreachable_share / UNREACHABLE_SHARE_HIGH,
+            format!(
+                "{} pool compounds ({:.1}%, threshold {:.0}%) can never be selected at q = {}: their weight alone keeps their p-value above q, because the labeled set does not cover that part of the pool",
+                s.unreachable_count,
+                100.0 * unreachable_share,
+                100.0 * UNREACHABLE_SHARE_HIGH,
+                s.fdr
+            ),
+        ));
+    }
+    let worst_adequacy = s.adequacy.max_abs_weighted_squares.max(s.adequacy.max_abs_weighted_products);
+    if worst_adequacy > ADEQUACY_SMD_HIGH {
+        out.push(warn(
+            "adequacy_smd",
+            worst_adequacy,
+            ADEQUACY_SMD_HIGH,
+            Severity::Severe,
+            worst_adequacy / ADEQUACY_SMD_HIGH,
+            format!(
+                "after weighting, `{}` is still imbalanced (|SMD| {:.2}, threshold {ADEQUACY_SMD_HIGH}): the weight model misses part of the shift (e.g. a difference in spread), which can break the FDR control of every weighted procedure; refit with squared and/or pairwise features",
+                s.adequacy.worst_feature.as_deref().unwrap_or("?"),
+                worst_adequacy
+            ),
+        ));
+    }
+    let worst_balance = s
+        .balance
+        .iter()
+        .max_by(|a, b| a.smd_weighted.abs().total_cmp(&b.smd_weighted.abs()));
+    if let Some(f) = worst_balance {
+        let v = f.smd_weighted.abs();
+        if v > SMD_HIGH {
+            let count = s.balance.iter().filter(|f| f.smd_weighted.abs() > SMD_HIGH).count();
+            out.push(warn(
+                "smd_weighted",
+                v,
+                SMD_HIGH,
+                Severity::Caution,
+                v / SMD_HIGH,
+                format!(
+                    "{count} feature(s) remain imbalanced after weighting, worst `{}` with |SMD| {:.2} (threshold {SMD_HIGH}): the weighted labeled set still differs from the pool, so p-values may be miscalibrated for compounds that differ in these features",
+                    f.feature, v
+                ),
+            ));
+        }
+    }
+    let outside = s.overlap.pool_share_above_0_9;
+    if outside > OUTSIDE_OVERLAP_SHARE_HIGH {
+        out.push(warn(
+            "pool_share_above_0_9",
+            outside,
+            OUTSIDE_OVERLAP_SHARE_HIGH,
+            Severity::Caution,
+            outside / OUTSIDE_OVERLAP_SHARE_HIGH,
+            format!(
+                "{:.1}% of the pool (threshold {:.0}%) lies where the classifier puts balanced pool probability above 0.9, i.e. pool density more than 9 times the labeled density: those compounds carry large weights and are hard to select",
+                100.0 * outside,
+                100.0 * OUTSIDE_OVERLAP_SHARE_HIGH
+            ),
+        ));
+    }
+    out.sort_by(|a, b| a.severity.cmp(&b.severity).then(b.excess.total_cmp(&a.excess)));
+    out
+}

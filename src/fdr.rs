@@ -291,8 +291,9 @@ impl RightmostAtLeast {
         hi: usize,
         x: f64,
     ) -> Option<usize> {
-        // `!(a >= x)` also prunes NaN, which never occurs but must not pass.
-        if node_hi < lo || node_lo > hi || !(self.tree[node] >= x) {
+        let value = self.tree[node];
+        // NaN never occurs, but must not pass.
+        if node_hi < lo || node_lo > hi || value < x || value.is_nan() {
             return None;
         }
         if node_lo == node_hi {

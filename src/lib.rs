@@ -1,9 +1,12 @@
 //! weighbridge: shortlists from screening predictions with a false discovery rate
 //! guarantee when the labeled set and the pool differ (covariate shift).
+pub mod cli;
+pub mod demo;
 pub mod fdr;
 pub mod plots;
 pub mod pvalue;
 pub mod random;
+pub mod report;
 pub mod score;
 pub mod select;
 pub mod shift;

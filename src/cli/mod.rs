@@ -1,0 +1,115 @@
+//! Command-line interface: argument parsing and wiring only, no statistics.
+//!
+//! One file per subcommand. Each turns what the user typed into a checked configuration in
+//! one step, calls the library, writes outputs atomically and maps errors to exit codes:
+//! 0 success, 2 bad usage or input (nothing is written), 1 internal failure.
+//! A closed stdout pipe (e.g. `| head`) is not an error.
+
+pub mod demo;
+pub mod select;
+
+use std::io::Write;
+use std::process::ExitCode;
+
+use clap::{Parser, Subcommand};
+
+/// Shortlists from screening predictions with a false discovery rate guarantee when the
+/// labeled set and the pool differ (covariate shift).
+#[derive(Debug, Parser)]
+#[command(
+    name = "weighbridge",
+    version,
+    about,
+    long_about = "Shortlists from screening predictions with a false discovery rate (FDR) \
+guarantee when the labeled set was not a random sample of the pool.\n\n\
+Give a labeled set (units already measured: outcome and model prediction) and a pool \
+(predictions only). weighbridge computes weighted conformal p-values and selects the pool \
+units whose outcome is likely above a threshold, so that on average at most a fraction q \
+of the shortlist is not.\n\n\
+The shortlist guides which experiments to run next; it is not a safety, clinical or \
+regulatory decision.",
+    after_help = "Examples:\n  weighbridge demo\n  weighbridge select --labeled fixtures/labeled.csv --pool fixtures/pool.csv \\\n      --threshold 6.5 --weight-column w --fdr 0.1 --out shortlist"
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Select a shortlist from a pool with FDR control.
+    Select(select::SelectArgs),
+    /// Run the whole job on an invented screening scenario and explain the result.
+    Demo(demo::DemoArgs),
+}
+
+/// Why a command failed, and so which exit code it gets.
+#[derive(Debug)]
+pub enum Failure {
+    /// Bad usage or input: exit code 2.
+    Input(String),
+    /// A bug or an environment failure: exit code 1.
+    Internal(String),
+}
+
+impl From<crate::table::InputError> for Failure {
+    fn from(e: crate::table::InputError) -> Self {
+        Failure::Input(e.to_string())
+    }
+}
+
+impl From<crate::select::SelectError> for Failure {
+    fn from(e: crate::select::SelectError) -> Self {
+        Failure::Input(e.to_string())
+    }
+}
+
+/// Write output files all at once; a failure names the folder.
+pub(crate) fn commit_outputs(
+    set: crate::table::OutputSet,
+    dir: &std::path::Path,
+) -> Result<Vec<std::path::PathBuf>, Failure> {
+    set.commit(dir).map_err(|e| {
+        Failure::Input(format!(
+            "cannot write the output folder {}: {e}. Hint: choose another --out folder or check its permissions.",
+            dir.display()
+        ))
+    })
+}
+
+/// Print to stdout; a closed pipe ends quietly.
+pub(crate) fn print_stdout(text: &str) {
+    let mut out = std::io::stdout().lock();
+    match out.write_all(text.as_bytes()).and_then(|_| out.flush()) {
+        Ok(()) => {}
+        Err(e) if e.kind() == std::io::ErrorKind::BrokenPipe => {}
+        Err(e) => eprintln!("weighbridge: cannot write to stdout: {e}"),
+    }
+}
+
+/// Parse arguments, run the command, map the result to an exit code.
+pub fn main_entry() -> ExitCode {
+    let cli = match Cli::try_parse() {
+        Ok(cli) => cli,
+        Err(e) => {
+            // clap prints help/version to stdout (exit 0) and usage errors to stderr (exit 2).
+            let _ = e.print();
+            return ExitCode::from(if e.use_stderr() { 2 } else { 0 });
+        }
+    };
+    let result = match cli.command {
+        Command::Select(args) => select::run(args),
+        Command::Demo(args) => demo::run(args),
+    };
+    match result {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(Failure::Input(message)) => {
+            eprintln!("error: {message}");
+            ExitCode::from(2)
+        }
+        Err(Failure::Internal(message)) => {
+            eprintln!("internal error: {message}");
+            ExitCode::from(1)
+        }
+    }
+}

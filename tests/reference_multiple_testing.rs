@@ -20,8 +20,8 @@ const ADJUSTED_TOLERANCE: f64 = 1e-12;
 /// The 15 p-values of Benjamini & Hochberg (1995), section 4 (values from memory; the
 /// statsmodels fixture below contains the same vector and agrees: 4 rejected at q = 0.05).
 const BH1995: [f64; 15] = [
-    0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344, 0.0459, 0.3240, 0.4262,
-    0.5719, 0.6528, 0.7590, 1.000,
+    0.0001, 0.0004, 0.0019, 0.0095, 0.0201, 0.0278, 0.0298, 0.0344, 0.0459, 0.3240, 0.4262, 0.5719,
+    0.6528, 0.7590, 1.000,
 ];
 
 #[test]
@@ -163,7 +163,8 @@ fn statsmodels_fixture_covers_ties_zeros_and_ones() {
     let has_ties = fixture.cases.iter().any(|c| {
         let mut p = c.p.clone();
         p.sort_by(f64::total_cmp);
-        p.windows(2).any(|w| w[0] == w[1] && w[0] > 0.0 && w[0] < 1.0)
+        p.windows(2)
+            .any(|w| w[0] == w[1] && w[0] > 0.0 && w[0] < 1.0)
     });
     assert!(has_ties);
     let levels: Vec<f64> = fixture.cases[0].levels.iter().map(|l| l.q).collect();
@@ -256,7 +257,10 @@ fn by_selects_a_subset_of_bh() {
         }
     }
     // The check has teeth only if BY is often strictly smaller.
-    assert!(strict_subsets > 50, "BY < BH in only {strict_subsets} cases");
+    assert!(
+        strict_subsets > 50,
+        "BY < BH in only {strict_subsets} cases"
+    );
 }
 
 #[test]

@@ -75,7 +75,12 @@ pub fn overlap_svg(overlap: &Overlap) -> Result<String, PlotError> {
     };
     let ls = share(&overlap.labeled_counts, nl);
     let ps = share(&overlap.pool_counts, np);
-    let ymax = ls.iter().chain(&ps).fold(0.0f64, |a, &b| a.max(b)).max(1e-9) * 1.1;
+    let ymax = ls
+        .iter()
+        .chain(&ps)
+        .fold(0.0f64, |a, &b| a.max(b))
+        .max(1e-9)
+        * 1.1;
     let edges = &overlap.bin_edges;
     draw(PLOT, (720, 420), |root| {
         let mut chart = ChartBuilder::on(root)
@@ -91,14 +96,21 @@ pub fn overlap_svg(overlap: &Overlap) -> Result<String, PlotError> {
             .y_desc("share of set")
             .draw()
             .map_err(backend(PLOT))?;
-        for (values, colour, name, count) in [(&ls, LABELED, "labeled", nl), (&ps, POOL, "pool", np)] {
+        for (values, colour, name, count) in
+            [(&ls, LABELED, "labeled", nl), (&ps, POOL, "pool", np)]
+        {
             chart
                 .draw_series(values.iter().enumerate().map(|(i, &v)| {
-                    Rectangle::new([(edges[i], 0.0), (edges[i + 1], v)], colour.mix(0.45).filled())
+                    Rectangle::new(
+                        [(edges[i], 0.0), (edges[i + 1], v)],
+                        colour.mix(0.45).filled(),
+                    )
                 }))
                 .map_err(backend(PLOT))?
                 .label(format!("{name} (n = {count})"))
-                .legend(move |(x, y)| Rectangle::new([(x, y - 5), (x + 12, y + 5)], colour.mix(0.45).filled()));
+                .legend(move |(x, y)| {
+                    Rectangle::new([(x, y - 5), (x + 12, y + 5)], colour.mix(0.45).filled())
+                });
         }
         chart
             .configure_series_labels()
@@ -120,7 +132,10 @@ pub fn overlap_svg(overlap: &Overlap) -> Result<String, PlotError> {
 pub fn weights_svg(labeled: &[f64], pool: &[f64], bins: usize) -> Result<String, PlotError> {
     const PLOT: &str = "weights";
     let logs = |w: &[f64]| -> Vec<f64> {
-        w.iter().filter(|v| v.is_finite() && **v > 0.0).map(|v| v.log10()).collect()
+        w.iter()
+            .filter(|v| v.is_finite() && **v > 0.0)
+            .map(|v| v.log10())
+            .collect()
     };
     let (ll, pl) = (logs(labeled), logs(pool));
     if bins == 0 || ll.len() + pl.len() == 0 {
@@ -132,7 +147,9 @@ pub fn weights_svg(labeled: &[f64], pool: &[f64], bins: usize) -> Result<String,
     let (mut lo, mut hi) = ll
         .iter()
         .chain(&pl)
-        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &v| (a.min(v), b.max(v)));
+        .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &v| {
+            (a.min(v), b.max(v))
+        });
     if hi - lo < 1e-9 {
         lo -= 0.5;
         hi += 0.5;
@@ -147,7 +164,12 @@ pub fn weights_svg(labeled: &[f64], pool: &[f64], bins: usize) -> Result<String,
         c.iter().map(|x| x / total).collect()
     };
     let (lh, ph) = (hist(&ll), hist(&pl));
-    let ymax = lh.iter().chain(&ph).fold(0.0f64, |a, &b| a.max(b)).max(1e-9) * 1.1;
+    let ymax = lh
+        .iter()
+        .chain(&ph)
+        .fold(0.0f64, |a, &b| a.max(b))
+        .max(1e-9)
+        * 1.1;
     draw(PLOT, (720, 420), |root| {
         let mut chart = ChartBuilder::on(root)
             .caption("Weights (density ratio pool / labeled)", (FONT, 20))
@@ -162,7 +184,10 @@ pub fn weights_svg(labeled: &[f64], pool: &[f64], bins: usize) -> Result<String,
             .y_desc("share of set")
             .draw()
             .map_err(backend(PLOT))?;
-        for (values, colour, name, count) in [(&lh, LABELED, "labeled", ll.len()), (&ph, POOL, "pool", pl.len())] {
+        for (values, colour, name, count) in [
+            (&lh, LABELED, "labeled", ll.len()),
+            (&ph, POOL, "pool", pl.len()),
+        ] {
             chart
                 .draw_series(values.iter().enumerate().map(|(i, &v)| {
                     let x0 = lo + i as f64 * width;
@@ -170,7 +195,9 @@ pub fn weights_svg(labeled: &[f64], pool: &[f64], bins: usize) -> Result<String,
                 }))
                 .map_err(backend(PLOT))?
                 .label(format!("{name} (n = {count})"))
-                .legend(move |(x, y)| Rectangle::new([(x, y - 5), (x + 12, y + 5)], colour.mix(0.45).filled()));
+                .legend(move |(x, y)| {
+                    Rectangle::new([(x, y - 5), (x + 12, y + 5)], colour.mix(0.45).filled())
+                });
         }
         chart
             .configure_series_labels()
@@ -231,14 +258,22 @@ pub fn balance_svg(balance: &[FeatureBalance]) -> Result<String, PlotError> {
             .map_err(backend(PLOT))?;
         chart
             .draw_series(balance.iter().enumerate().map(|(i, b)| {
-                Circle::new((finite(b.smd_unweighted), SegmentValue::CenterOf(i)), 5, POOL.stroke_width(2))
+                Circle::new(
+                    (finite(b.smd_unweighted), SegmentValue::CenterOf(i)),
+                    5,
+                    POOL.stroke_width(2),
+                )
             }))
             .map_err(backend(PLOT))?
             .label("unweighted")
             .legend(|(x, y)| Circle::new((x + 6, y), 5, POOL.stroke_width(2)));
         chart
             .draw_series(balance.iter().enumerate().map(|(i, b)| {
-                Circle::new((finite(b.smd_weighted), SegmentValue::CenterOf(i)), 5, LABELED.filled())
+                Circle::new(
+                    (finite(b.smd_weighted), SegmentValue::CenterOf(i)),
+                    5,
+                    LABELED.filled(),
+                )
             }))
             .map_err(backend(PLOT))?
             .label("weighted")
@@ -291,7 +326,10 @@ mod tests {
     fn weights_plot_draws_both_sets() {
         let svg = weights_svg(&[0.5, 1.0, 2.0], &[1.0, 4.0, 8.0, 16.0], 10).unwrap();
         assert_svg(&svg, &["labeled (n = 3)", "pool (n = 4)", "log10 weight"]);
-        assert!(matches!(weights_svg(&[], &[], 10), Err(PlotError::Empty { .. })));
+        assert!(matches!(
+            weights_svg(&[], &[], 10),
+            Err(PlotError::Empty { .. })
+        ));
     }
 
     #[test]

@@ -28,12 +28,19 @@ mod tol {
 }
 
 fn fixture() -> Value {
-    let path = concat!(env!("CARGO_MANIFEST_DIR"), "/tests/data/shift_reference.json");
+    let path = concat!(
+        env!("CARGO_MANIFEST_DIR"),
+        "/tests/data/shift_reference.json"
+    );
     serde_json::from_str(&std::fs::read_to_string(path).expect("fixture present")).expect("json")
 }
 
 fn floats(v: &Value) -> Vec<f64> {
-    v.as_array().unwrap().iter().map(|x| x.as_f64().unwrap()).collect()
+    v.as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_f64().unwrap())
+        .collect()
 }
 
 struct Tables {
@@ -47,7 +54,12 @@ struct Tables {
 fn tables(f: &Value) -> Tables {
     let l = &f["logistic"];
     Tables {
-        names: l["names"].as_array().unwrap().iter().map(|s| s.as_str().unwrap().to_string()).collect(),
+        names: l["names"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|s| s.as_str().unwrap().to_string())
+            .collect(),
         labeled: floats(&l["labeled"]),
         pool: floats(&l["pool"]),
         n0: l["labeled_rows"].as_u64().unwrap() as usize,
@@ -90,9 +102,17 @@ fn logistic_fit_matches_scikit_learn() {
                 }
             })
             .collect();
-        let params = LogisticParams::default().alpha(alpha).tolerance(1e-12).check().unwrap();
+        let params = LogisticParams::default()
+            .alpha(alpha)
+            .tolerance(1e-12)
+            .check()
+            .unwrap();
         let model = fit_logistic(d.fit_matrix(), n, &y, Some(&s), &params).unwrap();
-        assert!(model.report().converged, "alpha {alpha}: {:?}", model.report());
+        assert!(
+            model.report().converged,
+            "alpha {alpha}: {:?}",
+            model.report()
+        );
         let expected = floats(&case["coefficients"]);
         assert_eq!(model.coefficients().len(), expected.len());
         for (j, (got, want)) in model.coefficients().iter().zip(&expected).enumerate() {
@@ -122,12 +142,23 @@ fn assess_shift_reports_the_scikit_learn_fit() {
     for (got, want) in a.summary.fit.coefficients.iter().zip(&expected) {
         assert!((got - want).abs() < tol::SKLEARN_COEF, "{got} vs {want}");
     }
-    assert_eq!(a.summary.fit.dropped_constant_columns, vec!["flat".to_string()]);
+    assert_eq!(
+        a.summary.fit.dropped_constant_columns,
+        vec!["flat".to_string()]
+    );
     // shift.json fields exist with the documented names.
     let json = serde_json::to_value(&a.summary).unwrap();
     for key in [
-        "auc", "auc_ci", "permutation_p", "ess", "ess_fraction", "khat", "unreachable_count",
-        "converged", "iterations", "warnings",
+        "auc",
+        "auc_ci",
+        "permutation_p",
+        "ess",
+        "ess_fraction",
+        "khat",
+        "unreachable_count",
+        "converged",
+        "iterations",
+        "warnings",
     ] {
         assert!(json.get(key).is_some(), "shift.json lacks {key}");
     }
@@ -157,7 +188,10 @@ fn logistic_fit_agrees_with_linfa_logistic() {
             .max_iterations(10_000)
             .fit(&Dataset::new(records.clone(), targets.clone()))
             .unwrap();
-        assert!(linfa_model.labels().pos.class, "linfa's positive class must be the pool");
+        assert!(
+            linfa_model.labels().pos.class,
+            "linfa's positive class must be the pool"
+        );
         let ours = LogisticParams::default()
             .alpha(alpha)
             .check()
@@ -166,7 +200,10 @@ fn logistic_fit_agrees_with_linfa_logistic() {
             .unwrap();
         assert!((ours.coefficients()[0] - linfa_model.intercept()).abs() < tol::LINFA_COEF);
         for (a, b) in ours.coefficients()[1..].iter().zip(linfa_model.params()) {
-            assert!((a - b).abs() < tol::LINFA_COEF, "alpha {alpha}: {a} vs linfa {b}");
+            assert!(
+                (a - b).abs() < tol::LINFA_COEF,
+                "alpha {alpha}: {a} vs linfa {b}"
+            );
         }
     }
 }
@@ -178,12 +215,21 @@ fn auc_matches_roc_auc_score_with_ties() {
     let f = fixture();
     for case in f["auc"].as_array().unwrap() {
         let scores = floats(&case["scores"]);
-        let pos: Vec<bool> = case["positive"].as_array().unwrap().iter().map(|b| b.as_bool().unwrap()).collect();
+        let pos: Vec<bool> = case["positive"]
+            .as_array()
+            .unwrap()
+            .iter()
+            .map(|b| b.as_bool().unwrap())
+            .collect();
         let est = roc_auc(&scores, &pos).unwrap();
         let want = case["roc_auc_score"].as_f64().unwrap();
         assert!((est.auc - want).abs() < tol::AUC, "{} vs {want}", est.auc);
         let var = case["delong_variance"].as_f64().unwrap();
-        assert!((est.variance - var).abs() < tol::AUC, "{} vs {var}", est.variance);
+        assert!(
+            (est.variance - var).abs() < tol::AUC,
+            "{} vs {var}",
+            est.variance
+        );
     }
 }
 
@@ -195,7 +241,10 @@ fn khat_matches_arviz_psislw() {
         let name = case["name"].as_str().unwrap();
         let got = pareto_khat(&floats(&case["log_weights"])).unwrap();
         match case["khat"].as_f64() {
-            Some(want) => assert!((got - want).abs() < tol::KHAT, "{name}: {got} vs arviz {want}"),
+            Some(want) => assert!(
+                (got - want).abs() < tol::KHAT,
+                "{name}: {got} vs arviz {want}"
+            ),
             None => assert!(got.is_infinite(), "{name}: {got} vs arviz inf"),
         }
     }

@@ -75,8 +75,18 @@ pub struct AucEstimate {
 /// ```
 pub fn roc_auc(scores: &[f64], positive: &[bool]) -> Result<AucEstimate, ShiftError> {
     assert_eq!(scores.len(), positive.len());
-    let pos: Vec<f64> = scores.iter().zip(positive).filter(|p| *p.1).map(|p| *p.0).collect();
-    let neg: Vec<f64> = scores.iter().zip(positive).filter(|p| !*p.1).map(|p| *p.0).collect();
+    let pos: Vec<f64> = scores
+        .iter()
+        .zip(positive)
+        .filter(|p| *p.1)
+        .map(|p| *p.0)
+        .collect();
+    let neg: Vec<f64> = scores
+        .iter()
+        .zip(positive)
+        .filter(|p| !*p.1)
+        .map(|p| *p.0)
+        .collect();
     let (n1, n0) = (pos.len(), neg.len());
     if n1 < 2 || n0 < 2 {
         return Err(ShiftError::OneClass {
@@ -99,7 +109,8 @@ pub fn roc_auc(scores: &[f64], positive: &[bool]) -> Result<AucEstimate, ShiftEr
         }
     }
     let mean = |v: &[f64]| v.iter().sum::<f64>() / v.len() as f64;
-    let var = |v: &[f64], m: f64| v.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (v.len() - 1) as f64;
+    let var =
+        |v: &[f64], m: f64| v.iter().map(|x| (x - m) * (x - m)).sum::<f64>() / (v.len() - 1) as f64;
     let auc = mean(&v10);
     let variance = var(&v10, auc) / n1 as f64 + var(&v01, mean(&v01)) / n0 as f64;
     let half = Z_975 * variance.sqrt();
@@ -170,7 +181,10 @@ pub(crate) fn cross_validated_auc(
     };
     // Fit-matrix rows: class 0 at 0..n0, class 1 at n0..n0+n1.
     let mut class0: Vec<usize> = sample_sorted(rng, n0, k0);
-    let mut class1: Vec<usize> = sample_sorted(rng, n1, k1).into_iter().map(|r| n0 + r).collect();
+    let mut class1: Vec<usize> = sample_sorted(rng, n1, k1)
+        .into_iter()
+        .map(|r| n0 + r)
+        .collect();
     class0.shuffle(rng);
     class1.shuffle(rng);
     let folds = options.cv_folds();
@@ -191,7 +205,11 @@ pub(crate) fn cross_validated_auc(
     let per_fold: Vec<Result<Vec<(usize, f64)>, ShiftError>> = (0..folds)
         .into_par_iter()
         .map(|f| {
-            let train: Vec<usize> = cv_rows.iter().copied().filter(|&r| fold_of[r] != f).collect();
+            let train: Vec<usize> = cv_rows
+                .iter()
+                .copied()
+                .filter(|&r| fold_of[r] != f)
+                .collect();
             let t = train.len();
             let mut buf = vec![0.0; t * cols];
             for j in 0..cols {
@@ -240,11 +258,21 @@ pub(crate) fn cross_validated_auc(
 /// Applications in Genetics and Molecular Biology 9:39). The AUC is an increasing function
 /// of the positives' rank sum, so comparing rank sums (half-integers, exact in floating
 /// point) compares AUCs without rounding ties.
-pub fn permutation_p_value(scores: &[f64], positive: &[bool], permutations: usize, seed: u64) -> f64 {
+pub fn permutation_p_value(
+    scores: &[f64],
+    positive: &[bool],
+    permutations: usize,
+    seed: u64,
+) -> f64 {
     let ranks = midranks(scores);
     let total_n = scores.len();
     let n1 = positive.iter().filter(|p| **p).count();
-    let observed: f64 = ranks.iter().zip(positive).filter(|p| *p.1).map(|p| p.0).sum();
+    let observed: f64 = ranks
+        .iter()
+        .zip(positive)
+        .filter(|p| *p.1)
+        .map(|p| p.0)
+        .sum();
     let total_rank = total_n as f64 * (total_n as f64 + 1.0) / 2.0;
     // Draw the smaller class; the positives' rank sum follows.
     let (draw, draws_positive) = if n1 <= total_n - n1 {
@@ -259,7 +287,11 @@ pub fn permutation_p_value(scores: &[f64], positive: &[bool], permutations: usiz
             rng.set_stream(b as u64);
             let picked = rand::seq::index::sample(&mut rng, total_n, draw);
             let sum: f64 = picked.iter().map(|i| ranks[i]).sum();
-            let positives_sum = if draws_positive { sum } else { total_rank - sum };
+            let positives_sum = if draws_positive {
+                sum
+            } else {
+                total_rank - sum
+            };
             usize::from(positives_sum >= observed)
         })
         .sum();
@@ -328,7 +360,10 @@ pub fn kish_effective_sample_size(weights: &[f64]) -> Result<f64, ShiftError> {
 /// assert!(pareto_khat(&[0.0, 0.1, 0.2, 0.3, 0.4]).unwrap().is_infinite());
 /// ```
 pub fn pareto_khat(log_weights: &[f64]) -> Result<f64, ShiftError> {
-    if let Some(i) = log_weights.iter().position(|v| v.is_nan() || *v == f64::INFINITY) {
+    if let Some(i) = log_weights
+        .iter()
+        .position(|v| v.is_nan() || *v == f64::INFINITY)
+    {
         return Err(ShiftError::NonFinite {
             feature: "log weight".into(),
             row: i,
@@ -393,7 +428,11 @@ fn generalized_pareto_shape(sorted: &[f64]) -> f64 {
         }
     }
     let total: f64 = w_kept.iter().sum();
-    let b_post: f64 = b_kept.iter().zip(&w_kept).map(|(bj, w)| bj * (w / total)).sum();
+    let b_post: f64 = b_kept
+        .iter()
+        .zip(&w_kept)
+        .map(|(bj, w)| bj * (w / total))
+        .sum();
     let k_post = mean_log1p(b_post);
     (nf * k_post + 10.0 * 0.5) / (nf + 10.0)
 }
@@ -443,7 +482,9 @@ pub(crate) fn overlap(labeled_balanced: &[f64], pool_balanced: &[f64], bins: usi
         }
         c
     };
-    let share = |t: f64| pool_balanced.iter().filter(|&&v| v > t).count() as f64 / pool_balanced.len() as f64;
+    let share = |t: f64| {
+        pool_balanced.iter().filter(|&&v| v > t).count() as f64 / pool_balanced.len() as f64
+    };
     Overlap {
         probability: "w/(1+w): P(pool | x) at equal set sizes".into(),
         bin_edges: (0..=bins).map(|i| i as f64 / bins as f64).collect(),
@@ -470,12 +511,19 @@ pub struct FeatureBalance {
 /// with unit weights this is the usual n - 1 sample variance.
 fn weighted_mean_var(values: &[f64], weights: Option<&[f64]>) -> (f64, f64) {
     let w = |i: usize| weights.map_or(1.0, |w| w[i]);
-    let (s, s2, sx) = values.iter().enumerate().fold((0.0, 0.0, 0.0), |(s, s2, sx), (i, v)| {
-        let wi = w(i);
-        (s + wi, s2 + wi * wi, sx + wi * v)
-    });
+    let (s, s2, sx) = values
+        .iter()
+        .enumerate()
+        .fold((0.0, 0.0, 0.0), |(s, s2, sx), (i, v)| {
+            let wi = w(i);
+            (s + wi, s2 + wi * wi, sx + wi * v)
+        });
     let mean = sx / s;
-    let ss: f64 = values.iter().enumerate().map(|(i, v)| w(i) * (v - mean) * (v - mean)).sum();
+    let ss: f64 = values
+        .iter()
+        .enumerate()
+        .map(|(i, v)| w(i) * (v - mean) * (v - mean))
+        .sum();
     let denom = s * s - s2;
     let var = if denom > 0.0 { s * ss / denom } else { 0.0 };
     (mean, var)
@@ -511,7 +559,11 @@ fn smd_from(mean_pool: f64, var_pool: f64, mean_lab: f64, var_lab: f64) -> f64 {
 /// let smd = standardized_mean_difference(&[1.0, 2.0, 3.0], None, &[3.0, 4.0, 5.0]);
 /// assert!((smd - 2.0).abs() < 1e-12);
 /// ```
-pub fn standardized_mean_difference(labeled: &[f64], labeled_weights: Option<&[f64]>, pool: &[f64]) -> f64 {
+pub fn standardized_mean_difference(
+    labeled: &[f64],
+    labeled_weights: Option<&[f64]>,
+    pool: &[f64],
+) -> f64 {
     let (ml, vl) = weighted_mean_var(labeled, labeled_weights);
     let (mp, vp) = weighted_mean_var(pool, None);
     smd_from(mp, vp, ml, vl)
@@ -579,7 +631,9 @@ fn moments(
             let len = CHUNK.min(count - lo);
             let mut z = vec![0.0; len * k];
             design.fill_base(view, len, |t| rows.map_or(lo + t, |r| r[lo + t]), &mut z);
-            let w: Vec<f64> = (0..len).map(|t| weights.map_or(1.0, |w| w[lo + t])).collect();
+            let w: Vec<f64> = (0..len)
+                .map(|t| weights.map_or(1.0, |w| w[lo + t]))
+                .collect();
             let z2: Vec<f64> = z.iter().map(|v| v * v).collect();
             let scaled = |src: &[f64]| {
                 let mut out = src.to_vec();
@@ -597,8 +651,20 @@ fn moments(
             }
             let mut m1 = Array2::zeros((k, k));
             let mut m2 = Array2::zeros((k, k));
-            general_mat_mul(1.0, &view2(&z, len, k).t(), &view2(&zw, len, k), 0.0, &mut m1);
-            general_mat_mul(1.0, &view2(&z2, len, k).t(), &view2(&z2w, len, k), 0.0, &mut m2);
+            general_mat_mul(
+                1.0,
+                &view2(&z, len, k).t(),
+                &view2(&zw, len, k),
+                0.0,
+                &mut m1,
+            );
+            general_mat_mul(
+                1.0,
+                &view2(&z2, len, k).t(),
+                &view2(&z2w, len, k),
+                0.0,
+                &mut m2,
+            );
             Moments {
                 s: w.iter().sum(),
                 s2: w.iter().map(|v| v * v).sum(),
@@ -651,7 +717,12 @@ pub(crate) fn adequacy(
 ) -> Adequacy {
     let pool_m = moments(design, pool, None, None);
     let lab_u = moments(design, labeled, Some(calibration), None);
-    let lab_w = moments(design, labeled, Some(calibration), Some(calibration_weights));
+    let lab_w = moments(
+        design,
+        labeled,
+        Some(calibration),
+        Some(calibration_weights),
+    );
     let names = design.kept_names();
     let k = names.len();
     let mut features = Vec::with_capacity(k * (k + 1) / 2);
@@ -665,15 +736,16 @@ pub(crate) fn adequacy(
             smd_weighted: smd_from(mp, vp, mw, vw),
         }
     };
-    for a in 0..k {
-        features.push(entry(a, a, format!("{}^2", names[a])));
+    for (a, name) in names.iter().enumerate() {
+        features.push(entry(a, a, format!("{name}^2")));
     }
     for a in 0..k {
         for b in a + 1..k {
             features.push(entry(a, b, format!("{}*{}", names[a], names[b])));
         }
     }
-    let max_abs = |it: &[FeatureBalance]| it.iter().fold(0.0f64, |m, f| m.max(f.smd_weighted.abs()));
+    let max_abs =
+        |it: &[FeatureBalance]| it.iter().fold(0.0f64, |m, f| m.max(f.smd_weighted.abs()));
     let worst_feature = features
         .iter()
         .max_by(|x, y| x.smd_weighted.abs().total_cmp(&y.smd_weighted.abs()))
@@ -704,11 +776,35 @@ mod tests {
         let scores = [0.1, 0.5, 0.5, 0.7, 0.2, 0.5, 0.9, 0.3, 0.3];
         let pos = [false, true, false, true, false, true, true, false, true];
         let est = roc_auc(&scores, &pos).unwrap();
-        let p: Vec<f64> = scores.iter().zip(&pos).filter(|x| *x.1).map(|x| *x.0).collect();
-        let q: Vec<f64> = scores.iter().zip(&pos).filter(|x| !*x.1).map(|x| *x.0).collect();
-        let psi = |a: f64, b: f64| if a > b { 1.0 } else if a == b { 0.5 } else { 0.0 };
-        let v10: Vec<f64> = p.iter().map(|&a| q.iter().map(|&b| psi(a, b)).sum::<f64>() / q.len() as f64).collect();
-        let v01: Vec<f64> = q.iter().map(|&b| p.iter().map(|&a| psi(a, b)).sum::<f64>() / p.len() as f64).collect();
+        let p: Vec<f64> = scores
+            .iter()
+            .zip(&pos)
+            .filter(|x| *x.1)
+            .map(|x| *x.0)
+            .collect();
+        let q: Vec<f64> = scores
+            .iter()
+            .zip(&pos)
+            .filter(|x| !*x.1)
+            .map(|x| *x.0)
+            .collect();
+        let psi = |a: f64, b: f64| {
+            if a > b {
+                1.0
+            } else if a == b {
+                0.5
+            } else {
+                0.0
+            }
+        };
+        let v10: Vec<f64> = p
+            .iter()
+            .map(|&a| q.iter().map(|&b| psi(a, b)).sum::<f64>() / q.len() as f64)
+            .collect();
+        let v01: Vec<f64> = q
+            .iter()
+            .map(|&b| p.iter().map(|&a| psi(a, b)).sum::<f64>() / p.len() as f64)
+            .collect();
         let auc = v10.iter().sum::<f64>() / v10.len() as f64;
         let var = |v: &[f64]| {
             let m = v.iter().sum::<f64>() / v.len() as f64;
@@ -766,7 +862,10 @@ mod tests {
         let prows: Vec<usize> = (0..900).collect();
         let design = Design::build(lv, pv, &lrows, &prows, Expansion::None).unwrap();
         let cal: Vec<usize> = (0..700).step_by(2).collect();
-        let w: Vec<f64> = cal.iter().map(|&i| 0.5 + (i as f64 * 0.01).sin().abs()).collect();
+        let w: Vec<f64> = cal
+            .iter()
+            .map(|&i| 0.5 + (i as f64 * 0.01).sin().abs())
+            .collect();
         let ad = adequacy(&design, lv, pv, &cal, &w);
         let z = |v: FeatureView<'_>, rows: &[usize]| {
             let mut out = vec![0.0; rows.len() * 3];
@@ -776,13 +875,25 @@ mod tests {
         let zl = z(lv, &cal);
         let zp = z(pv, &prows);
         let (nl, np) = (cal.len(), prows.len());
-        for (entry, (a, b)) in ad.features.iter().zip([(0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2)]) {
+        for (entry, (a, b)) in
+            ad.features
+                .iter()
+                .zip([(0, 0), (1, 1), (2, 2), (0, 1), (0, 2), (1, 2)])
+        {
             let lprod: Vec<f64> = (0..nl).map(|r| zl[a * nl + r] * zl[b * nl + r]).collect();
             let pprod: Vec<f64> = (0..np).map(|r| zp[a * np + r] * zp[b * np + r]).collect();
             let direct_w = standardized_mean_difference(&lprod, Some(&w), &pprod);
             let direct_u = standardized_mean_difference(&lprod, None, &pprod);
-            assert!((entry.smd_weighted - direct_w).abs() < 1e-10, "{}", entry.feature);
-            assert!((entry.smd_unweighted - direct_u).abs() < 1e-10, "{}", entry.feature);
+            assert!(
+                (entry.smd_weighted - direct_w).abs() < 1e-10,
+                "{}",
+                entry.feature
+            );
+            assert!(
+                (entry.smd_unweighted - direct_u).abs() < 1e-10,
+                "{}",
+                entry.feature
+            );
         }
         assert_eq!(ad.features[3].feature, "x0*x1");
     }

@@ -320,38 +320,36 @@ impl Design {
             .collect();
         let k = self.kept.len();
         let mut eta = vec![0.0; view.n_rows()];
-        eta.par_chunks_mut(CHUNK)
-            .enumerate()
-            .for_each_init(
-                || vec![0.0; CHUNK * k],
-                |z, (chunk, out)| {
-                    let start = chunk * CHUNK;
-                    let c = out.len();
-                    self.fill_base(view, c, |t| start + t, &mut z[..c * k]);
-                    out.fill(intercept);
-                    for (term, &b) in self.terms.iter().zip(&slopes) {
-                        match term.kind {
-                            TermKind::Base(a) => {
-                                for (o, x) in out.iter_mut().zip(&z[a * c..(a + 1) * c]) {
-                                    *o += b * x;
-                                }
+        eta.par_chunks_mut(CHUNK).enumerate().for_each_init(
+            || vec![0.0; CHUNK * k],
+            |z, (chunk, out)| {
+                let start = chunk * CHUNK;
+                let c = out.len();
+                self.fill_base(view, c, |t| start + t, &mut z[..c * k]);
+                out.fill(intercept);
+                for (term, &b) in self.terms.iter().zip(&slopes) {
+                    match term.kind {
+                        TermKind::Base(a) => {
+                            for (o, x) in out.iter_mut().zip(&z[a * c..(a + 1) * c]) {
+                                *o += b * x;
                             }
-                            TermKind::Square(a) => {
-                                for (o, x) in out.iter_mut().zip(&z[a * c..(a + 1) * c]) {
-                                    *o += b * x * x;
-                                }
+                        }
+                        TermKind::Square(a) => {
+                            for (o, x) in out.iter_mut().zip(&z[a * c..(a + 1) * c]) {
+                                *o += b * x * x;
                             }
-                            TermKind::Product(a, bb) => {
-                                let za = &z[a * c..(a + 1) * c];
-                                let zb = &z[bb * c..(bb + 1) * c];
-                                for ((o, x), y) in out.iter_mut().zip(za).zip(zb) {
-                                    *o += b * x * y;
-                                }
+                        }
+                        TermKind::Product(a, bb) => {
+                            let za = &z[a * c..(a + 1) * c];
+                            let zb = &z[bb * c..(bb + 1) * c];
+                            for ((o, x), y) in out.iter_mut().zip(za).zip(zb) {
+                                *o += b * x * y;
                             }
                         }
                     }
-                },
-            );
+                }
+            },
+        );
         eta
     }
 }
@@ -441,7 +439,11 @@ mod tests {
         let n = d.n_fit_rows();
         for r in [0, 17, 4095, 4096, 4999] {
             let direct: f64 = (0..p).map(|j| coef[j] * d.fit_matrix()[j * n + r]).sum();
-            assert!((eta[r] - direct).abs() < 1e-10, "row {r}: {} vs {direct}", eta[r]);
+            assert!(
+                (eta[r] - direct).abs() < 1e-10,
+                "row {r}: {} vs {direct}",
+                eta[r]
+            );
         }
     }
 }

@@ -289,10 +289,10 @@ impl Problem<'_> {
         let mut out = vec![0.0; n];
         out.par_chunks_mut(CHUNK).enumerate().for_each(|(c, o)| {
             let lo = c * CHUNK;
-            for j in 0..k {
+            for (j, dj) in d.iter().enumerate().take(k) {
                 let col = &self.x[j * n + lo..j * n + lo + o.len()];
                 for (a, x) in o.iter_mut().zip(col) {
-                    *a += d[j] * x;
+                    *a += dj * x;
                 }
             }
         });
@@ -391,7 +391,10 @@ pub fn fit_logistic(
     sample_weights: Option<&[f64]>,
     params: &LogisticValidParams,
 ) -> Result<LogisticModel, ShiftError> {
-    assert!(n > 0 && x.len() % n == 0, "design buffer must hold whole columns");
+    assert!(
+        n > 0 && x.len() % n == 0,
+        "design buffer must hold whole columns"
+    );
     assert_eq!(y.len(), n);
     let k = x.len() / n;
     if let Some(s) = sample_weights {
@@ -413,8 +416,8 @@ pub fn fit_logistic(
     };
     let (mut w1, mut w0) = (0.0, 0.0);
     let (mut c1, mut c0) = (0, 0);
-    for r in 0..n {
-        if y[r] {
+    for (r, &positive) in y.iter().enumerate() {
+        if positive {
             w1 += problem.weight(r);
             c1 += 1;
         } else {
@@ -462,7 +465,11 @@ pub fn fit_logistic(
                 Ok(d) => break d,
                 Err(pivot) => {
                     let scale = (0..k).map(|j| h[[j, j]].abs()).fold(0.0, f64::max).max(1.0);
-                    ridge = if ridge == 0.0 { 1e-12 * scale } else { ridge * 100.0 };
+                    ridge = if ridge == 0.0 {
+                        1e-12 * scale
+                    } else {
+                        ridge * 100.0
+                    };
                     if ridge > scale {
                         return Err(ShiftError::NotPositiveDefinite {
                             iteration: iterations,
@@ -502,12 +509,15 @@ pub fn fit_logistic(
 
 /// linfa entry point: records are rows x features (any layout, no ones column), targets
 /// are `true` for class 1 (the pool). Dataset weights, when present, are sample weights.
-impl<D: Data<Elem = f64>, T: AsSingleTargets<Elem = bool>>
-    Fit<ArrayBase<D, Ix2>, T, ShiftError> for LogisticValidParams
+impl<D: Data<Elem = f64>, T: AsSingleTargets<Elem = bool>> Fit<ArrayBase<D, Ix2>, T, ShiftError>
+    for LogisticValidParams
 {
     type Object = LogisticModel;
 
-    fn fit(&self, dataset: &DatasetBase<ArrayBase<D, Ix2>, T>) -> Result<LogisticModel, ShiftError> {
+    fn fit(
+        &self,
+        dataset: &DatasetBase<ArrayBase<D, Ix2>, T>,
+    ) -> Result<LogisticModel, ShiftError> {
         let records = &dataset.records;
         let n = records.nrows();
         let mut x = vec![1.0; n * (1 + records.ncols())];
@@ -516,7 +526,12 @@ impl<D: Data<Elem = f64>, T: AsSingleTargets<Elem = bool>>
                 *o = *v;
             }
         }
-        let y: Vec<bool> = dataset.targets.as_single_targets().iter().copied().collect();
+        let y: Vec<bool> = dataset
+            .targets
+            .as_single_targets()
+            .iter()
+            .copied()
+            .collect();
         let weights: Option<Vec<f64>> = dataset
             .weights()
             .map(|w| w.iter().map(|&v| f64::from(v)).collect());

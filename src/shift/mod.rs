@@ -31,13 +31,11 @@ use rand_chacha::ChaCha8Rng;
 use serde::Serialize;
 
 pub use diagnostics::{
-    kish_effective_sample_size, pareto_khat, roc_auc, standardized_mean_difference,
-    AucEstimate, FeatureBalance,
+    kish_effective_sample_size, pareto_khat, roc_auc, standardized_mean_difference, AucEstimate,
+    FeatureBalance,
 };
 pub use features::{Design, Expansion};
-pub use logistic::{
-    fit_logistic, FitReport, LogisticModel, LogisticParams, LogisticValidParams,
-};
+pub use logistic::{fit_logistic, FitReport, LogisticModel, LogisticParams, LogisticValidParams};
 pub use warnings::{Severity, ShiftWarning};
 pub use weights::CapReport;
 
@@ -46,7 +44,9 @@ pub use weights::CapReport;
 #[non_exhaustive]
 pub enum ShiftError {
     /// The feature buffer length does not match rows x features.
-    #[error("feature buffer has {len} values, expected {rows} rows x {features} features = {expected}")]
+    #[error(
+        "feature buffer has {len} values, expected {rows} rows x {features} features = {expected}"
+    )]
     BufferLength {
         len: usize,
         rows: usize,
@@ -94,7 +94,9 @@ pub enum ShiftError {
     #[error("weight {index} is {value}; weights must be finite and >= 0")]
     InvalidWeight { index: usize, value: f64 },
     /// Labels for the classifier contained only one class.
-    #[error("the classifier needs both classes, got {positives} positives and {negatives} negatives")]
+    #[error(
+        "the classifier needs both classes, got {positives} positives and {negatives} negatives"
+    )]
     OneClass { positives: usize, negatives: usize },
     /// Error raised by linfa (dataset handling).
     #[error(transparent)]
@@ -334,11 +336,7 @@ impl ParamGuard for ShiftParams {
         }
         if let Some(m) = o.cv_max_rows {
             if m < 4 * o.cv_folds {
-                return Err(invalid(
-                    "cv_max_rows",
-                    "at least 4 x cv_folds",
-                    m as f64,
-                ));
+                return Err(invalid("cv_max_rows", "at least 4 x cv_folds", m as f64));
             }
         }
         if o.permutations < 1 {
@@ -615,16 +613,12 @@ pub fn assess_shift(
         .cap_quantile
         .map(|q| weights::cap_weights(&mut fitted, &calibration, q));
 
-    let auc_details = diagnostics::cross_validated_auc(
-        &design,
-        &labels,
-        &rows,
-        n,
-        m,
-        options,
-        &mut rng,
-    )?;
-    let cal_weights: Vec<f64> = calibration.iter().map(|&i| fitted.labeled_weight[i]).collect();
+    let auc_details =
+        diagnostics::cross_validated_auc(&design, &labels, &rows, n, m, options, &mut rng)?;
+    let cal_weights: Vec<f64> = calibration
+        .iter()
+        .map(|&i| fitted.labeled_weight[i])
+        .collect();
     let ess = kish_effective_sample_size(&cal_weights)?;
     let n_cal = cal_weights.len();
     let log_w: Vec<f64> = cal_weights.iter().map(|w| w.ln()).collect();
@@ -722,5 +716,269 @@ pub(crate) mod test_support {
     /// Feature names x0, x1, ...
     pub fn names(count: usize) -> Vec<String> {
         (0..count).map(|i| format!("x{i}")).collect()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::test_support::{names, normal_table};
+    use super::*;
+
+    fn run(
+        lab: &[f64],
+        n: usize,
+        pool: &[f64],
+        m: usize,
+        nm: &[String],
+        params: ShiftParams,
+    ) -> ShiftAssessment {
+        assess_shift_with(
+            FeatureView::new(lab, n, nm).unwrap(),
+            FeatureView::new(pool, m, nm).unwrap(),
+            params,
+        )
+        .unwrap()
+    }
+
+    fn diagnostics_named(a: &ShiftAssessment) -> Vec<&str> {
+        a.summary
+            .warnings
+            .iter()
+            .map(|w| w.diagnostic.as_str())
+            .collect()
+    }
+
+    #[test]
+    fn options_are_validated_once() {
+        let bad = [
+            ShiftParams::new().alpha(-1.0),
+            ShiftParams::new().fdr(1.5),
+            ShiftParams::new().cv_folds(1),
+            ShiftParams::new().cap_quantile(Some(0.0)),
+            ShiftParams::new().fit_rows(FitRows::HeldOut {
+                labeled_fraction: 1.0,
+            }),
+            ShiftParams::new().max_pool_sample(Some(1)),
+        ];
+        for p in bad {
+            assert!(matches!(p.check(), Err(ShiftError::InvalidOption { .. })));
+        }
+        let nm = names(1);
+        let err = FeatureView::new(&[1.0, f64::NAN], 2, &nm).unwrap_err();
+        assert!(matches!(err, ShiftError::NonFinite { row: 1, .. }));
+    }
+
+    #[test]
+    fn no_shift_gives_no_warnings() {
+        // Same distribution in both sets: the AUC interval should cover 0.5, the
+        // permutation test should not reject, and no threshold should be crossed
+        // (statistical fact; one seeded draw).
+        let nm = names(4);
+        let lab = normal_table(3000, &[0.0; 4], &[1.0; 4], 21);
+        let pool = normal_table(3000, &[0.0; 4], &[1.0; 4], 22);
+        let a = run(
+            &lab,
+            3000,
+            &pool,
+            3000,
+            &nm,
+            ShiftParams::new().permutations(199),
+        );
+        let s = &a.summary;
+        assert!(s.auc_ci[0] <= 0.5 && 0.5 <= s.auc_ci[1], "{:?}", s.auc_ci);
+        assert!(s.permutation_p > 0.05, "{}", s.permutation_p);
+        assert!(s.warnings.is_empty(), "{:#?}", s.warnings);
+        assert!(s.converged);
+        assert!(s.ess_fraction > 0.95);
+        // No shift: weights near 1 (density ratio scale).
+        assert!((s.weights.labeled_quantiles[4] - 1.0).abs() < 0.1);
+    }
+
+    #[test]
+    fn extreme_shift_warns_and_weights_stay_finite() {
+        let nm = names(3);
+        let lab = normal_table(1500, &[0.0; 3], &[1.0; 3], 31);
+        let pool = normal_table(1500, &[4.0, 0.0, 0.0], &[1.0; 3], 32);
+        let a = run(
+            &lab,
+            1500,
+            &pool,
+            1500,
+            &nm,
+            ShiftParams::new().permutations(99),
+        );
+        let found = diagnostics_named(&a);
+        for expected in ["auc", "ess_fraction", "khat", "unreachable_share"] {
+            assert!(found.contains(&expected), "missing {expected}: {found:?}");
+        }
+        assert_eq!(a.summary.warnings[0].severity, Severity::Severe);
+        assert!(a.summary.permutation_p < 0.05);
+        for w in a.labeled.weight.iter().chain(&a.pool.weight) {
+            assert!(w.is_finite() && *w > 0.0);
+        }
+        let j = serde_json::to_value(&a.summary.warnings[0]).unwrap();
+        for key in ["diagnostic", "value", "threshold", "severity", "message"] {
+            assert!(j.get(key).is_some());
+        }
+    }
+
+    #[test]
+    fn separated_sets_never_give_nan_or_infinite_weights() {
+        let nm = names(2);
+        let lab = normal_table(400, &[0.0, 0.0], &[1.0, 1.0], 41);
+        let pool = normal_table(400, &[60.0, 0.0], &[1.0, 1.0], 42);
+        let a = run(
+            &lab,
+            400,
+            &pool,
+            400,
+            &nm,
+            ShiftParams::new().alpha(1e-4).permutations(9),
+        );
+        for v in a
+            .labeled
+            .weight
+            .iter()
+            .chain(&a.pool.weight)
+            .chain(&a.labeled.pool_probability)
+        {
+            assert!(v.is_finite());
+        }
+        assert!(a.summary.ess.is_finite());
+        assert!(a.summary.fit.coefficients.iter().all(|c| c.is_finite()));
+    }
+
+    #[test]
+    fn variance_shift_is_flagged_until_squares_are_added() {
+        // Pool narrower than the labeled set in x0: a linear classifier cannot see it, the
+        // weighted SMD of x0^2 stays large; with squared features it clears (design.md 2.5).
+        let nm = names(2);
+        let lab = normal_table(4000, &[0.0, 0.0], &[1.0, 1.0], 51);
+        let pool = normal_table(4000, &[0.0, 0.0], &[0.6, 1.0], 52);
+        let linear = run(
+            &lab,
+            4000,
+            &pool,
+            4000,
+            &nm,
+            ShiftParams::new().permutations(19),
+        );
+        assert!(
+            diagnostics_named(&linear).contains(&"adequacy_smd"),
+            "{:#?}",
+            linear.summary.warnings
+        );
+        assert_eq!(
+            linear.summary.adequacy.worst_feature.as_deref(),
+            Some("x0^2")
+        );
+        let squares = run(
+            &lab,
+            4000,
+            &pool,
+            4000,
+            &nm,
+            ShiftParams::new()
+                .permutations(19)
+                .expansion(Expansion::Squares),
+        );
+        assert!(squares.summary.adequacy.max_abs_weighted_squares < warnings::ADEQUACY_SMD_HIGH);
+        assert!(
+            !diagnostics_named(&squares).contains(&"adequacy_smd"),
+            "{:#?}",
+            squares.summary.warnings
+        );
+    }
+
+    #[test]
+    fn held_out_rows_do_not_calibrate() {
+        let nm = names(2);
+        let lab = normal_table(1000, &[0.0, 0.0], &[1.0, 1.0], 61);
+        let pool = normal_table(2000, &[0.5, 0.0], &[1.0, 1.0], 62);
+        let a = run(
+            &lab,
+            1000,
+            &pool,
+            2000,
+            &nm,
+            ShiftParams::new()
+                .permutations(19)
+                .fit_rows(FitRows::HeldOut {
+                    labeled_fraction: 0.3,
+                }),
+        );
+        let fit_rows = a.labeled.in_fit.iter().filter(|b| **b).count();
+        assert_eq!(fit_rows, 300);
+        assert_eq!(a.summary.calibration_rows, 700);
+        assert!(a
+            .labeled
+            .in_fit
+            .iter()
+            .zip(&a.labeled_calibrates)
+            .all(|(f, c)| f != c));
+        assert_eq!(a.pool.in_fit.iter().filter(|b| **b).count(), 600);
+        // ESS refers to the calibrating rows only.
+        let w: Vec<f64> = (0..1000)
+            .filter(|&i| a.labeled_calibrates[i])
+            .map(|i| a.labeled.weight[i])
+            .collect();
+        assert!((a.summary.ess - kish_effective_sample_size(&w).unwrap()).abs() < 1e-9);
+    }
+
+    #[test]
+    fn pool_sample_is_class_ratio_corrected() {
+        // Fitting on a 10% pool sample with sample weight m / sample keeps e(x) on the
+        // full-pool scale: the mean pool log-weight stays near the full fit's (uncorrected
+        // it would drop by log(10) = 2.3).
+        let nm = names(2);
+        let lab = normal_table(1000, &[0.0, 0.0], &[1.0, 1.0], 71);
+        let pool = normal_table(10_000, &[0.5, -0.3], &[1.0, 1.0], 72);
+        let full = run(
+            &lab,
+            1000,
+            &pool,
+            10_000,
+            &nm,
+            ShiftParams::new().permutations(9),
+        );
+        let sampled = run(
+            &lab,
+            1000,
+            &pool,
+            10_000,
+            &nm,
+            ShiftParams::new()
+                .permutations(9)
+                .max_pool_sample(Some(1000)),
+        );
+        assert_eq!(sampled.summary.fit.pool_rows_fit, 1000);
+        assert_eq!(sampled.summary.fit.pool_sample_weight, 10.0);
+        let mean_log = |w: &[f64]| w.iter().map(|v| v.ln()).sum::<f64>() / w.len() as f64;
+        let (a, b) = (mean_log(&full.pool.weight), mean_log(&sampled.pool.weight));
+        assert!((a - b).abs() < 0.1, "{a} vs {b}");
+        assert!(sampled.pool.weight.iter().all(|w| w.is_finite()));
+    }
+
+    #[test]
+    fn capping_is_reported() {
+        let nm = names(1);
+        let lab = normal_table(500, &[0.0], &[1.0], 81);
+        let pool = normal_table(500, &[1.0], &[1.0], 82);
+        let a = run(
+            &lab,
+            500,
+            &pool,
+            500,
+            &nm,
+            ShiftParams::new().permutations(9).cap_quantile(Some(0.9)),
+        );
+        let cap = a.summary.weights.cap.as_ref().expect("cap reported");
+        assert!(cap.labeled_capped + cap.pool_capped >= 99);
+        assert!(a
+            .labeled
+            .weight
+            .iter()
+            .chain(&a.pool.weight)
+            .all(|&w| w <= cap.cap));
     }
 }

@@ -100,7 +100,11 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             ),
         ));
     }
-    if !(s.khat <= s.khat_threshold) {
+    // NaN-safe: an infinite or undefined k-hat warns too.
+    if matches!(
+        s.khat.partial_cmp(&s.khat_threshold),
+        Some(std::cmp::Ordering::Greater) | None
+    ) {
         out.push(warn(
             "khat",
             s.khat,
@@ -160,7 +164,10 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             ),
         ));
     }
-    let worst_adequacy = s.adequacy.max_abs_weighted_squares.max(s.adequacy.max_abs_weighted_products);
+    let worst_adequacy = s
+        .adequacy
+        .max_abs_weighted_squares
+        .max(s.adequacy.max_abs_weighted_products);
     if worst_adequacy > ADEQUACY_SMD_HIGH {
         out.push(warn(
             "adequacy_smd",
@@ -182,7 +189,11 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
     if let Some(f) = worst_balance {
         let v = f.smd_weighted.abs();
         if v > SMD_HIGH {
-            let count = s.balance.iter().filter(|f| f.smd_weighted.abs() > SMD_HIGH).count();
+            let count = s
+                .balance
+                .iter()
+                .filter(|f| f.smd_weighted.abs() > SMD_HIGH)
+                .count();
             out.push(warn(
                 "smd_weighted",
                 v,
@@ -211,6 +222,10 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             ),
         ));
     }
-    out.sort_by(|a, b| a.severity.cmp(&b.severity).then(b.excess.total_cmp(&a.excess)));
+    out.sort_by(|a, b| {
+        a.severity
+            .cmp(&b.severity)
+            .then(b.excess.total_cmp(&a.excess))
+    });
     out
 }

@@ -203,8 +203,8 @@ fn bh_selection_grows_with_q() {
             .map(|&q| benjamini_hochberg(&p, q).unwrap().selected)
             .collect();
         for pair in selections.windows(2) {
-            for j in 0..p.len() {
-                assert!(!pair[0][j] || pair[1][j], "case {case}: unit {j} dropped");
+            for (j, (&smaller, &larger)) in pair[0].iter().zip(&pair[1]).enumerate() {
+                assert!(!smaller || larger, "case {case}: unit {j} dropped");
             }
         }
         // At q = 1 every p-value passes at k = m.
@@ -274,9 +274,9 @@ fn adjusted_pvalues_decide_the_selection() {
         let q = rng.gen_range(0.01..0.9);
         let adjusted = bh_adjusted(&p, 1.0).unwrap();
         let bh = benjamini_hochberg(&p, q).unwrap();
-        for j in 0..p.len() {
-            if (adjusted[j] - q).abs() > 1e-9 {
-                assert_eq!(bh.selected[j], adjusted[j] <= q, "case {case} unit {j}");
+        for (j, (&a, &selected)) in adjusted.iter().zip(&bh.selected).enumerate() {
+            if (a - q).abs() > 1e-9 {
+                assert_eq!(selected, a <= q, "case {case} unit {j}");
             }
         }
     }

@@ -60,7 +60,13 @@ impl From<crate::table::InputError> for Failure {
 
 impl From<crate::select::SelectError> for Failure {
     fn from(e: crate::select::SelectError) -> Self {
-        Failure::Input(e.to_string())
+        match e {
+            crate::select::SelectError::FdrOutOfRange(_) => Failure::Input(format!(
+                "--fdr: {e}. Hint: pass --fdr Q with 0 < Q <= 1, e.g. --fdr 0.1 (on average \
+                 at most 10% of the shortlist is not above the threshold)."
+            )),
+            other => Failure::Input(other.to_string()),
+        }
     }
 }
 

@@ -38,6 +38,13 @@ Examples:
 /// Command-line arguments of `select`, as typed.
 #[derive(Debug, Args)]
 #[command(after_long_help = SELECT_HELP)]
+// Exactly one of the two threshold flags; as a group, the error names both choices.
+#[command(group(
+    clap::ArgGroup::new("threshold_choice")
+        .args(["threshold", "threshold_column"])
+        .required(true)
+        .multiple(false)
+))]
 pub struct SelectArgs {
     /// Labeled file (CSV, or TSV by extension): units with measured outcome and prediction.
     #[arg(long, value_name = "FILE")]
@@ -55,13 +62,7 @@ pub struct SelectArgs {
     #[arg(long, default_value = "pred", value_name = "NAME")]
     pub prediction: String,
     /// One threshold for every unit: a unit is interesting when its outcome exceeds it.
-    #[arg(
-        long,
-        value_name = "VALUE",
-        allow_negative_numbers = true,
-        required_unless_present = "threshold_column",
-        conflicts_with = "threshold_column"
-    )]
+    #[arg(long, value_name = "VALUE", allow_negative_numbers = true)]
     pub threshold: Option<f64>,
     /// Per-unit thresholds, a column present in both files.
     #[arg(long, value_name = "NAME")]
@@ -83,7 +84,12 @@ pub struct SelectArgs {
     #[arg(long, value_enum, default_value_t = PruningArg::Homogeneous)]
     pub pruning: PruningArg,
     /// Target false discovery rate q, in (0, 1].
-    #[arg(long, default_value_t = 0.1, value_name = "Q")]
+    #[arg(
+        long,
+        default_value_t = 0.1,
+        value_name = "Q",
+        allow_negative_numbers = true
+    )]
     pub fdr: f64,
     /// Seed of the random draws (randomized p-values, pruning).
     #[arg(long, default_value_t = crate::random::DEFAULT_SEED)]

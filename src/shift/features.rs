@@ -75,16 +75,16 @@ pub struct Design {
     n_fit: usize,
 }
 
-/// Mean, population SD, and whether the values are all equal.
-fn column_stats(values: &[f64]) -> (f64, f64, bool) {
-    let n = values.len() as f64;
-    let mean = values.iter().sum::<f64>() / n;
-    let var = values.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / n;
-    let (lo, hi) = values
-        .iter()
-        .fold((f64::INFINITY, f64::NEG_INFINITY), |(lo, hi), &v| {
-            (lo.min(v), hi.max(v))
+/// Mean, population SD (two passes), and whether the `count` values are all equal.
+fn column_stats<I: Iterator<Item = f64> + Clone>(values: I, count: usize) -> (f64, f64, bool) {
+    let n = count as f64;
+    let (sum, lo, hi) = values
+        .clone()
+        .fold((0.0, f64::INFINITY, f64::NEG_INFINITY), |(s, lo, hi), v| {
+            (s + v, lo.min(v), hi.max(v))
         });
+    let mean = sum / n;
+    let var = values.map(|v| (v - mean) * (v - mean)).sum::<f64>() / n;
     (mean, var.sqrt(), lo == hi)
 }
 
@@ -103,24 +103,23 @@ impl Design {
     ) -> Result<Self, ShiftError> {
         let n_fit = labeled_rows.len() + pool_rows.len();
         let names = labeled.names();
-        let gathered: Vec<(Vec<f64>, f64, f64, bool)> = (0..labeled.n_features())
+        // Fitting-row values of input column f, without copying them.
+        let values = |f: usize| {
+            let (lc, pc) = (labeled.column(f), pool.column(f));
+            labeled_rows
+                .iter()
+                .map(move |&r| lc[r])
+                .chain(pool_rows.iter().map(move |&r| pc[r]))
+        };
+        let gathered: Vec<(f64, f64, bool)> = (0..labeled.n_features())
             .into_par_iter()
-            .map(|f| {
-                let (lc, pc) = (labeled.column(f), pool.column(f));
-                let col: Vec<f64> = labeled_rows
-                    .iter()
-                    .map(|&r| lc[r])
-                    .chain(pool_rows.iter().map(|&r| pc[r]))
-                    .collect();
-                let (mean, sd, constant) = column_stats(&col);
-                (col, mean, sd, constant)
-            })
+            .map(|f| column_stats(values(f), n_fit))
             .collect();
         let mut kept = Vec::new();
         let mut dropped = Vec::new();
         let mut base_mean = Vec::new();
         let mut base_scale = Vec::new();
-        for (f, (_, mean, sd, constant)) in gathered.iter().enumerate() {
+        for (f, (mean, sd, constant)) in gathered.iter().enumerate() {
             if *constant {
                 dropped.push(names[f].clone());
             } else {
@@ -172,14 +171,12 @@ impl Design {
                 .par_chunks_mut(n_fit.max(1))
                 .enumerate()
                 .for_each(|(a, out)| {
-                    let (col, ..) = &gathered[kept[a]];
                     let (mean, sd) = (base_mean[a], base_scale[a]);
-                    for (o, v) in out.iter_mut().zip(col) {
+                    for (o, v) in out.iter_mut().zip(values(kept[a])) {
                         *o = (v - mean) / sd;
                     }
                 });
         }
-        drop(gathered);
         // Expanded terms from the standardized base columns, then standardized themselves.
         let mut keep_term = vec![true; terms.len()];
         if terms.len() > k {
@@ -205,7 +202,7 @@ impl Design {
                         }
                         TermKind::Base(_) => unreachable!("base terms come first"),
                     }
-                    let (mean, sd, constant) = column_stats(out);
+                    let (mean, sd, constant) = column_stats(out.iter().copied(), n_fit);
                     if !constant {
                         for o in out.iter_mut() {
                             *o = (*o - mean) / sd;

@@ -210,7 +210,7 @@ pub fn weights_svg(labeled: &[f64], pool: &[f64], bins: usize) -> Result<String,
 }
 
 /// Balance plot: |SMD| per feature before (open circle) and after (filled circle)
-/// weighting, with the 0.1 line of Austin (2009).
+/// weighting, with the 0.1 line of Austin (2009). Infinite SMDs are drawn at 0.
 ///
 /// # Errors
 /// [`PlotError::Empty`] for an empty `balance`.
@@ -234,7 +234,10 @@ pub fn balance_svg(balance: &[FeatureBalance]) -> Result<String, PlotError> {
     let height = 120 + 22 * n as u32;
     draw(PLOT, (720, height), |root| {
         let mut chart = ChartBuilder::on(root)
-            .caption("Feature balance: |SMD| pool vs labeled", (FONT, 20))
+            .caption(
+                "|SMD| pool vs labeled: open = unweighted, filled = weighted",
+                (FONT, 18),
+            )
             .margin(12)
             .x_label_area_size(40)
             .y_label_area_size((8 * longest + 16).min(300))
@@ -264,9 +267,7 @@ pub fn balance_svg(balance: &[FeatureBalance]) -> Result<String, PlotError> {
                     POOL.stroke_width(2),
                 )
             }))
-            .map_err(backend(PLOT))?
-            .label("unweighted")
-            .legend(|(x, y)| Circle::new((x + 6, y), 5, POOL.stroke_width(2)));
+            .map_err(backend(PLOT))?;
         chart
             .draw_series(balance.iter().enumerate().map(|(i, b)| {
                 Circle::new(
@@ -275,15 +276,6 @@ pub fn balance_svg(balance: &[FeatureBalance]) -> Result<String, PlotError> {
                     LABELED.filled(),
                 )
             }))
-            .map_err(backend(PLOT))?
-            .label("weighted")
-            .legend(|(x, y)| Circle::new((x + 6, y), 5, LABELED.filled()));
-        chart
-            .configure_series_labels()
-            .position(SeriesLabelPosition::LowerRight)
-            .border_style(BLACK)
-            .background_style(WHITE.mix(0.8))
-            .draw()
             .map_err(backend(PLOT))?;
         Ok(())
     })

@@ -812,6 +812,14 @@ mod tests {
             assert!(found.contains(&expected), "missing {expected}: {found:?}");
         }
         assert_eq!(a.summary.warnings[0].severity, Severity::Severe);
+        let ranks: Vec<usize> = found
+            .iter()
+            .map(|d| warnings::ORDER.iter().position(|o| o == d).unwrap())
+            .collect();
+        assert!(
+            ranks.windows(2).all(|p| p[0] < p[1]),
+            "not worst first: {found:?}"
+        );
         assert!(a.summary.permutation_p < 0.05);
         for w in a.labeled.weight.iter().chain(&a.pool.weight) {
             assert!(w.is_finite() && *w > 0.0);

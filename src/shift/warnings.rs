@@ -46,17 +46,29 @@ pub struct ShiftWarning {
     pub severity: Severity,
     /// Plain-words meaning for the shortlist.
     pub message: String,
-    /// How far past the threshold, relative (used to order warnings of equal severity).
-    #[serde(skip)]
-    excess: f64,
 }
+
+/// Order of warnings, worst first: problems that make the weights wrong (solver,
+/// clamping, a weight model that misses part of the shift) before those that make them
+/// unreliable (k-hat, ESS, AUC near 1), before lost power (unreachable units), before
+/// cautions (remaining mean imbalance, pool outside the overlap).
+pub const ORDER: [&str; 9] = [
+    "converged",
+    "clamped_weights",
+    "adequacy_smd",
+    "khat",
+    "ess_fraction",
+    "auc",
+    "unreachable_share",
+    "smd_weighted",
+    "pool_share_above_0_9",
+];
 
 fn warn(
     diagnostic: &str,
     value: f64,
     threshold: f64,
     severity: Severity,
-    excess: f64,
     message: String,
 ) -> ShiftWarning {
     ShiftWarning {
@@ -65,12 +77,10 @@ fn warn(
         threshold,
         severity,
         message,
-        excess,
     }
 }
 
-/// All warnings for a summary, worst first (severe before caution, then by how far past
-/// the threshold).
+/// All warnings for a summary, worst first (the fixed order of `ORDER`).
 pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
     let mut out = Vec::new();
     if !s.converged {
@@ -79,7 +89,6 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             s.fit.report.gradient_norm,
             s.fit.tolerance,
             Severity::Severe,
-            f64::INFINITY,
             format!(
                 "the domain classifier did not converge after {} iterations (gradient norm {:.3e}); its weights are not the penalized fit and should not be used",
                 s.iterations, s.fit.report.gradient_norm
@@ -92,7 +101,6 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             s.fit.clamped_weights as f64,
             0.0,
             Severity::Severe,
-            f64::INFINITY,
             format!(
                 "{} rows had log-weights beyond +-{} and were clamped; some rows lie far outside the other set and their weights are meaningless",
                 s.fit.clamped_weights,
@@ -110,7 +118,6 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             s.khat,
             s.khat_threshold,
             Severity::Severe,
-            s.khat / s.khat_threshold.max(1e-3),
             format!(
                 "Pareto k-hat of the labeled weights is {:.2} (threshold {:.2}): the weight distribution has such a heavy tail that weighted estimates are unreliable; a few labeled compounds dominate the calibration and the FDR level is not trustworthy",
                 s.khat, s.khat_threshold
@@ -123,7 +130,6 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             s.ess_fraction,
             ESS_FRACTION_LOW,
             Severity::Severe,
-            ESS_FRACTION_LOW / s.ess_fraction.max(1e-12),
             format!(
                 "the labeled weights are worth only {:.0} of {} labeled compounds ({:.1}%, threshold {:.0}%): p-values rest on very few effective calibration points, so the shortlist will be small or noisy",
                 s.ess,
@@ -139,7 +145,6 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             s.auc,
             AUC_HIGH,
             Severity::Severe,
-            (s.auc - 0.5) / (AUC_HIGH - 0.5),
             format!(
                 "the domain classifier tells labeled compounds from pool compounds with AUC {:.3} (threshold {AUC_HIGH}): the two sets barely overlap, weights are extreme, and much of the pool is unlike anything assayed",
                 s.auc
@@ -154,7 +159,6 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             unreachable_share,
             UNREACHABLE_SHARE_HIGH,
             Severity::Severe,
-            unreachable_share / UNREACHABLE_SHARE_HIGH,
             format!(
                 "{} pool compounds ({:.1}%, threshold {:.0}%) can never be selected at q = {}: their weight alone keeps their p-value above q, because the labeled set does not cover that part of the pool",
                 s.unreachable_count,
@@ -174,7 +178,6 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             worst_adequacy,
             ADEQUACY_SMD_HIGH,
             Severity::Severe,
-            worst_adequacy / ADEQUACY_SMD_HIGH,
             format!(
                 "after weighting, `{}` is still imbalanced (|SMD| {:.2}, threshold {ADEQUACY_SMD_HIGH}): the weight model misses part of the shift (e.g. a difference in spread), which can break the FDR control of every weighted procedure; refit with squared and/or pairwise features",
                 s.adequacy.worst_feature.as_deref().unwrap_or("?"),
@@ -199,7 +202,6 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
                 v,
                 SMD_HIGH,
                 Severity::Caution,
-                v / SMD_HIGH,
                 format!(
                     "{count} feature(s) remain imbalanced after weighting, worst `{}` with |SMD| {:.2} (threshold {SMD_HIGH}): the weighted labeled set still differs from the pool, so p-values may be miscalibrated for compounds that differ in these features",
                     f.feature, v
@@ -214,7 +216,6 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             outside,
             OUTSIDE_OVERLAP_SHARE_HIGH,
             Severity::Caution,
-            outside / OUTSIDE_OVERLAP_SHARE_HIGH,
             format!(
                 "{:.1}% of the pool (threshold {:.0}%) lies where the classifier puts balanced pool probability above 0.9, i.e. pool density more than 9 times the labeled density: those compounds carry large weights and are hard to select",
                 100.0 * outside,
@@ -222,10 +223,12 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             ),
         ));
     }
-    out.sort_by(|a, b| {
-        a.severity
-            .cmp(&b.severity)
-            .then(b.excess.total_cmp(&a.excess))
-    });
+    let rank = |w: &ShiftWarning| {
+        ORDER
+            .iter()
+            .position(|d| *d == w.diagnostic)
+            .unwrap_or(ORDER.len())
+    };
+    out.sort_by_key(rank);
     out
 }

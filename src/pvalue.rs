@@ -32,6 +32,9 @@ pub enum PValueError {
     /// A score is NaN.
     #[error("labeled score {index} is NaN; scores must be numbers (+inf is allowed)")]
     NanScore { index: usize },
+    /// A pool score is NaN.
+    #[error("pool score {index} is NaN; scores must be numbers")]
+    NanPoolScore { index: usize },
     /// Weight vector length differs from the score vector length.
     #[error("{what}: {got} weights for {expected} units")]
     LengthMismatch {
@@ -185,6 +188,16 @@ impl PoolPValues {
 }
 
 /// Check that pool weights (if any) are usable; returns an error naming the first bad one.
+fn check_pool(pool_scores: &[f64], pool_weights: Option<&[f64]>) -> Result<(), PValueError> {
+    if let Some(index) = pool_scores.iter().position(|v| v.is_nan()) {
+        return Err(PValueError::NanPoolScore { index });
+    }
+    if let Some(w) = pool_weights {
+        check_weights("pool", w, pool_scores.len())?;
+    }
+    Ok(())
+}
+
 pub(crate) fn check_weights(
     what: &'static str,
     weights: &[f64],
@@ -219,7 +232,7 @@ pub(crate) fn weight_of(weights: Option<&[f64]>, j: usize) -> f64 {
 /// `p_j = (sum_i w_i 1{V_i <= Vh_j} + w_j) / (W + w_j)` (design.md 2.2; Jin & Candes 2023).
 ///
 /// # Errors
-/// Pool weights of the wrong length or not finite and positive.
+/// NaN pool scores; pool weights of the wrong length or not finite and positive.
 ///
 /// # Examples
 /// ```
@@ -234,9 +247,7 @@ pub fn conservative_pvalues(
     pool_scores: &[f64],
     pool_weights: Option<&[f64]>,
 ) -> Result<PoolPValues, PValueError> {
-    if let Some(w) = pool_weights {
-        check_weights("pool", w, pool_scores.len())?;
-    }
+    check_pool(pool_scores, pool_weights)?;
     let total = calibration.total_weight();
     let (numerator, denominator) = pool_scores
         .par_iter()
@@ -260,16 +271,14 @@ pub fn conservative_pvalues(
 /// (design.md 2.2). The same seed and input give the same values on every machine.
 ///
 /// # Errors
-/// Pool weights of the wrong length or not finite and positive.
+/// NaN pool scores; pool weights of the wrong length or not finite and positive.
 pub fn randomized_pvalues(
     calibration: &CalibrationSet,
     pool_scores: &[f64],
     pool_weights: Option<&[f64]>,
     seed: u64,
 ) -> Result<PoolPValues, PValueError> {
-    if let Some(w) = pool_weights {
-        check_weights("pool", w, pool_scores.len())?;
-    }
+    check_pool(pool_scores, pool_weights)?;
     let total = calibration.total_weight();
     let mut rng: ChaCha20Rng = stream(seed, Stream::PValueTies);
     let mut numerator = Vec::with_capacity(pool_scores.len());
@@ -397,6 +406,14 @@ mod tests {
         assert!(matches!(
             conservative_pvalues(&cal, &[1.0], Some(&[f64::INFINITY])),
             Err(PValueError::BadWeight { .. })
+        ));
+        assert!(matches!(
+            conservative_pvalues(&cal, &[0.0, f64::NAN], None),
+            Err(PValueError::NanPoolScore { index: 1 })
+        ));
+        assert!(matches!(
+            randomized_pvalues(&cal, &[f64::NAN], None, 1),
+            Err(PValueError::NanPoolScore { index: 0 })
         ));
     }
 }

@@ -137,8 +137,8 @@ pub fn unselectable_reason(outcome: &SelectionOutcome, j: usize) -> String {
 ///
 /// Columns: `id, score, weight, p_value, selected`, then for conditional calibration
 /// `first_step, conditional_count`, then `never_selectable_because`.
-/// Floats are written in Rust's shortest round-trip form, so the same run gives the same
-/// bytes.
+/// Floats are written in their shortest round-trip form (ryu), so the same run gives the
+/// same bytes and reading them back gives the same numbers.
 ///
 /// # Panics
 /// If `ids` and the outcome differ in length.
@@ -152,22 +152,42 @@ pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome) -> Vec<u8> {
     }
     header.push("never_selectable_because");
     writer.write_record(&header).expect("write to memory");
-    let mut row: Vec<String> = Vec::with_capacity(header.len());
+    let mut floats = ryu::Buffer::new();
+    let mut integers = itoa_buffer();
+    let mut record = csv::ByteRecord::with_capacity(128, header.len());
     for (j, id) in ids.iter().enumerate() {
-        row.clear();
-        row.push(id.clone());
-        row.push(outcome.scores[j].to_string());
-        row.push(outcome.weights[j].to_string());
-        row.push(outcome.p_values[j].to_string());
-        row.push(outcome.selected[j].to_string());
-        if let (Some(first), Some(count)) = (&outcome.first_step, &outcome.conditional_count) {
-            row.push(first[j].to_string());
-            row.push(count[j].to_string());
+        record.clear();
+        record.push_field(id.as_bytes());
+        for value in [outcome.scores[j], outcome.weights[j], outcome.p_values[j]] {
+            record.push_field(floats.format(value).as_bytes());
         }
-        row.push(unselectable_reason(outcome, j));
-        writer.write_record(&row).expect("write to memory");
+        record.push_field(bool_text(outcome.selected[j]));
+        if let (Some(first), Some(count)) = (&outcome.first_step, &outcome.conditional_count) {
+            record.push_field(bool_text(first[j]));
+            integers.clear();
+            let _ = write!(integers, "{}", count[j]);
+            record.push_field(integers.as_bytes());
+        }
+        if outcome.unreachable[j] {
+            record.push_field(unselectable_reason(outcome, j).as_bytes());
+        } else {
+            record.push_field(b"");
+        }
+        writer.write_byte_record(&record).expect("write to memory");
     }
     writer.into_inner().expect("flush to memory")
+}
+
+fn itoa_buffer() -> String {
+    String::with_capacity(20)
+}
+
+fn bool_text(value: bool) -> &'static [u8] {
+    if value {
+        b"true"
+    } else {
+        b"false"
+    }
 }
 
 /// The short summary printed on stdout.

@@ -93,6 +93,34 @@ pub(crate) fn print_stdout(text: &str) {
     }
 }
 
+/// Prints how long each phase took to stderr when `WEIGHBRIDGE_TIMINGS` is set (for
+/// benchmarks and for users who want to know where the time goes).
+pub(crate) struct PhaseTimer {
+    enabled: bool,
+    last: std::time::Instant,
+}
+
+impl PhaseTimer {
+    pub(crate) fn new() -> Self {
+        PhaseTimer {
+            enabled: std::env::var_os("WEIGHBRIDGE_TIMINGS").is_some(),
+            last: std::time::Instant::now(),
+        }
+    }
+
+    /// Report the time since the previous mark under `phase`.
+    pub(crate) fn mark(&mut self, phase: &str) {
+        if self.enabled {
+            let now = std::time::Instant::now();
+            eprintln!(
+                "timing: {phase:<28} {:8.3} s",
+                (now - self.last).as_secs_f64()
+            );
+            self.last = now;
+        }
+    }
+}
+
 /// Parse arguments, run the command, map the result to an exit code.
 pub fn main_entry() -> ExitCode {
     let cli = match Cli::try_parse() {

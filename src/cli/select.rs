@@ -13,7 +13,7 @@ use crate::score::{ScoreKind, Thresholds};
 use crate::select::{run_selection, LabeledInput, PoolInput, Procedure, SelectOptions};
 use crate::table::{read_units, OutputSet, ReadOptions, Role, UnitTable};
 
-use super::{commit_outputs, print_stdout, Failure};
+use super::{commit_outputs, print_stdout, Failure, PhaseTimer};
 
 const SELECT_HELP: &str = "\
 Reads both files completely into memory (about 100 bytes per row plus 8 per feature).
@@ -256,8 +256,10 @@ pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable
 
 /// Run `select`.
 pub fn run(args: SelectArgs) -> Result<(), Failure> {
+    let mut timer = PhaseTimer::new();
     let config = SelectConfig::try_from(args)?;
     let (labeled, pool) = read_inputs(&config)?;
+    timer.mark("read inputs");
     let outcome = run_selection(
         &config.options,
         LabeledInput {
@@ -272,6 +274,7 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
             weights: pool.weight.as_deref(),
         },
     )?;
+    timer.mark("scores, p-values, selection");
     let inputs = RunInputs {
         labeled_file: config.labeled_path.display().to_string(),
         pool_file: config.pool_path.display().to_string(),
@@ -291,7 +294,9 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     let json = serde_json::to_vec_pretty(&summary)
         .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?;
     files.add("summary.json", json);
+    timer.mark("format outputs");
     commit_outputs(files, &config.out)?;
+    timer.mark("write outputs");
     if !config.quiet {
         let mut text = text_summary(&summary, &pool.ids, &outcome);
         text.push_str(&format!(

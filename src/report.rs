@@ -221,10 +221,12 @@ pub fn text_summary(summary: &SelectSummary, ids: &[String], outcome: &Selection
     }
     let _ = writeln!(
         out,
-        "  BH on the same p-values would select: {}{}",
+        "  BH on the same {} p-values would select: {}{}",
+        s.pvalues,
         s.bh_selected_count,
         if s.weights_vary {
-            " (no finite-sample guarantee when weights vary)"
+            " (BH has no finite-sample guarantee when weights vary; conditional calibration \
+             recomputes the p-values per unit and can select more or fewer)"
         } else {
             ""
         }

@@ -7,14 +7,10 @@ use std::path::PathBuf;
 
 use clap::Args;
 
-use crate::demo::{false_discovery_proportion, generate, DemoScenario, THRESHOLD};
-use crate::fdr::Pruning;
-use crate::pvalue::PValueKind;
-use crate::report::{candidates_csv, select_summary, RunInputs, CAUTIONS};
-use crate::score::{ScoreKind, Thresholds};
-use crate::select::{
-    run_selection, LabeledInput, PoolInput, Procedure, SelectOptions, SelectionOutcome,
+use crate::demo::{
+    false_discovery_proportion, generate, repeated_screens, select_in_scenario, COMPARED, THRESHOLD,
 };
+use crate::report::{candidates_csv, select_summary, RunInputs, CAUTIONS};
 use crate::table::OutputSet;
 
 use super::{commit_outputs, print_stdout, Failure};
@@ -51,40 +47,9 @@ pub struct DemoArgs {
     /// Target false discovery rate.
     #[arg(long, default_value_t = 0.1)]
     pub fdr: f64,
-}
-
-fn select(
-    scenario: &DemoScenario,
-    procedure: Procedure,
-    weighted: bool,
-    fdr: f64,
-    seed: u64,
-) -> Result<SelectionOutcome, Failure> {
-    let options = SelectOptions {
-        fdr,
-        procedure,
-        pruning: Pruning::Homogeneous,
-        pvalues: Some(match procedure {
-            Procedure::Conditional => PValueKind::Conservative,
-            _ => PValueKind::Randomized,
-        }),
-        score: ScoreKind::Clipped,
-        seed,
-    };
-    Ok(run_selection(
-        &options,
-        LabeledInput {
-            outcome: &scenario.labeled.outcome,
-            prediction: &scenario.labeled.prediction,
-            thresholds: Thresholds::Constant(THRESHOLD),
-            weights: weighted.then_some(&scenario.labeled.true_weight[..]),
-        },
-        PoolInput {
-            prediction: &scenario.pool.prediction,
-            thresholds: Thresholds::Constant(THRESHOLD),
-            weights: weighted.then_some(&scenario.pool.true_weight[..]),
-        },
-    )?)
+    /// How many further invented screens to average over (0 to skip).
+    #[arg(long, default_value_t = 20)]
+    pub screens: usize,
 }
 
 /// Run `demo`.
@@ -96,9 +61,13 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
     }
     let scenario = generate(args.labeled, args.pool, args.seed);
     let q = args.fdr;
-    let weighted = select(&scenario, Procedure::Conditional, true, q, args.seed)?;
-    let weighted_bh = select(&scenario, Procedure::Bh, true, q, args.seed)?;
-    let unweighted = select(&scenario, Procedure::Bh, false, q, args.seed)?;
+    let outcomes = COMPARED
+        .iter()
+        .map(|&(_, procedure, weighted)| {
+            select_in_scenario(&scenario, procedure, weighted, q, args.seed)
+        })
+        .collect::<Result<Vec<_>, _>>()?;
+    let weighted = &outcomes[0];
 
     let actives_in_pool = scenario
         .pool
@@ -140,9 +109,10 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
     );
     let _ = writeln!(
         out,
-        "The team assayed {} compounds, mostly near their favourite scaffold; {} untested \
-         compounds remain.\nA compound is active when its measured activity exceeds {THRESHOLD}. \
-         The model's predictions are good near the scaffold and optimistic far from it.\n\
+        "The team assayed {} compounds, mostly from an older series; {} untested compounds \
+         remain, many from newer chemistry.\nA compound is active when its measured activity \
+         exceeds {THRESHOLD}. The model's predictions are good for the older series and \
+         optimistic for the newer chemistry.\n\
          Goal: a shortlist in which at most {:.0}% are inactive on average (FDR {q}).\n",
         scenario.labeled.len(),
         scenario.pool.len(),
@@ -151,7 +121,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
     let _ = writeln!(
         out,
         "Shift: the labeled weights are worth {:.0} equally weighted compounds ({:.1}% of the \
-         labeled set); {} pool compounds can never be selected at this level.\n",
+         labeled set); pool compounds that can never be selected at this level: {}.\n",
         weighted.labeled_ess,
         100.0 * weighted.labeled_ess / weighted.n_labeled as f64,
         weighted.unreachable_count
@@ -161,11 +131,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
         "{:<48} {:>9} {:>10} {:>8}",
         "procedure", "selected", "inactive", "FDP"
     );
-    for (name, o) in [
-        ("conditional calibration, weighted (default)", &weighted),
-        ("BH on weighted p-values (no guarantee)", &weighted_bh),
-        ("BH ignoring the shift (unweighted)", &unweighted),
-    ] {
+    for ((name, _, _), o) in COMPARED.iter().zip(&outcomes) {
         let (false_hits, chosen) = false_discovery_proportion(&scenario.pool, &o.selected);
         let fdp = if chosen == 0 {
             0.0
@@ -181,9 +147,33 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
     let _ = writeln!(
         out,
         "\n(The pool holds {actives_in_pool} truly active compounds. The false discovery \
-         proportion of one screen scatters around its average; the guarantee is about the \
-         average over repeated screens.)"
+         proportion (FDP) of one screen scatters around its average; the guarantee is about \
+         the average over repeated screens:)"
     );
+    if args.screens > 0 {
+        let repeated = repeated_screens(args.labeled, args.pool, q, args.seed, args.screens)?;
+        let _ = writeln!(
+            out,
+            "\nAveraged over {} further invented screens (fresh data each time):",
+            args.screens
+        );
+        let _ = writeln!(
+            out,
+            "{:<48} {:>9} {:>16} {:>7}",
+            "procedure", "selected", "FDR +- 2 SE", "power"
+        );
+        for r in &repeated {
+            let _ = writeln!(
+                out,
+                "{:<48} {:>9.0} {:>8.1}% +- {:>4.1} {:>6.1}%",
+                r.label,
+                r.mean_selected,
+                100.0 * r.fdr,
+                200.0 * r.fdr_se,
+                100.0 * r.power
+            );
+        }
+    }
     if !weighted.warnings.is_empty() {
         let _ = writeln!(out, "\nWarnings on the weighted selection:");
         for w in &weighted.warnings {

@@ -10,7 +10,9 @@ use crate::fdr::Pruning;
 use crate::pvalue::PValueKind;
 use crate::report::{candidates_csv, select_summary, text_summary, RunInputs};
 use crate::score::{ScoreKind, Thresholds};
-use crate::select::{run_selection, LabeledInput, PoolInput, Procedure, SelectOptions};
+use crate::select::{
+    run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
+};
 use crate::table::{read_units, OutputSet, ReadOptions, Role, UnitTable};
 
 use super::{commit_outputs, print_stdout, Failure, PhaseTimer};
@@ -254,14 +256,29 @@ pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable
     Ok((labeled, pool))
 }
 
+/// Run the selection; a level no unit can reach is blamed on the labeled file by name.
+fn select_or_explain(
+    config: &SelectConfig,
+    labeled: LabeledInput<'_>,
+    pool: PoolInput<'_>,
+) -> Result<crate::select::SelectionOutcome, Failure> {
+    run_selection(&config.options, labeled, pool).map_err(|e| match e {
+        SelectError::LabeledSetTooSmall { .. } => Failure::Input(format!(
+            "labeled file {}: {e}",
+            config.labeled_path.display()
+        )),
+        other => other.into(),
+    })
+}
+
 /// Run `select`.
 pub fn run(args: SelectArgs) -> Result<(), Failure> {
     let mut timer = PhaseTimer::new();
     let config = SelectConfig::try_from(args)?;
     let (labeled, pool) = read_inputs(&config)?;
     timer.mark("read inputs");
-    let outcome = run_selection(
-        &config.options,
+    let outcome = select_or_explain(
+        &config,
         LabeledInput {
             outcome: labeled.outcome.as_deref().unwrap_or_default(),
             prediction: &labeled.prediction,

@@ -324,8 +324,8 @@ mod tests {
             set.features.iter().map(|x| x[d]).sum::<f64>() / set.len() as f64
         };
         // Means within 5 standard errors (1/sqrt(3000) ~ 0.018) of the design values.
-        for d in 0..5 {
-            assert!((mean(&s.labeled, d) - LABELED_MEAN[d]).abs() < 0.1);
+        for (d, expected) in LABELED_MEAN.iter().enumerate() {
+            assert!((mean(&s.labeled, d) - expected).abs() < 0.1);
             assert!(mean(&s.pool, d).abs() < 0.1);
         }
     }

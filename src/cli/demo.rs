@@ -85,10 +85,10 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
     files.add("pool_truth.csv", truth.into_bytes());
     files.add(
         "candidates.csv",
-        candidates_csv(&scenario.pool.ids, &weighted),
+        candidates_csv(&scenario.pool.ids, weighted),
     );
     let summary = select_summary(
-        &weighted,
+        weighted,
         RunInputs {
             labeled_file: "labeled.csv (invented demo data)".to_string(),
             pool_file: "pool.csv (invented demo data)".to_string(),

@@ -17,8 +17,9 @@ mod tol {
     /// lbfgs stops on the projected gradient of the mean loss, which bounds the error).
     pub const SKLEARN_COEF: f64 = 1e-6;
     /// Coefficients vs linfa-logistic 0.8: its L-BFGS (argmin) stops on the gradient norm of
-    /// the summed loss, so only agreement to its stopping rule can be expected.
-    pub const LINFA_COEF: f64 = 1e-3;
+    /// the summed loss and reports no convergence flag, so agreement is only as good as its
+    /// stopping rule (gradient_tolerance 1e-8 here; observed differences about 2e-8).
+    pub const LINFA_COEF: f64 = 1e-6;
     /// AUC and DeLong variance: same arithmetic, different summation order.
     pub const AUC: f64 = 1e-12;
     /// k-hat vs arviz psislw: same algorithm, different summation order.

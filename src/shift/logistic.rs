@@ -508,6 +508,27 @@ pub fn fit_logistic(
     sample_weights: Option<&[f64]>,
     params: &LogisticValidParams,
 ) -> Result<LogisticModel, ShiftError> {
+    fit_logistic_from(x, n, y, sample_weights, params, None)
+}
+
+/// [`fit_logistic`] started at `start` (intercept then slopes) instead of the class
+/// log-odds. The objective is strictly convex, so the result does not depend on the start
+/// beyond the tolerance; a good start only saves iterations (used for the
+/// cross-validation folds, started at the full fit).
+///
+/// # Errors
+/// As [`fit_logistic`].
+///
+/// # Panics
+/// As [`fit_logistic`], and when `start` does not have one entry per column.
+pub fn fit_logistic_from(
+    x: &[f64],
+    n: usize,
+    y: &[bool],
+    sample_weights: Option<&[f64]>,
+    params: &LogisticValidParams,
+    start: Option<&[f64]>,
+) -> Result<LogisticModel, ShiftError> {
     assert!(
         n > 0 && x.len() % n == 0,
         "design buffer must hold whole columns"
@@ -552,7 +573,14 @@ pub fn fit_logistic(
     // Start at the weighted class log-odds (the exact optimum when every slope is zero), or,
     // for large n, at the fit on a strided subsample (same objective up to sampling error):
     // Newton then needs one or two full-data iterations instead of four or five.
-    let mut beta = match warm_start(&problem, params)? {
+    if let Some(b) = start {
+        assert_eq!(b.len(), k, "start needs one entry per column");
+    }
+    let warm = match start {
+        Some(b) => Some(b.to_vec()),
+        None => warm_start(&problem, params)?,
+    };
+    let mut beta = match warm {
         Some(start) => start,
         None => {
             let mut b = vec![0.0; k];

@@ -613,8 +613,16 @@ pub fn assess_shift(
         .cap_quantile
         .map(|q| weights::cap_weights(&mut fitted, &calibration, q));
 
-    let auc_details =
-        diagnostics::cross_validated_auc(&design, &labels, &rows, n, m, options, &mut rng)?;
+    let auc_details = diagnostics::cross_validated_auc(
+        &design,
+        model.coefficients(),
+        &labels,
+        &rows,
+        n,
+        m,
+        options,
+        &mut rng,
+    )?;
     let cal_weights: Vec<f64> = calibration
         .iter()
         .map(|&i| fitted.labeled_weight[i])

@@ -161,8 +161,7 @@ pub(crate) fn cross_validated_auc(
     full_fit: &[f64],
     labels: &[bool],
     rows: &FitRowChoice,
-    n: usize,
-    m: usize,
+    (n, m): (usize, usize),
     options: &ShiftOptions,
     rng: &mut ChaCha8Rng,
 ) -> Result<AucSummary, ShiftError> {

@@ -618,8 +618,7 @@ pub fn assess_shift(
         model.coefficients(),
         &labels,
         &rows,
-        n,
-        m,
+        (n, m),
         options,
         &mut rng,
     )?;

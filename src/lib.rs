@@ -1,5 +1,6 @@
 //! weighbridge: shortlists from screening predictions with a false discovery rate
 //! guarantee when the labeled set and the pool differ (covariate shift).
+pub mod audit;
 pub mod cli;
 pub mod demo;
 pub mod fdr;

@@ -24,6 +24,8 @@ use std::sync::atomic::{AtomicU64, Ordering};
 pub enum Role {
     Labeled,
     Pool,
+    /// A list of ids chosen earlier (`audit --shortlist`).
+    Shortlist,
 }
 
 impl fmt::Display for Role {
@@ -31,6 +33,7 @@ impl fmt::Display for Role {
         f.write_str(match self {
             Role::Labeled => "labeled file",
             Role::Pool => "pool file",
+            Role::Shortlist => "shortlist file",
         })
     }
 }
@@ -728,7 +731,7 @@ pub fn read_units(path: &Path, role: Role, options: &ReadOptions) -> Result<Unit
     let prediction_column = header.column(&options.prediction, ColumnKind::Prediction)?;
     let outcome_column = match role {
         Role::Labeled => optional_column(&header, options.outcome.as_ref(), ColumnKind::Outcome)?,
-        Role::Pool => None,
+        Role::Pool | Role::Shortlist => None,
     };
     let threshold_column = optional_column(
         &header,
@@ -976,6 +979,87 @@ fn expand_range(
         ));
     }
     Ok(names)
+}
+
+/// Read a list of ids (one per data row) from column `column` of a CSV/TSV file, e.g. a
+/// shortlist made earlier. Returns each id with its 1-based line number.
+///
+/// # Errors
+/// The file cannot be opened or is not valid CSV, is empty or has no rows, lacks the
+/// column, has an empty or duplicate id.
+pub fn read_id_list(
+    path: &Path,
+    column: &str,
+    delimiter: Option<u8>,
+) -> Result<Vec<(String, u64)>, InputError> {
+    let file = File::open(path).map_err(|source| InputError::Open {
+        path: path.to_path_buf(),
+        source,
+    })?;
+    let mut reader = csv::ReaderBuilder::new()
+        .delimiter(delimiter_for(path, delimiter))
+        .flexible(true)
+        .from_reader(io::BufReader::new(file));
+    let malformed = |e: csv::Error| InputError::Malformed {
+        path: path.to_path_buf(),
+        line: e.position().map_or(0, |p| p.line()),
+        message: e.to_string(),
+    };
+    let header: Vec<String> = reader
+        .headers()
+        .map_err(malformed)?
+        .iter()
+        .map(|name| name.trim().trim_start_matches('\u{feff}').to_string())
+        .collect();
+    if header.iter().all(String::is_empty) {
+        return Err(InputError::EmptyFile {
+            path: path.to_path_buf(),
+            role: Role::Shortlist,
+        });
+    }
+    let Some(index) = header.iter().position(|name| name == column) else {
+        return Err(InputError::MissingColumn {
+            path: path.to_path_buf(),
+            role: Role::Shortlist,
+            header_line: 1,
+            kind: ColumnKind::Id,
+            column: column.to_string(),
+            available: header,
+        });
+    };
+    let mut ids: Vec<(String, u64)> = Vec::new();
+    let mut first_line: HashMap<String, u64> = HashMap::new();
+    for record in reader.records() {
+        let record = record.map_err(malformed)?;
+        let line = record.position().map_or(0, |p| p.line());
+        let id = record.get(index).unwrap_or("").trim().to_string();
+        if id.is_empty() {
+            return Err(InputError::EmptyId {
+                path: path.to_path_buf(),
+                line,
+                column: column.to_string(),
+            });
+        }
+        if let Some(&first) = first_line.get(&id) {
+            return Err(InputError::DuplicateId {
+                path: path.to_path_buf(),
+                line,
+                first_line: first,
+                column: column.to_string(),
+                id,
+            });
+        }
+        first_line.insert(id.clone(), line);
+        ids.push((id, line));
+    }
+    if ids.is_empty() {
+        return Err(InputError::NoRows {
+            path: path.to_path_buf(),
+            role: Role::Shortlist,
+            header_line: 1,
+        });
+    }
+    Ok(ids)
 }
 
 /// Expand feature selectors against a header.

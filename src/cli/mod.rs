@@ -5,6 +5,7 @@
 //! 0 success, 2 bad usage or input (nothing is written), 1 internal failure.
 //! A closed stdout pipe (e.g. `| head`) is not an error.
 
+pub mod audit;
 pub mod demo;
 pub mod select;
 
@@ -41,6 +42,8 @@ enum Command {
     Select(select::SelectArgs),
     /// Run the whole job on an invented screening scenario and explain the result.
     Demo(demo::DemoArgs),
+    /// Check whether an earlier shortlist was distorted by covariate shift.
+    Audit(audit::AuditArgs),
 }
 
 /// Why a command failed, and so which exit code it gets.
@@ -134,6 +137,7 @@ pub fn main_entry() -> ExitCode {
     let result = match cli.command {
         Command::Select(args) => select::run(args),
         Command::Demo(args) => demo::run(args),
+        Command::Audit(args) => audit::run(args),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,

@@ -1,0 +1,266 @@
+//! `weighbridge audit`: was an earlier shortlist distorted by covariate shift?
+//!
+//! Reads the shortlist's ids, the labeled file and the pool file (with the same options as
+//! `select`), and writes `audit.csv` (one row per listed unit) and `audit.json` (the list
+//! as a whole), plus a short summary on stdout.
+
+use std::collections::HashMap;
+use std::fmt::Write as _;
+use std::path::PathBuf;
+
+use clap::Args;
+use serde::Serialize;
+
+use crate::audit::{audit_shortlist, AuditOutcome, POOL_PROBABILITY_LIMIT};
+use crate::report::{tool_info, ToolInfo, CAUTIONS};
+use crate::select::{LabeledInput, PoolInput};
+use crate::table::{read_id_list, OutputSet};
+
+use super::select::{read_inputs, thresholds_of, SelectArgs, SelectConfig};
+use super::{commit_outputs, print_stdout, Failure};
+
+const AUDIT_HELP: &str = "\
+Takes a list of pool ids chosen earlier (by ranking, by an unweighted selection, by hand)
+and asks whether it was distorted by covariate shift. Every option of `select` applies: the
+weighted selection, p-values and weights are computed exactly as `select` would.
+
+Per listed unit (audit.csv): p_value_unweighted, p_value_weighted (over the whole pool),
+survives (selected by the weighted selection at --fdr), poorly_covered (unreachable at --fdr,
+a weight above every labeled weight, or e(x) > 0.9 with fitted weights), weight, and why.
+For the list (audit.json): listed_count, survivors_count, fdr_level_unweighted and
+fdr_level_weighted (the smallest BH level at which every listed unit would be selected:
+the largest BH-adjusted p-value over the list), poorly_covered_count, warnings.
+
+Example:
+  weighbridge audit --shortlist earlier.csv --labeled fixtures/labeled.csv \\
+      --pool fixtures/pool.csv --threshold 6.5 --weight-column w --fdr 0.1 --out audit";
+
+/// Arguments of `audit`.
+#[derive(Debug, Args)]
+#[command(after_long_help = AUDIT_HELP)]
+pub struct AuditArgs {
+    /// CSV/TSV file listing the pool ids of the earlier shortlist.
+    #[arg(long, value_name = "FILE")]
+    pub shortlist: PathBuf,
+    /// Id column of the shortlist file [default: the value of --id].
+    #[arg(long, value_name = "NAME")]
+    pub shortlist_id: Option<String>,
+    #[command(flatten)]
+    pub selection: SelectArgs,
+}
+
+/// `audit.json`.
+#[derive(Debug, Serialize)]
+struct AuditSummary<'a> {
+    tool: ToolInfo,
+    shortlist_file: String,
+    labeled_file: String,
+    pool_file: String,
+    fdr: f64,
+    procedure: &'static str,
+    pvalues: &'static str,
+    score: &'static str,
+    seed: u64,
+    weights: String,
+    listed_count: usize,
+    survivors_count: usize,
+    fdr_level_unweighted: f64,
+    fdr_level_weighted: f64,
+    poorly_covered_count: usize,
+    poorly_covered_share: f64,
+    weighted_selected_count: usize,
+    largest_labeled_weight: f64,
+    pool_probability_limit: f64,
+    warnings: &'a [String],
+    cautions: Vec<&'static str>,
+}
+
+fn audit_csv(ids: &[(String, u64)], outcome: &AuditOutcome) -> Vec<u8> {
+    let mut writer = csv::Writer::from_writer(Vec::new());
+    writer
+        .write_record([
+            "id",
+            "p_value_unweighted",
+            "p_value_weighted",
+            "bh_level_unweighted",
+            "bh_level_weighted",
+            "survives",
+            "poorly_covered",
+            "weight",
+            "pool_probability",
+            "unreachable",
+            "why_poorly_covered",
+        ])
+        .expect("write to memory");
+    for ((id, _), unit) in ids.iter().zip(&outcome.units) {
+        let mut reasons = Vec::new();
+        if unit.unreachable {
+            reasons.push("its p-value floor w/(W+w) exceeds the FDR level");
+        }
+        if unit.beyond_labeled_weights {
+            reasons.push("its weight exceeds every labeled weight");
+        }
+        if unit.high_pool_probability {
+            reasons.push("the domain classifier puts it in the pool with e(x) > 0.9");
+        }
+        writer
+            .write_record([
+                id.clone(),
+                unit.p_value_unweighted.to_string(),
+                unit.p_value_weighted.to_string(),
+                unit.adjusted_unweighted.to_string(),
+                unit.adjusted_weighted.to_string(),
+                unit.survives.to_string(),
+                unit.poorly_covered.to_string(),
+                unit.weight.to_string(),
+                unit.pool_probability
+                    .map_or(String::new(), |e| e.to_string()),
+                unit.unreachable.to_string(),
+                reasons.join("; "),
+            ])
+            .expect("write to memory");
+    }
+    writer.into_inner().expect("flush to memory")
+}
+
+/// Run `audit`.
+pub fn run(args: AuditArgs) -> Result<(), Failure> {
+    let shortlist_column = args
+        .shortlist_id
+        .clone()
+        .unwrap_or_else(|| args.selection.id.clone());
+    let shortlist_path = args.shortlist.clone();
+    let config = SelectConfig::try_from(args.selection)?;
+    let (labeled, pool) = read_inputs(&config)?;
+    let listed_ids = read_id_list(
+        &shortlist_path,
+        &shortlist_column,
+        config.pool_read.delimiter,
+    )?;
+
+    let position: HashMap<&str, usize> = pool
+        .ids
+        .iter()
+        .enumerate()
+        .map(|(j, id)| (id.as_str(), j))
+        .collect();
+    let missing: Vec<String> = listed_ids
+        .iter()
+        .filter(|(id, _)| !position.contains_key(id.as_str()))
+        .map(|(id, line)| format!("`{id}` (line {line})"))
+        .collect();
+    if !missing.is_empty() {
+        return Err(Failure::Input(format!(
+            "{}: {} listed id(s) are not in the pool file {}: {}{}. Hint: audit a list drawn from \
+             this pool, with ids spelled as in its `{}` column.",
+            shortlist_path.display(),
+            missing.len(),
+            config.pool_path.display(),
+            missing
+                .iter()
+                .take(10)
+                .cloned()
+                .collect::<Vec<_>>()
+                .join(", "),
+            if missing.len() > 10 { ", ..." } else { "" },
+            config.pool_read.id
+        )));
+    }
+    let listed: Vec<usize> = listed_ids
+        .iter()
+        .map(|(id, _)| position[id.as_str()])
+        .collect();
+
+    let outcome = audit_shortlist(
+        &config.options,
+        LabeledInput {
+            outcome: labeled.outcome.as_deref().unwrap_or_default(),
+            prediction: &labeled.prediction,
+            thresholds: thresholds_of(&labeled, config.threshold),
+            weights: labeled.weight.as_deref(),
+        },
+        PoolInput {
+            prediction: &pool.prediction,
+            thresholds: thresholds_of(&pool, config.threshold),
+            weights: pool.weight.as_deref(),
+        },
+        &listed,
+        None,
+    )?;
+
+    let settings = config.options.check()?;
+    let weights = match &config.pool_read.weight_column {
+        Some(name) => format!("given in column {name}"),
+        None => "none (every weight 1: no shift assumed)".to_string(),
+    };
+    let summary = AuditSummary {
+        tool: tool_info(),
+        shortlist_file: shortlist_path.display().to_string(),
+        labeled_file: config.labeled_path.display().to_string(),
+        pool_file: config.pool_path.display().to_string(),
+        fdr: settings.fdr,
+        procedure: settings.procedure.name(),
+        pvalues: settings.pvalues.name(),
+        score: settings.score.name(),
+        seed: settings.seed,
+        weights,
+        listed_count: outcome.listed_count,
+        survivors_count: outcome.survivors_count,
+        fdr_level_unweighted: outcome.fdr_level_unweighted,
+        fdr_level_weighted: outcome.fdr_level_weighted,
+        poorly_covered_count: outcome.poorly_covered_count,
+        poorly_covered_share: outcome.poorly_covered_count as f64 / outcome.listed_count as f64,
+        weighted_selected_count: outcome.weighted_selected_count,
+        largest_labeled_weight: outcome.largest_labeled_weight,
+        pool_probability_limit: POOL_PROBABILITY_LIMIT,
+        warnings: &outcome.warnings,
+        cautions: CAUTIONS.to_vec(),
+    };
+    let mut files = OutputSet::new();
+    files.add("audit.csv", audit_csv(&listed_ids, &outcome));
+    let json = serde_json::to_vec_pretty(&summary)
+        .map_err(|e| Failure::Internal(format!("cannot serialize the audit: {e}")))?;
+    files.add("audit.json", json);
+    commit_outputs(files, &config.out)?;
+
+    if !config.quiet {
+        let mut text = String::new();
+        let _ = writeln!(
+            text,
+            "weighbridge {} audit of {} ({} listed units) at FDR {}",
+            summary.tool.version, summary.shortlist_file, outcome.listed_count, settings.fdr
+        );
+        let _ = writeln!(
+            text,
+            "  smallest BH level selecting the whole list: {:.4} without weights, {:.4} with weights",
+            outcome.fdr_level_unweighted, outcome.fdr_level_weighted
+        );
+        let _ = writeln!(
+            text,
+            "  survive the weighted selection ({}): {} of {}",
+            settings.procedure.name(),
+            outcome.survivors_count,
+            outcome.listed_count
+        );
+        let _ = writeln!(
+            text,
+            "  in poorly covered regions: {} ({:.0}%)",
+            outcome.poorly_covered_count,
+            100.0 * summary.poorly_covered_share
+        );
+        if !outcome.warnings.is_empty() {
+            let _ = writeln!(text, "findings (most serious first):");
+            for w in &outcome.warnings {
+                let _ = writeln!(text, "  - {w}");
+            }
+        }
+        let _ = writeln!(
+            text,
+            "wrote {} and {}",
+            config.out.join("audit.csv").display(),
+            config.out.join("audit.json").display()
+        );
+        print_stdout(&text);
+    }
+    Ok(())
+}

@@ -12,3 +12,4 @@ pub mod score;
 pub mod select;
 pub mod shift;
 pub mod table;
+pub mod weighting;

@@ -624,6 +624,9 @@ pub struct Adequacy {
     pub max_abs_weighted_products: f64,
     /// The feature with the largest |weighted SMD|, if any.
     pub worst_feature: Option<String>,
+    /// |weighted SMD| above which the warning fires (`warnings::smd_threshold` with base
+    /// 0.1 over all squares and products).
+    pub threshold: f64,
 }
 
 /// Sums needed for the means and variances of all squares and products at once:
@@ -770,10 +773,17 @@ pub(crate) fn adequacy(
         .iter()
         .max_by(|x, y| x.smd_weighted.abs().total_cmp(&y.smd_weighted.abs()))
         .map(|f| f.feature.clone());
+    let threshold = super::warnings::smd_threshold(
+        super::warnings::ADEQUACY_SMD_HIGH,
+        super::kish_effective_sample_size(calibration_weights).unwrap_or(0.0),
+        pool.n_rows(),
+        features.len(),
+    );
     Adequacy {
         max_abs_weighted_squares: max_abs(&features[..k]),
         max_abs_weighted_products: max_abs(&features[k..]),
         worst_feature,
+        threshold,
         features,
     }
 }

@@ -13,10 +13,33 @@ pub const AUC_HIGH: f64 = 0.95;
 /// Kish ESS below this fraction of the calibration rows (common practice).
 pub const ESS_FRACTION_LOW: f64 = 0.1;
 /// |weighted SMD| above this on an input feature (Austin 2009: 0.1 marks meaningful
-/// imbalance).
+/// imbalance), unless sampling noise alone can reach it (see [`smd_threshold`]).
 pub const SMD_HIGH: f64 = 0.1;
 /// |weighted SMD| above this on a squared or product feature (same rule as `SMD_HIGH`).
 pub const ADEQUACY_SMD_HIGH: f64 = 0.1;
+/// Family-wise error rate of the noise bound in [`smd_threshold`] (common practice).
+pub const SMD_NOISE_LEVEL: f64 = 0.05;
+
+/// The |SMD| above which a family of `features` weighted SMDs is flagged:
+/// max(`base`, z sqrt(1 / ESS + 1 / m)), z = Phi^-1(1 - 0.05 / (2 features)).
+///
+/// sqrt(1 / ESS + 1 / m) is the standard error of an SMD between a weighted labeled mean
+/// (Kish effective size ESS) and a pool mean (m rows) when the sets are balanced (delta
+/// method, unit pooled SD); z is the two-sided Bonferroni bound, so with no imbalance the
+/// largest of `features` SMDs exceeds the threshold with probability about 5% at most.
+/// Without it, hundreds of product features on a few thousand rows cross 0.1 by noise
+/// alone (32 features, n = m = 2000, no shift: largest product |SMD| 0.118). Our choice,
+/// common practice for multiple comparisons.
+pub fn smd_threshold(base: f64, ess: f64, pool_rows: usize, features: usize) -> f64 {
+    use statrs::distribution::{ContinuousCDF, Normal};
+    if features == 0 || ess.is_nan() || ess <= 0.0 || pool_rows == 0 {
+        return base;
+    }
+    let z = Normal::new(0.0, 1.0)
+        .expect("standard normal")
+        .inverse_cdf(1.0 - SMD_NOISE_LEVEL / (2.0 * features as f64));
+    base.max(z * (1.0 / ess + 1.0 / pool_rows as f64).sqrt())
+}
 /// Share of the pool that can never be selected above this (common practice, our choice).
 pub const UNREACHABLE_SHARE_HIGH: f64 = 0.01;
 /// Share of the pool with balanced probability above 0.9 above this (common practice; the
@@ -172,16 +195,18 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
         .adequacy
         .max_abs_weighted_squares
         .max(s.adequacy.max_abs_weighted_products);
-    if worst_adequacy > ADEQUACY_SMD_HIGH {
+    let adequacy_limit = s.adequacy.threshold;
+    if worst_adequacy > adequacy_limit {
         out.push(warn(
             "adequacy_smd",
             worst_adequacy,
-            ADEQUACY_SMD_HIGH,
+            adequacy_limit,
             Severity::Severe,
             format!(
-                "after weighting, `{}` is still imbalanced (|SMD| {:.2}, threshold {ADEQUACY_SMD_HIGH}): the weight model misses part of the shift (e.g. a difference in spread), which can break the FDR control of every weighted procedure; refit with squared and/or pairwise features",
+                "after weighting, `{}` is still imbalanced (|SMD| {:.2}, threshold {:.2}): the weight model misses part of the shift (e.g. a difference in spread), which can break the FDR control of every weighted procedure; refit with squared and/or pairwise features",
                 s.adequacy.worst_feature.as_deref().unwrap_or("?"),
-                worst_adequacy
+                worst_adequacy,
+                adequacy_limit
             ),
         ));
     }
@@ -191,20 +216,21 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
         .max_by(|a, b| a.smd_weighted.abs().total_cmp(&b.smd_weighted.abs()));
     if let Some(f) = worst_balance {
         let v = f.smd_weighted.abs();
-        if v > SMD_HIGH {
+        let limit = s.smd_threshold;
+        if v > limit {
             let count = s
                 .balance
                 .iter()
-                .filter(|f| f.smd_weighted.abs() > SMD_HIGH)
+                .filter(|f| f.smd_weighted.abs() > limit)
                 .count();
             out.push(warn(
                 "smd_weighted",
                 v,
-                SMD_HIGH,
+                limit,
                 Severity::Caution,
                 format!(
-                    "{count} feature(s) remain imbalanced after weighting, worst `{}` with |SMD| {:.2} (threshold {SMD_HIGH}): the weighted labeled set still differs from the pool, so p-values may be miscalibrated for compounds that differ in these features",
-                    f.feature, v
+                    "{count} feature(s) remain imbalanced after weighting, worst `{}` with |SMD| {:.2} (threshold {:.2}): the weighted labeled set still differs from the pool, so p-values may be miscalibrated for compounds that differ in these features",
+                    f.feature, v, limit
                 ),
             ));
         }
@@ -231,4 +257,20 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
     };
     out.sort_by_key(rank);
     out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn smd_threshold_values() {
+        // One feature: z = Phi^-1(0.975) = 1.959964 (standard normal table); ESS = m = 100:
+        // SE = sqrt(0.02), bound 0.27718.
+        assert!((smd_threshold(0.1, 100.0, 100, 1) - 1.959_964 * 0.02f64.sqrt()).abs() < 1e-5);
+        // Large samples: the 0.1 rule of Austin (2009) applies unchanged.
+        assert_eq!(smd_threshold(0.1, 1e6, 1_000_000, 500), 0.1);
+        // More features, higher bound.
+        assert!(smd_threshold(0.1, 400.0, 400, 500) > smd_threshold(0.1, 400.0, 400, 5));
+    }
 }

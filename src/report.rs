@@ -1,14 +1,17 @@
-//! What a selection run hands back to people: the per-candidate table, the JSON summary
-//! and the short text summary for the terminal.
+//! What a run hands back to people: the per-candidate table, the JSON summaries and the
+//! short text summaries for the terminal, for a selection (`select`) and for a shift
+//! assessment (`shift`, and `select --fit-weights`).
 //!
-//! Everything here turns a [`SelectionOutcome`] into bytes or text; writing the bytes to
-//! disk (atomically) is the caller's job (`crate::table::OutputSet`).
+//! Everything here turns a [`SelectionOutcome`] or a [`FittedWeights`] into bytes or text;
+//! writing the bytes to disk (atomically) is the caller's job (`crate::table::OutputSet`).
 
 use std::fmt::Write as _;
 
 use serde::Serialize;
 
 use crate::select::SelectionOutcome;
+use crate::shift::{FeatureBalance, Severity, ShiftOptions, ShiftSummary, ShiftWarning};
+use crate::weighting::{fit_rows_statement, FittedWeights};
 
 /// The cautions every output carries (design.md section 1).
 pub const CAUTIONS: [&str; 6] = [
@@ -75,7 +78,7 @@ pub struct SelectSummary {
     pub labeled_ess: f64,
     pub labeled_ess_fraction: f64,
     /// Shift diagnostics when weights were fitted; otherwise null.
-    pub shift: Option<serde_json::Value>,
+    pub shift: Option<ShiftSection>,
     pub warnings: Vec<String>,
     pub cautions: Vec<&'static str>,
 }
@@ -116,6 +119,30 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         warnings: outcome.warnings.clone(),
         cautions: CAUTIONS.to_vec(),
     }
+}
+
+/// Start of the selection's warning about unreachable units (`crate::select`), repeated by
+/// the shift diagnostic `unreachable_share`.
+const SELECTION_UNREACHABLE_PREFIX: &str = "unreachable units:";
+/// Start of the selection's warning about the effective sample size, repeated by the shift
+/// diagnostic `ess_fraction`.
+const SELECTION_ESS_PREFIX: &str = "effective sample size:";
+
+/// Fold the shift diagnostics of fitted weights into a selection summary: the `shift`
+/// object, and the shift warnings first (they are the worst: weights that cannot be trusted
+/// make every count below them doubtful), in their documented worst-first order, followed
+/// by the selection's own warnings. A selection warning that repeats a shift warning (the
+/// effective sample size, unreachable units) is dropped.
+pub fn add_shift(summary: &mut SelectSummary, section: ShiftSection) {
+    let named = |d: &str| section.summary.warnings.iter().any(|w| w.diagnostic == d);
+    let repeats = |w: &String| {
+        (named("ess_fraction") && w.starts_with(SELECTION_ESS_PREFIX))
+            || (named("unreachable_share") && w.starts_with(SELECTION_UNREACHABLE_PREFIX))
+    };
+    let mut warnings: Vec<String> = section.summary.warnings.iter().map(warning_line).collect();
+    warnings.extend(summary.warnings.iter().filter(|w| !repeats(w)).cloned());
+    summary.warnings = warnings;
+    summary.shift = Some(section);
 }
 
 /// Plain-words reason a unit can never be selected, or "" when none is known.
@@ -252,6 +279,11 @@ pub fn text_summary(summary: &SelectSummary, ids: &[String], outcome: &Selection
             }
         );
     }
+    if let Some(shift) = &s.shift {
+        let _ = writeln!(out, "shift diagnostics of the fitted weights:");
+        out.push_str(&shift_diagnostics_text(shift, "  "));
+        let _ = writeln!(out, "  {}", shift.fit_rows_note);
+    }
     if !s.warnings.is_empty() {
         let _ = writeln!(out, "warnings (most serious first):");
         for w in &s.warnings {
@@ -267,5 +299,448 @@ fn procedure_words(procedure: &str) -> &'static str {
         "bh" => "Benjamini-Hochberg",
         "by" => "Benjamini-Yekutieli",
         _ => "unknown procedure",
+    }
+}
+
+// ---------------------------------------------------------------------------------------
+// Shift assessment: shift.json, weights.csv, balance.csv and the text summary
+// ---------------------------------------------------------------------------------------
+
+/// The shift part of a summary: settings, the fitting mode in words, and every diagnostic of
+/// [`ShiftSummary`] (its fields appear at this object's top level: `auc`, `auc_ci`,
+/// `permutation_p`, `ess`, `ess_fraction`, `khat`, `unreachable_count`, `converged`,
+/// `iterations`, `warnings`, ...).
+#[derive(Clone, Debug, Serialize)]
+pub struct ShiftSection {
+    /// The options the classifier and the diagnostics ran with.
+    pub settings: ShiftOptions,
+    /// The feature columns given (after ranges were resolved).
+    pub features: Vec<String>,
+    /// Labeled rows read, whether they calibrate or not.
+    pub labeled_rows: usize,
+    /// Which fitting mode was used, how many labeled rows calibrate, and why fitting on all
+    /// rows is the default.
+    pub fit_rows_note: String,
+    /// Every diagnostic and the warnings, worst first.
+    #[serde(flatten)]
+    pub summary: ShiftSummary,
+}
+
+/// Build the shift section of a summary from fitted weights.
+pub fn shift_section(fitted: &FittedWeights, features: &[String]) -> ShiftSection {
+    let summary = fitted.assessment.summary.clone();
+    let labeled_rows = fitted.assessment.labeled_calibrates.len();
+    ShiftSection {
+        settings: fitted.options.clone(),
+        features: features.to_vec(),
+        labeled_rows,
+        fit_rows_note: fit_rows_statement(
+            fitted.options.fit_rows(),
+            labeled_rows,
+            summary.calibration_rows,
+        ),
+        summary,
+    }
+}
+
+/// Where the inputs of a shift assessment came from.
+#[derive(Clone, Debug, Default, Serialize)]
+pub struct ShiftInputs {
+    pub labeled_file: String,
+    pub pool_file: String,
+}
+
+/// `shift.json`: tool, inputs, settings and every diagnostic (see [`ShiftSection`]).
+#[derive(Clone, Debug, Serialize)]
+pub struct ShiftReport {
+    pub tool: ToolInfo,
+    pub inputs: ShiftInputs,
+    #[serde(flatten)]
+    pub shift: ShiftSection,
+}
+
+/// Build `shift.json`'s content.
+pub fn shift_report(section: ShiftSection, inputs: ShiftInputs) -> ShiftReport {
+    ShiftReport {
+        tool: tool_info(),
+        inputs,
+        shift: section,
+    }
+}
+
+/// `weights.csv`: one row per labeled row, then one per pool row, each set in input order.
+///
+/// Columns: `id, set` (`labeled` or `pool`), `pool_probability` (e(x) = P(pool | x) at the
+/// real set sizes), `weight` (the density ratio after capping), `in_fit` (the row was in the
+/// classifier's fitting sample), `calibrates` (a labeled row that calibrates; always false
+/// for pool rows). Floats in shortest round-trip form (ryu).
+///
+/// # Panics
+/// If the id lists and the assessment differ in length.
+pub fn weights_csv(labeled_ids: &[String], pool_ids: &[String], fitted: &FittedWeights) -> Vec<u8> {
+    let a = &fitted.assessment;
+    assert_eq!(
+        labeled_ids.len(),
+        a.labeled.weight.len(),
+        "labeled ids / weights"
+    );
+    assert_eq!(pool_ids.len(), a.pool.weight.len(), "pool ids / weights");
+    let rows = labeled_ids.len() + pool_ids.len();
+    let mut writer = csv::Writer::from_writer(Vec::with_capacity(rows * 64));
+    writer
+        .write_record([
+            "id",
+            "set",
+            "pool_probability",
+            "weight",
+            "in_fit",
+            "calibrates",
+        ])
+        .expect("write to memory");
+    let mut floats = ryu::Buffer::new();
+    let mut record = csv::ByteRecord::with_capacity(96, 6);
+    let sets = [
+        (
+            "labeled",
+            labeled_ids,
+            &a.labeled,
+            Some(&a.labeled_calibrates),
+        ),
+        ("pool", pool_ids, &a.pool, None),
+    ];
+    for (set, ids, results, calibrates) in sets {
+        for (i, id) in ids.iter().enumerate() {
+            record.clear();
+            record.push_field(id.as_bytes());
+            record.push_field(set.as_bytes());
+            record.push_field(floats.format(results.pool_probability[i]).as_bytes());
+            record.push_field(floats.format(results.weight[i]).as_bytes());
+            record.push_field(bool_text(results.in_fit[i]));
+            record.push_field(bool_text(calibrates.is_some_and(|c| c[i])));
+            writer.write_byte_record(&record).expect("write to memory");
+        }
+    }
+    writer.into_inner().expect("flush to memory")
+}
+
+/// `balance.csv`: `feature, smd_unweighted, smd_weighted`, one row per input feature, pool
+/// minus labeled (an infinite SMD, from a feature constant in both sets at different
+/// values, is written `inf` / `-inf`).
+pub fn balance_csv(balance: &[FeatureBalance]) -> Vec<u8> {
+    let mut writer = csv::Writer::from_writer(Vec::new());
+    writer
+        .write_record(["feature", "smd_unweighted", "smd_weighted"])
+        .expect("write to memory");
+    for b in balance {
+        writer
+            .write_record([
+                b.feature.clone(),
+                float_text(b.smd_unweighted),
+                float_text(b.smd_weighted),
+            ])
+            .expect("write to memory");
+    }
+    writer.into_inner().expect("flush to memory")
+}
+
+fn float_text(v: f64) -> String {
+    if v.is_finite() {
+        ryu::Buffer::new().format(v).to_string()
+    } else {
+        v.to_string()
+    }
+}
+
+/// A number for people: 3 decimals without trailing zeros, scientific when very large or
+/// very small, `inf` / `NaN` as such.
+fn shown(v: f64) -> String {
+    if !v.is_finite() {
+        return v.to_string();
+    }
+    if v != 0.0 && (v.abs() >= 1e5 || v.abs() < 1e-3) {
+        return format!("{v:.3e}");
+    }
+    let text = format!("{v:.3}");
+    let text = text.trim_end_matches('0').trim_end_matches('.');
+    if text == "-0" {
+        "0".to_string()
+    } else {
+        text.to_string()
+    }
+}
+
+fn severity_word(severity: Severity) -> &'static str {
+    match severity {
+        Severity::Severe => "severe",
+        Severity::Caution => "caution",
+    }
+}
+
+/// One shift warning as a line: the diagnostic, its severity, value and threshold, and what
+/// it means for the shortlist.
+pub fn warning_line(w: &ShiftWarning) -> String {
+    format!(
+        "{} ({}; value {}, threshold {}): {}",
+        w.diagnostic,
+        severity_word(w.severity),
+        shown(w.value),
+        shown(w.threshold),
+        w.message
+    )
+}
+
+/// The diagnostics as aligned lines, each prefixed by `indent`.
+pub fn shift_diagnostics_text(section: &ShiftSection, indent: &str) -> String {
+    let s = &section.summary;
+    let mut out = String::new();
+    let mut line = |label: &str, text: String| {
+        let _ = writeln!(out, "{indent}{label:<26}{text}");
+    };
+    line(
+        "domain-classifier AUC",
+        format!(
+            "{} (95% CI {} to {}; {}-fold cross-validated; 0.5 = no detectable shift)",
+            shown(s.auc),
+            shown(s.auc_ci[0]),
+            shown(s.auc_ci[1]),
+            s.auc_details.folds
+        ),
+    );
+    line(
+        "test of \"no shift\"",
+        format!(
+            "permutation p = {:.4} ({} permutations; the smallest possible p is {:.4})",
+            s.permutation_p,
+            s.auc_details.permutations,
+            1.0 / (s.auc_details.permutations as f64 + 1.0)
+        ),
+    );
+    line(
+        "effective sample size",
+        format!(
+            "{:.1} of {} calibrating labeled rows ({:.1}%)",
+            s.ess,
+            s.calibration_rows,
+            100.0 * s.ess_fraction
+        ),
+    );
+    line(
+        "Pareto k-hat",
+        format!(
+            "{} (reliable below {})",
+            shown(s.khat),
+            shown(s.khat_threshold)
+        ),
+    );
+    let worst = |pick: fn(&FeatureBalance) -> f64| {
+        s.balance
+            .iter()
+            .max_by(|a, b| pick(a).abs().total_cmp(&pick(b).abs()))
+    };
+    if let (Some(before), Some(after)) = (worst(|b| b.smd_unweighted), worst(|b| b.smd_weighted)) {
+        line(
+            "worst |SMD|",
+            format!(
+                "{} {} before weighting, {} {} after (flagged above {})",
+                before.feature,
+                shown(before.smd_unweighted.abs()),
+                after.feature,
+                shown(after.smd_weighted.abs()),
+                shown(s.smd_threshold)
+            ),
+        );
+    }
+    match &s.adequacy.worst_feature {
+        Some(feature) => line(
+            "squares/products |SMD|",
+            format!(
+                "worst {feature} {} after weighting (flagged above {}; large = the weight \
+                 model misses part of the shift)",
+                shown(
+                    s.adequacy
+                        .max_abs_weighted_squares
+                        .max(s.adequacy.max_abs_weighted_products)
+                ),
+                shown(s.adequacy.threshold)
+            ),
+        ),
+        None => line("squares/products |SMD|", "none (one feature)".to_string()),
+    }
+    line(
+        "overlap",
+        format!(
+            "{:.1}% of the pool above balanced probability 0.9, {:.1}% above 0.95",
+            100.0 * s.overlap.pool_share_above_0_9,
+            100.0 * s.overlap.pool_share_above_0_95
+        ),
+    );
+    let q = |values: &[f64], level: f64| {
+        s.weights
+            .quantile_levels
+            .iter()
+            .position(|&l| l == level)
+            .map_or(f64::NAN, |i| values[i])
+    };
+    line(
+        "weights (labeled)",
+        format!(
+            "median {}, 99th percentile {}, max {}; largest single share {:.2}%",
+            shown(q(&s.weights.labeled_quantiles, 0.5)),
+            shown(q(&s.weights.labeled_quantiles, 0.99)),
+            shown(q(&s.weights.labeled_quantiles, 1.0)),
+            100.0 * s.weights.largest_weight_share
+        ),
+    );
+    line(
+        "weights (pool)",
+        format!(
+            "median {}, 99th percentile {}, max {}",
+            shown(q(&s.weights.pool_quantiles, 0.5)),
+            shown(q(&s.weights.pool_quantiles, 0.99)),
+            shown(q(&s.weights.pool_quantiles, 1.0))
+        ),
+    );
+    if let Some(cap) = &s.weights.cap {
+        line(
+            "capping",
+            format!(
+                "at the {} quantile = {}: {} labeled and {} pool weights lowered",
+                shown(cap.quantile),
+                shown(cap.cap),
+                cap.labeled_capped,
+                cap.pool_capped
+            ),
+        );
+    }
+    line(
+        &format!("unreachable at FDR {}", s.fdr),
+        format!(
+            "{} of {} pool units (weight too large for the labeled set)",
+            s.unreachable_count, s.pool_rows
+        ),
+    );
+    let fit = &s.fit;
+    line(
+        "classifier",
+        format!(
+            "{} after {} Newton iterations (gradient norm {}); penalty alpha {} (scikit-learn \
+             C = {}); {} terms; fit on {} labeled and {} pool rows",
+            if s.converged {
+                "converged"
+            } else {
+                "NOT converged"
+            },
+            s.iterations,
+            shown(fit.report.gradient_norm),
+            shown(fit.alpha),
+            shown(1.0 / fit.alpha),
+            fit.terms.len(),
+            fit.labeled_rows_fit,
+            fit.pool_rows_fit
+        ),
+    );
+    if !fit.dropped_constant_columns.is_empty() {
+        line(
+            "dropped constant columns",
+            fit.dropped_constant_columns.join(", "),
+        );
+    }
+    out
+}
+
+/// The `shift` command's stdout summary: worst problems first (the warnings), then every
+/// diagnostic, then the fitting mode.
+pub fn shift_text(report: &ShiftReport) -> String {
+    let section = &report.shift;
+    let s = &section.summary;
+    let mut out = String::new();
+    let _ = writeln!(
+        out,
+        "weighbridge {} shift: labeled {} ({} rows) vs pool {} ({} rows), {} feature{}",
+        report.tool.version,
+        report.inputs.labeled_file,
+        section.labeled_rows,
+        report.inputs.pool_file,
+        s.pool_rows,
+        section.features.len(),
+        if section.features.len() == 1 { "" } else { "s" }
+    );
+    if s.warnings.is_empty() {
+        let _ = writeln!(
+            out,
+            "no warnings: no diagnostic crossed its threshold (this does not prove the \
+             weights right; see the cautions in the README)"
+        );
+    } else {
+        let _ = writeln!(out, "warnings (most serious first):");
+        for w in &s.warnings {
+            let _ = writeln!(out, "  - {}", warning_line(w));
+        }
+    }
+    let _ = writeln!(out, "diagnostics:");
+    out.push_str(&shift_diagnostics_text(section, "  "));
+    let _ = writeln!(out, "{}", section.fit_rows_note);
+    out
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::score::Thresholds;
+    use crate::select::{run_selection, LabeledInput, PoolInput, SelectOptions};
+
+    #[test]
+    fn shown_numbers_are_short() {
+        assert_eq!(shown(0.7), "0.7");
+        assert_eq!(shown(0.123456), "0.123");
+        assert_eq!(shown(12.0), "12");
+        assert_eq!(shown(1e-9), "1.000e-9");
+        assert_eq!(shown(f64::INFINITY), "inf");
+        assert_eq!(shown(-0.0001), "-1.000e-4");
+        assert_eq!(shown(0.0), "0");
+    }
+
+    /// The de-duplication in [`add_shift`] recognises the selection's warnings by how they
+    /// start; this pins those starts to what `crate::select` writes.
+    #[test]
+    fn selection_warning_prefixes_match_the_selection_module() {
+        // 200 labeled units with weights 1 except a few huge ones: tiny ESS; pool units
+        // with weights large relative to W: unreachable.
+        let n = 200;
+        let y = vec![0.0; n];
+        let mu: Vec<f64> = (0..n).map(|i| i as f64 / n as f64).collect();
+        let mut w = vec![1.0; n];
+        w[0] = 1e6;
+        let pool_mu = [0.99, 0.5, 0.2];
+        let pool_w = [1.0, 1e9, 1.0];
+        let o = run_selection(
+            &SelectOptions::default(),
+            LabeledInput {
+                outcome: &y,
+                prediction: &mu,
+                thresholds: Thresholds::Constant(0.5),
+                weights: Some(&w),
+            },
+            PoolInput {
+                prediction: &pool_mu,
+                thresholds: Thresholds::Constant(0.5),
+                weights: Some(&pool_w),
+            },
+        )
+        .unwrap();
+        assert!(
+            o.warnings
+                .iter()
+                .any(|x| x.starts_with(SELECTION_UNREACHABLE_PREFIX)),
+            "{:#?}",
+            o.warnings
+        );
+        assert!(
+            o.warnings
+                .iter()
+                .any(|x| x.starts_with(SELECTION_ESS_PREFIX)),
+            "{:#?}",
+            o.warnings
+        );
     }
 }

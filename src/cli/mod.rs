@@ -8,6 +8,7 @@
 pub mod audit;
 pub mod demo;
 pub mod select;
+pub mod shift;
 
 use std::io::Write;
 use std::process::ExitCode;
@@ -40,6 +41,8 @@ pub struct Cli {
 enum Command {
     /// Select a shortlist from a pool with FDR control.
     Select(select::SelectArgs),
+    /// Measure the shift between the labeled set and the pool and fit density-ratio weights.
+    Shift(shift::ShiftArgs),
     /// Run the whole job on an invented screening scenario and explain the result.
     Demo(demo::DemoArgs),
     /// Check whether an earlier shortlist was distorted by covariate shift.
@@ -136,6 +139,7 @@ pub fn main_entry() -> ExitCode {
     };
     let result = match cli.command {
         Command::Select(args) => select::run(args),
+        Command::Shift(args) => shift::run(args),
         Command::Demo(args) => demo::run(args),
         Command::Audit(args) => audit::run(args),
     };

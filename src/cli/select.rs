@@ -1,6 +1,7 @@
-//! `weighbridge select`: read a labeled file and a pool file, compute weighted conformal
-//! p-values, select a shortlist with FDR control, write `candidates.csv` and
-//! `summary.json` to the output folder and print a short summary.
+//! `weighbridge select`: read a labeled file and a pool file, decide the weights (none,
+//! given in a column, or fitted by the domain classifier with `--fit-weights`), compute
+//! weighted conformal p-values, select a shortlist with FDR control, write `candidates.csv`
+//! and `summary.json` to the output folder and print a short summary.
 
 use std::path::PathBuf;
 
@@ -8,23 +9,37 @@ use clap::{Args, ValueEnum};
 
 use crate::fdr::Pruning;
 use crate::pvalue::PValueKind;
-use crate::report::{candidates_csv, select_summary, text_summary, RunInputs};
+use crate::report::{
+    add_shift, candidates_csv, select_summary, shift_section, text_summary, RunInputs,
+};
 use crate::score::{ScoreKind, Thresholds};
 use crate::select::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };
-use crate::table::{read_units, OutputSet, ReadOptions, Role, UnitTable};
+use crate::table::{check_same_features, read_units, OutputSet, ReadOptions, Role, UnitTable};
+use crate::weighting::{obtain_weights, WeightSource, Weighting};
 
+use super::shift::{feature_selectors, weighting_failure, FitArgs};
 use super::{commit_outputs, print_stdout, Failure, PhaseTimer};
 
 const SELECT_HELP: &str = "\
 Reads both files completely into memory (about 100 bytes per row plus 8 per feature).
 Cost: O((n + m) log n) for the p-values, O(m log m) for conditional calibration.
 
+Weights: none (every weight 1: no shift assumed), given in a column of both files
+(--weight-column), or fitted (--fit-weights --features LIST): a domain classifier tells
+labeled rows from pool rows and its odds become the density-ratio weights, with the fit
+options of `weighbridge shift` (--penalty, --expand, --fit-rows, --fit-fraction,
+--cap-quantile, --pool-sample, --folds, --permutations; same defaults; the fit uses
+--seed and counts unreachable units at --fdr). The fit costs about what `weighbridge shift`
+costs; its diagnostics and warnings go into summary.json (`shift`) and the summary below.
+With --fit-rows held-out the labeled rows that fit the classifier do not calibrate.
+
 Outputs in --out (written all at once; nothing is written when an input is bad):
   candidates.csv  one row per pool unit in input order: id, score, weight, p_value,
                   selected, [first_step, conditional_count,] never_selectable_because
-  summary.json    settings, counts, warnings, seed, tool version
+  summary.json    settings, counts, warnings, seed, tool version, and with --fit-weights
+                  the shift diagnostics (`shift`)
 
 Exit codes: 0 success, 2 bad usage or input, 1 internal failure.
 
@@ -35,7 +50,11 @@ Examples:
 
   # per-unit thresholds, plain BH on conservative p-values
   weighbridge select --labeled labeled.csv --pool pool.csv --threshold-column c \\
-      --procedure bh --pvalues conservative --fdr 0.2";
+      --procedure bh --pvalues conservative --fdr 0.2
+
+  # weights fitted on the descriptors f1..f5
+  weighbridge select --labeled fixtures/labeled.csv --pool fixtures/pool.csv \\
+      --threshold 6.5 --fit-weights --features f1..f5 --fdr 0.1 --out shortlist";
 
 /// Command-line arguments of `select`, as typed.
 #[derive(Debug, Args)]
@@ -69,10 +88,20 @@ pub struct SelectArgs {
     /// Per-unit thresholds, a column present in both files.
     #[arg(long, value_name = "NAME")]
     pub threshold_column: Option<String>,
-    /// Density-ratio weights (pool / labeled), a column in both files. Without it every
-    /// weight is 1, i.e. no shift is assumed.
+    /// Density-ratio weights (pool / labeled), a column in both files. Without it (and
+    /// without --fit-weights) every weight is 1, i.e. no shift is assumed.
     #[arg(long, value_name = "NAME")]
     pub weight_column: Option<String>,
+    /// Fit the weights with a domain classifier on the --features columns (see `weighbridge
+    /// shift --help` for the fit options, which apply here too).
+    #[arg(long, conflicts_with = "weight_column", requires = "features")]
+    pub fit_weights: bool,
+    /// With --fit-weights: feature columns in both files, a comma list of names and/or
+    /// ranges such as `f1..f32`.
+    #[arg(long, value_name = "LIST", requires = "fit_weights")]
+    pub features: Vec<String>,
+    #[command(flatten)]
+    pub fit: FitArgs,
     /// Score function.
     #[arg(long, value_enum, default_value_t = ScoreArg::Clipped)]
     pub score: ScoreArg,
@@ -175,6 +204,8 @@ pub struct SelectConfig {
     pub pool_read: ReadOptions,
     pub threshold: Option<f64>,
     pub options: SelectOptions,
+    /// Where the weights come from.
+    pub weights: WeightSource,
     pub out: PathBuf,
     pub quiet: bool,
 }
@@ -212,15 +243,32 @@ impl TryFrom<SelectArgs> for SelectConfig {
             },
             seed: a.seed,
         };
-        // Usage errors (bad q, conditional + randomized) before any file is read.
+        // Usage errors (bad q, conditional + randomized, stray fit options) before any file
+        // is read.
         options.check()?;
+        let weights = if a.fit_weights {
+            WeightSource::Fitted {
+                params: a.fit.params(a.seed, a.fdr)?,
+            }
+        } else if let Some(flag) = a.fit.first_given() {
+            return Err(Failure::Input(format!(
+                "{flag} is an option of the weight fit and needs --fit-weights. Hint: add \
+                 --fit-weights --features LIST, or drop {flag}."
+            )));
+        } else if let Some(column) = &a.weight_column {
+            WeightSource::Given {
+                column: column.clone(),
+            }
+        } else {
+            WeightSource::None
+        };
         let pool_read = ReadOptions {
             id: a.id.clone(),
             outcome: None,
             prediction: a.prediction.clone(),
             threshold_column: a.threshold_column.clone(),
             weight_column: a.weight_column.clone(),
-            features: vec![],
+            features: feature_selectors(&a.features),
             delimiter: a.delimiter.map(DelimiterArg::byte),
         };
         let labeled_read = ReadOptions {
@@ -234,6 +282,7 @@ impl TryFrom<SelectArgs> for SelectConfig {
             pool_read,
             threshold: a.threshold,
             options,
+            weights,
             out: a.out,
             quiet: a.quiet,
         })
@@ -249,11 +298,24 @@ pub(crate) fn thresholds_of(table: &UnitTable, constant: Option<f64>) -> Thresho
     }
 }
 
-/// Read both files with the configured columns.
+/// Read both files with the configured columns (and the same feature columns in both when
+/// weights are fitted).
 pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable), Failure> {
     let labeled = read_units(&config.labeled_path, Role::Labeled, &config.labeled_read)?;
     let pool = read_units(&config.pool_path, Role::Pool, &config.pool_read)?;
+    check_same_features(&labeled, &pool)?;
     Ok((labeled, pool))
+}
+
+/// The run's weights (none, given or fitted; see [`crate::weighting`]), with errors mapped
+/// to exit codes and messages naming the files.
+pub(crate) fn obtain_run_weights<'a>(
+    config: &SelectConfig,
+    labeled: &'a UnitTable,
+    pool: &'a UnitTable,
+) -> Result<Weighting<'a>, Failure> {
+    obtain_weights(&config.weights, labeled, pool)
+        .map_err(|e| weighting_failure(e, &config.labeled_path, &config.pool_path))
 }
 
 /// Run the selection; a level no unit can reach is blamed on the labeled file by name.
@@ -264,8 +326,14 @@ fn select_or_explain(
 ) -> Result<crate::select::SelectionOutcome, Failure> {
     run_selection(&config.options, labeled, pool).map_err(|e| match e {
         SelectError::LabeledSetTooSmall { .. } => Failure::Input(format!(
-            "labeled file {}: {e}",
-            config.labeled_path.display()
+            "labeled file {}: {e}{}",
+            config.labeled_path.display(),
+            if matches!(&config.weights, WeightSource::Fitted { .. }) {
+                " (with --fit-rows held-out only the rows that did not fit the classifier \
+                 calibrate)"
+            } else {
+                ""
+            }
         )),
         other => other.into(),
     })
@@ -277,18 +345,28 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     let config = SelectConfig::try_from(args)?;
     let (labeled, pool) = read_inputs(&config)?;
     timer.mark("read inputs");
+    let weighting = obtain_run_weights(&config, &labeled, &pool)?;
+    if weighting.fitted().is_some() {
+        timer.mark("fit weights and diagnostics");
+    }
+    // Held-out fitting: the rows that fit the classifier do not calibrate.
+    let calibration = weighting.calibration(&labeled);
     let outcome = select_or_explain(
         &config,
         LabeledInput {
-            outcome: labeled.outcome.as_deref().unwrap_or_default(),
-            prediction: &labeled.prediction,
-            thresholds: thresholds_of(&labeled, config.threshold),
-            weights: labeled.weight.as_deref(),
+            outcome: &calibration.outcome,
+            prediction: &calibration.prediction,
+            thresholds: match (&calibration.threshold, config.threshold) {
+                (Some(column), _) => Thresholds::PerUnit(column),
+                (None, Some(c)) => Thresholds::Constant(c),
+                (None, None) => unreachable!("clap requires --threshold or --threshold-column"),
+            },
+            weights: calibration.weights.as_deref(),
         },
         PoolInput {
             prediction: &pool.prediction,
             thresholds: thresholds_of(&pool, config.threshold),
-            weights: pool.weight.as_deref(),
+            weights: weighting.pool_weights(),
         },
     )?;
     timer.mark("scores, p-values, selection");
@@ -300,12 +378,12 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
             (None, Some(c)) => format!("value {c}"),
             (None, None) => String::new(),
         },
-        weights: match &config.pool_read.weight_column {
-            Some(name) => format!("given in column {name}"),
-            None => "none (every weight 1: no shift assumed)".to_string(),
-        },
+        weights: weighting.describe(),
     };
-    let summary = select_summary(&outcome, inputs);
+    let mut summary = select_summary(&outcome, inputs);
+    if let Some(fitted) = weighting.fitted() {
+        add_shift(&mut summary, shift_section(fitted, &labeled.feature_names));
+    }
     let mut files = OutputSet::new();
     files.add("candidates.csv", candidates_csv(&pool.ids, &outcome));
     let json = serde_json::to_vec_pretty(&summary)

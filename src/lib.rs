@@ -1,6 +1,7 @@
 //! weighbridge: shortlists from screening predictions with a false discovery rate
 //! guarantee when the labeled set and the pool differ (covariate shift).
 pub mod audit;
+pub mod check;
 pub mod cli;
 pub mod demo;
 pub mod fdr;

@@ -14,8 +14,10 @@
 //!   (design.md 2.2);
 //! * its weight exceeds the largest labeled weight: the pool is denser there, relative to
 //!   the labeled set, than anywhere the labeled set was observed (common practice);
-//! * with fitted weights, its domain-classifier probability e(x) exceeds 0.9, the
-//!   trimming rule of Crump, Hotz, Imbens & Mitnik (2009).
+//! * with fitted weights, its domain-classifier probability exceeds 0.9, the trimming rule
+//!   of Crump, Hotz, Imbens & Mitnik (2009). The probability is taken on the equal-size
+//!   scale `w / (1 + w)` (what e(x) would be with as many labeled as pool units), as the
+//!   shift diagnostics do; the raw e(x) mostly reflects the ratio of the set sizes.
 
 use serde::Serialize;
 

@@ -283,3 +283,55 @@ fn duplicate_and_missing_shortlist_column_are_input_errors() {
     assert_eq!(audit(&empty, &out, &[]).status.code(), Some(2));
     assert!(!out.exists());
 }
+
+/// Fitted weights (`--fit-weights --features f1..f5`, the same flags as `select`): the
+/// audit's weighted p-values equal `select --fit-weights`'s on the same data.
+#[test]
+fn audit_with_fitted_weights_matches_select() {
+    let dir = TempDir::new().unwrap();
+    let fitted = dir.path().join("fitted");
+    select(
+        &fitted,
+        &[
+            "--fit-weights",
+            "--features",
+            "f1..f5",
+            "--permutations",
+            "19",
+        ],
+    );
+    let fitted_rows = rows(&fitted.join("candidates.csv"));
+    let listed: Vec<&str> = fitted_rows
+        .iter()
+        .take(25)
+        .map(|r| r["id"].as_str())
+        .collect();
+    let shortlist = dir.path().join("list.csv");
+    fs::write(&shortlist, format!("id\n{}\n", listed.join("\n"))).unwrap();
+    let out = dir.path().join("audit");
+    ok(&audit(
+        &shortlist,
+        &out,
+        &[
+            "--fit-weights",
+            "--features",
+            "f1..f5",
+            "--permutations",
+            "19",
+        ],
+    ));
+    let summary: Value =
+        serde_json::from_slice(&fs::read(out.join("audit.json")).unwrap()).unwrap();
+    assert!(
+        summary["weights"].as_str().unwrap().contains("fitted"),
+        "{}",
+        summary["weights"]
+    );
+    for (row, reference) in rows(&out.join("audit.csv")).iter().zip(&fitted_rows) {
+        assert_eq!(row["id"], reference["id"]);
+        let pw: f64 = row["p_value_weighted"].parse().unwrap();
+        let reference_p: f64 = reference["p_value"].parse().unwrap();
+        assert!((pw - reference_p).abs() < TOLERANCE);
+        assert!(!row["pool_probability"].is_empty());
+    }
+}

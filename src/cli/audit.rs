@@ -13,10 +13,11 @@ use serde::Serialize;
 
 use crate::audit::{audit_shortlist, AuditOutcome, POOL_PROBABILITY_LIMIT};
 use crate::report::{tool_info, ToolInfo, CAUTIONS};
+use crate::score::Thresholds;
 use crate::select::{LabeledInput, PoolInput};
 use crate::table::{read_id_list, OutputSet};
 
-use super::select::{read_inputs, thresholds_of, SelectArgs, SelectConfig};
+use super::select::{obtain_run_weights, read_inputs, thresholds_of, SelectArgs, SelectConfig};
 use super::{commit_outputs, print_stdout, Failure};
 
 const AUDIT_HELP: &str = "\
@@ -171,28 +172,54 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         .map(|(id, _)| position[id.as_str()])
         .collect();
 
+    let weighting = obtain_run_weights(&config, &labeled, &pool)?;
+    // Held-out fitting: the rows that fit the classifier do not calibrate.
+    let calibration = weighting.calibration(&labeled);
+    // e(x) on the equal-size scale w / (1 + w), as the shift diagnostics use it: the raw
+    // e(x) mostly reflects the pool/labeled size ratio.
+    let pool_probability: Option<Vec<f64>> = weighting.fitted().map(|f| {
+        f.assessment
+            .pool
+            .weight
+            .iter()
+            .map(|w| w / (1.0 + w))
+            .collect()
+    });
     let outcome = audit_shortlist(
         &config.options,
         LabeledInput {
-            outcome: labeled.outcome.as_deref().unwrap_or_default(),
-            prediction: &labeled.prediction,
-            thresholds: thresholds_of(&labeled, config.threshold),
-            weights: labeled.weight.as_deref(),
+            outcome: &calibration.outcome,
+            prediction: &calibration.prediction,
+            thresholds: match &calibration.threshold {
+                Some(column) => Thresholds::PerUnit(column),
+                None => thresholds_of(&labeled, config.threshold),
+            },
+            weights: calibration.weights.as_deref(),
         },
         PoolInput {
             prediction: &pool.prediction,
             thresholds: thresholds_of(&pool, config.threshold),
-            weights: pool.weight.as_deref(),
+            weights: weighting.pool_weights(),
         },
         &listed,
-        None,
+        pool_probability.as_deref(),
     )?;
 
     let settings = config.options.check()?;
-    let weights = match &config.pool_read.weight_column {
-        Some(name) => format!("given in column {name}"),
-        None => "none (every weight 1: no shift assumed)".to_string(),
-    };
+    let weights = weighting.describe();
+    // With fitted weights, the shift diagnostics' own warnings come first (worst first).
+    let mut warnings: Vec<String> = weighting
+        .fitted()
+        .map(|f| {
+            f.assessment
+                .summary
+                .warnings
+                .iter()
+                .map(|w| w.message.clone())
+                .collect()
+        })
+        .unwrap_or_default();
+    warnings.extend(outcome.warnings.iter().cloned());
     let summary = AuditSummary {
         tool: tool_info(),
         shortlist_file: shortlist_path.display().to_string(),
@@ -213,7 +240,7 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         weighted_selected_count: outcome.weighted_selected_count,
         largest_labeled_weight: outcome.largest_labeled_weight,
         pool_probability_limit: POOL_PROBABILITY_LIMIT,
-        warnings: &outcome.warnings,
+        warnings: &warnings,
         cautions: CAUTIONS.to_vec(),
     };
     let mut files = OutputSet::new();
@@ -248,9 +275,9 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
             outcome.poorly_covered_count,
             100.0 * summary.poorly_covered_share
         );
-        if !outcome.warnings.is_empty() {
+        if !warnings.is_empty() {
             let _ = writeln!(text, "findings (most serious first):");
-            for w in &outcome.warnings {
+            for w in &warnings {
                 let _ = writeln!(text, "  - {w}");
             }
         }

@@ -1444,3 +1444,310 @@ fn a_closed_stdout_pipe_is_not_an_error() {
     }
     assert!(out.join("candidates.csv").is_file() && out.join("summary.json").is_file());
 }
+
+// ---------------------------------------------------------------------------------------
+// Fitted weights: `select --fit-weights --features LIST`
+// ---------------------------------------------------------------------------------------
+//
+// References: tests/data/shift_cli_reference.json (scikit-learn 1.6.1 LogisticRegression
+// C = 1 on the README fixtures' f1..f5, made by tests/scripts/make_shift_cli_fixture.py) for
+// the fitted weights; the brute-force definitions above for everything computed from them;
+// and the `shift` command's weights.csv (same fit, same seed) for the exact weights the
+// selection used, including which labeled rows calibrate.
+
+mod fitted_tolerance {
+    /// Pool weights against scikit-learn: our Newton fit stops at gradient norm 1e-8, lbfgs
+    /// at tol 1e-12; coefficients agree to about 3e-8 (see tests/cli_shift.rs).
+    pub const SKLEARN_RELATIVE: f64 = 1e-6;
+    /// p-values computed with scikit-learn's weights instead of ours: the weights' relative
+    /// difference carries over.
+    pub const PVALUE_FROM_SKLEARN: f64 = 1e-6;
+}
+
+/// The `shift` command's weights.csv for the fixtures with `flags` (default seed):
+/// (labeled weights, labeled calibrates, pool weights).
+fn shift_weights(flags: &str) -> (Vec<f64>, Vec<bool>, Vec<f64>) {
+    let dir = TempDir::new().unwrap();
+    let out = dir.path().join("shift");
+    let labeled = fixture("labeled.csv");
+    let pool = fixture("pool.csv");
+    let mut args = vec![
+        "shift",
+        "--labeled",
+        path_str(&labeled),
+        "--pool",
+        path_str(&pool),
+        "--out",
+        path_str(&out),
+        "--quiet",
+    ];
+    args.extend(flags.split_whitespace());
+    let output = weighbridge().args(&args).output().unwrap();
+    assert_success(&output);
+    let t = Table::read(&out.join("weights.csv"));
+    let set = t.strings("set");
+    let w = t.numbers("weight");
+    let calibrates = t.booleans("calibrates");
+    let of = |name: &str| -> Vec<usize> { (0..set.len()).filter(|&i| set[i] == name).collect() };
+    let (lab, pool_rows) = (of("labeled"), of("pool"));
+    (
+        lab.iter().map(|&i| w[i]).collect(),
+        lab.iter().map(|&i| calibrates[i]).collect(),
+        pool_rows.iter().map(|&i| w[i]).collect(),
+    )
+}
+
+fn sklearn_reference() -> Value {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("tests/data/shift_cli_reference.json");
+    serde_json::from_slice(&fs::read(path).unwrap()).unwrap()
+}
+
+fn json_floats(v: &Value) -> Vec<f64> {
+    v.as_array()
+        .unwrap()
+        .iter()
+        .map(|x| x.as_f64().unwrap())
+        .collect()
+}
+
+/// `select` on the fixtures with fitted weights plus `flags`; must succeed.
+fn select_fitted(out: &Path, flags: &str) -> Output {
+    let flags = format!("--threshold 6.5 --fit-weights --features f1..f5 {flags}");
+    let output = select_files(&fixture("labeled.csv"), &fixture("pool.csv"), out, &flags);
+    assert_success(&output);
+    output
+}
+
+#[test]
+fn fitted_weights_are_scikit_learns_and_the_selection_follows_the_definition() {
+    let dir = TempDir::new().unwrap();
+    let out = dir.path().join("shortlist");
+    let output = select_fitted(&out, "");
+    let candidates = Candidates::read(&out);
+    let summary = read_summary(&out);
+    let labeled = Units::read(&fixture("labeled.csv"));
+    let pool = Units::read(&fixture("pool.csv"));
+    let q = DEFAULT_FDR;
+    let m = pool.len();
+
+    // The pool weights are scikit-learn's fit (n/m) exp(eta), not column w.
+    let reference = sklearn_reference();
+    let sklearn_pool = json_floats(&reference["pool_weight"]);
+    let sklearn_labeled = json_floats(&reference["labeled_weight"]);
+    for (j, (a, b)) in candidates.weight.iter().zip(&sklearn_pool).enumerate() {
+        assert!(
+            (a - b).abs() <= fitted_tolerance::SKLEARN_RELATIVE * b,
+            "weight[{j}]: {a} vs scikit-learn {b}"
+        );
+    }
+    // p-values by brute force with scikit-learn's weights (design.md 2.2).
+    let v = labeled_scores(&labeled, Some(FIXTURE_THRESHOLD), Score::Clipped);
+    let vh = pool_scores(&pool, Some(FIXTURE_THRESHOLD));
+    let p_sklearn = conservative_pvalues(&v, &sklearn_labeled, &vh, &sklearn_pool);
+    for (j, (a, b)) in candidates.p_value.iter().zip(&p_sklearn).enumerate() {
+        assert!(
+            (a - b).abs() <= fitted_tolerance::PVALUE_FROM_SKLEARN,
+            "p_value[{j}]: {a} vs {b}"
+        );
+    }
+
+    // With the exact weights the selection used (the `shift` command's weights.csv, same
+    // fit and seed) the brute-force definitions reproduce every column exactly.
+    let (w, calibrates, wh) = shift_weights("--features f1..f5");
+    assert!(
+        calibrates.iter().all(|&c| c),
+        "fit on all rows: every row calibrates"
+    );
+    assert_close("weight", &candidates.weight, &wh);
+    let p = conservative_pvalues(&v, &w, &vh, &wh);
+    assert_close("p_value", &candidates.p_value, &p);
+    let counts = candidates.conditional_count.as_ref().unwrap();
+    assert_eq!(counts, &conditional_counts(&v, &w, &vh, &wh, q));
+    let first_step = candidates.first_step.as_ref().unwrap();
+    for j in 0..m {
+        assert_eq!(
+            first_step[j],
+            passes(p[j], 1.0, q * counts[j] as f64 / m as f64),
+            "first_step of unit {j}"
+        );
+    }
+    let xi = summary["pruning_draw"].as_f64().unwrap();
+    assert_eq!(candidates.selected, prune(first_step, counts, |_| xi));
+
+    // summary.json: the shift diagnostics as an object, the weights named as fitted, the
+    // ESS of the fitted weights (Kish 1965) in both places.
+    let shift = field(&summary, "shift");
+    for key in [
+        "auc",
+        "auc_ci",
+        "permutation_p",
+        "ess",
+        "ess_fraction",
+        "khat",
+        "unreachable_count",
+        "converged",
+        "iterations",
+        "warnings",
+        "settings",
+        "fit_rows_note",
+        "calibration_rows",
+    ] {
+        assert!(shift.get(key).is_some(), "summary.json shift lacks `{key}`");
+    }
+    assert!(summary["inputs"]["weights"]
+        .as_str()
+        .unwrap()
+        .starts_with("fitted"));
+    let total: f64 = w.iter().sum();
+    let kish = total * total / w.iter().map(|x| x * x).sum::<f64>();
+    for ess in [
+        summary["labeled_ess"].as_f64().unwrap(),
+        shift["ess"].as_f64().unwrap(),
+    ] {
+        assert!(
+            (ess - kish).abs() <= tolerance::ABSOLUTE * kish,
+            "{ess} vs {kish}"
+        );
+    }
+    assert_eq!(summary["unreachable_count"], shift["unreachable_count"]);
+
+    // The output states the fitting mode and why it is the default.
+    let stdout = text(&output.stdout);
+    for phrase in [
+        "fitted on all rows (the default)",
+        "no worse than a held-out fit",
+        "weighbridge check",
+        "domain-classifier AUC",
+    ] {
+        assert!(
+            stdout.contains(phrase),
+            "stdout lacks `{phrase}`:\n{stdout}"
+        );
+    }
+}
+
+#[test]
+fn held_out_fitting_rows_do_not_calibrate() {
+    let dir = TempDir::new().unwrap();
+    let out = dir.path().join("shortlist");
+    let flags = "--fit-rows held-out --fit-fraction 0.3";
+    let output = select_fitted(&out, flags);
+    let summary = read_summary(&out);
+    let candidates = Candidates::read(&out);
+    // 90 of 300 labeled rows fit the classifier; the other 210 calibrate.
+    assert_eq!(count_field(&summary, "n_labeled"), 210);
+    assert_eq!(summary["shift"]["calibration_rows"].as_u64(), Some(210));
+    assert_eq!(summary["shift"]["labeled_rows"].as_u64(), Some(300));
+    assert!(text(&output.stdout).contains("210 of 300 labeled rows calibrate"));
+
+    // The p-values use exactly the calibrating rows (the `shift` command's split with the
+    // same seed), by brute force.
+    let (w, calibrates, wh) = shift_weights(&format!("--features f1..f5 {flags}"));
+    let labeled = Units::read(&fixture("labeled.csv"));
+    let pool = Units::read(&fixture("pool.csv"));
+    let v = labeled_scores(&labeled, Some(FIXTURE_THRESHOLD), Score::Clipped);
+    let keep = |x: &[f64]| -> Vec<f64> {
+        x.iter()
+            .zip(&calibrates)
+            .filter(|(_, &c)| c)
+            .map(|(&a, _)| a)
+            .collect()
+    };
+    let vh = pool_scores(&pool, Some(FIXTURE_THRESHOLD));
+    assert_close("weight", &candidates.weight, &wh);
+    let p = conservative_pvalues(&keep(&v), &keep(&w), &vh, &wh);
+    assert_close("p_value", &candidates.p_value, &p);
+}
+
+#[test]
+fn shift_warnings_come_first_in_the_summary() {
+    // A pool far from the labeled set (fixture pool units with f1 > 1; the labeled f1 is
+    // centred at -0.7): the shift warnings fire (see tests/cli_shift.rs) and lead the
+    // summary's warnings, worst first; the selection's own effective-sample-size warning,
+    // which would repeat the shift's, is dropped.
+    let dir = TempDir::new().unwrap();
+    let far = dir.path().join("far.csv");
+    let t = Table::read(&fixture("pool.csv"));
+    let f1 = t.index("f1").unwrap();
+    let mut writer = csv::Writer::from_path(&far).unwrap();
+    writer.write_record(&t.header).unwrap();
+    for row in t.rows.iter().filter(|r| number(&r[f1]) > 1.0) {
+        writer.write_record(row).unwrap();
+    }
+    writer.flush().unwrap();
+    let out = dir.path().join("out");
+    let output = select_files(
+        &fixture("labeled.csv"),
+        &far,
+        &out,
+        "--threshold 6.5 --fit-weights --features f1..f5",
+    );
+    assert_success(&output);
+    let summary = read_summary(&out);
+    let shift_warnings: Vec<&str> = summary["shift"]["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w["diagnostic"].as_str().unwrap())
+        .collect();
+    assert!(
+        shift_warnings.contains(&"ess_fraction"),
+        "{shift_warnings:?}"
+    );
+    let warnings: Vec<&str> = summary["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w.as_str().unwrap())
+        .collect();
+    for (i, diagnostic) in shift_warnings.iter().enumerate() {
+        assert!(
+            warnings[i].starts_with(&format!("{diagnostic} (")),
+            "warning {i} should be the shift's `{diagnostic}`: {warnings:#?}"
+        );
+    }
+    assert!(
+        !warnings
+            .iter()
+            .any(|w| w.starts_with("effective sample size:")),
+        "{warnings:#?}"
+    );
+    let stdout = text(&output.stdout);
+    assert!(stdout.contains("warnings (most serious first)"), "{stdout}");
+}
+
+#[test]
+fn bad_fit_weights_with_a_weight_column() {
+    let case = BadCase::good();
+    case.run("--threshold 1 --weight-column w --fit-weights --features x")
+        .names("--fit-weights")
+        .names("--weight-column");
+}
+
+#[test]
+fn bad_fit_weights_without_features() {
+    BadCase::good()
+        .run("--threshold 1 --fit-weights")
+        .names("--features");
+}
+
+#[test]
+fn bad_fit_option_without_fit_weights() {
+    BadCase::good()
+        .run("--threshold 1 --expand squares")
+        .names("--expand")
+        .names("--fit-weights")
+        .hint();
+    BadCase::good()
+        .run("--threshold 1 --features x")
+        .names("--fit-weights");
+}
+
+#[test]
+fn bad_fit_weights_on_a_missing_feature() {
+    let case = BadCase::good();
+    case.run("--threshold 1 --fit-weights --features nope")
+        .file(&case.labeled)
+        .names("`nope`")
+        .names("--features");
+}

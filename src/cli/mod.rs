@@ -6,6 +6,7 @@
 //! A closed stdout pipe (e.g. `| head`) is not an error.
 
 pub mod audit;
+pub mod check;
 pub mod demo;
 pub mod select;
 pub mod shift;
@@ -47,6 +48,8 @@ enum Command {
     Demo(demo::DemoArgs),
     /// Check whether an earlier shortlist was distorted by covariate shift.
     Audit(audit::AuditArgs),
+    /// Estimate by simulation on your labeled set whether the pipeline keeps FDR <= q.
+    Check(check::CheckArgs),
 }
 
 /// Why a command failed, and so which exit code it gets.
@@ -142,6 +145,7 @@ pub fn main_entry() -> ExitCode {
         Command::Shift(args) => shift::run(args),
         Command::Demo(args) => demo::run(args),
         Command::Audit(args) => audit::run(args),
+        Command::Check(args) => check::run(args),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,

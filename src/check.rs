@@ -229,8 +229,12 @@ pub fn calibration_check(
             rows: n,
         });
     }
-    options
-        .select
+    // The BH runs' p-value choice is applied per procedure below; check the rest.
+    let select_checked = SelectOptions {
+        pvalues: None,
+        ..options.select.clone()
+    };
+    select_checked
         .check()
         .map_err(|source| CheckError::Selection {
             replicate: 0,

@@ -311,8 +311,9 @@ pub const FIT_ROWS_DEFAULT_REASON: &str = "Fitting on all rows is the default: i
 fitting the classifier on the same labeled rows that calibrate was no worse than a held-out \
 fit, while a held-out fit costs calibration rows (the real risk is a weight model that misses \
 part of the shift, see the adequacy diagnostic). Weights fitted on the data are not covered \
-by the exact FDR guarantee in either mode. The calibration check by simulation (the planned \
-`weighbridge check` command) is the tool to confirm this on data like yours.";
+by the exact FDR guarantee in either mode. The calibration check by simulation \
+(`weighbridge check`, run once with each --fit-rows mode) is the tool to confirm this on data \
+like yours.";
 
 /// The fitting mode and its justification in plain words: which mode was used, how many
 /// labeled rows calibrate, and why fitting on all rows is the default.

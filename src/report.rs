@@ -71,6 +71,8 @@ pub struct SelectSummary {
     pub first_step_count: Option<usize>,
     /// How many BH at level `fdr` selects on the same weighted p-values.
     pub bh_selected_count: usize,
+    /// The p-values behind `bh_selected_count` (randomized for conditional calibration).
+    pub bh_pvalues: &'static str,
     pub bh_note: Option<String>,
     pub unreachable_count: usize,
     pub weights_vary: bool,
@@ -90,7 +92,7 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         format!(
             "BH on the weighted {} p-values would select {}; with varying weights BH has no \
              finite-sample FDR guarantee.",
-            s.pvalues.name(),
+            outcome.bh_pvalues.name(),
             outcome.bh_selected_count
         )
     });
@@ -109,6 +111,7 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         selected_count: outcome.selected_count,
         first_step_count: outcome.first_step_count,
         bh_selected_count: outcome.bh_selected_count,
+        bh_pvalues: outcome.bh_pvalues.name(),
         bh_note,
         unreachable_count: outcome.unreachable_count,
         weights_vary: outcome.weights_vary,
@@ -235,6 +238,25 @@ pub fn text_summary(summary: &SelectSummary, ids: &[String], outcome: &Selection
         s.pvalues,
         s.score
     );
+    if let Some(shift) = &s.shift {
+        let severe: Vec<&str> = shift
+            .summary
+            .warnings
+            .iter()
+            .filter(|w| w.severity == Severity::Severe)
+            .map(|w| w.diagnostic.as_str())
+            .collect();
+        if !severe.is_empty() {
+            let _ = writeln!(
+                out,
+                "  WARNING: the fitted weights fail {} severe check{} ({}; details below, worst \
+                 first): read them before using this shortlist",
+                severe.len(),
+                if severe.len() == 1 { "" } else { "s" },
+                severe.join(", ")
+            );
+        }
+    }
     let _ = writeln!(
         out,
         "  labeled units: {}  weights: {}  effective sample size: {:.1} ({:.1}% of labeled)",
@@ -248,8 +270,8 @@ pub fn text_summary(summary: &SelectSummary, ids: &[String], outcome: &Selection
     }
     let _ = writeln!(
         out,
-        "  BH on the same {} p-values would select: {}{}",
-        s.pvalues,
+        "  BH on the weighted {} p-values would select: {}{}",
+        s.bh_pvalues,
         s.bh_selected_count,
         if s.weights_vary {
             " (BH has no finite-sample guarantee when weights vary; conditional calibration \

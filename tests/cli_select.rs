@@ -570,10 +570,15 @@ fn readme_example_conditional_calibration_on_the_fixtures() {
         assert!(!(unreachable[j] && candidates.selected[j]));
     }
 
-    // BH on the same p-values, and the labeled weights' totals.
+    // The BH alternative quoted in the summary is BH as `--procedure bh` runs it by default
+    // (randomized weighted p-values, same seed): the two runs must agree. Then the labeled
+    // weights' totals.
+    assert_eq!(summary["bh_pvalues"].as_str(), Some("randomized"));
+    let bh_out = dir.path().join("bh");
+    select_fixtures(&bh_out, "--fdr 0.1 --procedure bh --quiet");
     assert_eq!(
         count_field(&summary, "bh_selected_count"),
-        Candidates::count(&bh_selection(&p, q))
+        count_field(&read_summary(&bh_out), "selected_count")
     );
     let total_reported = summary["total_labeled_weight"].as_f64().unwrap();
     assert!((total_reported - total).abs() <= tolerance::ABSOLUTE * total);
@@ -1714,6 +1719,12 @@ fn shift_warnings_come_first_in_the_summary() {
     );
     let stdout = text(&output.stdout);
     assert!(stdout.contains("warnings (most serious first)"), "{stdout}");
+    // Severe shift warnings are announced on the second line, before any count.
+    let second = stdout.lines().nth(1).unwrap_or_default();
+    assert!(
+        second.contains("WARNING") && second.contains("ess_fraction"),
+        "{stdout}"
+    );
 }
 
 #[test]

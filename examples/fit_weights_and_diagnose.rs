@@ -10,7 +10,9 @@ use weighbridge::shift::{assess_shift_with, Expansion, FeatureView, ShiftParams}
 
 /// Column-major features of a demo set.
 fn column_major(rows: &[[f64; 5]]) -> Vec<f64> {
-    (0..5).flat_map(|f| rows.iter().map(move |x| x[f])).collect()
+    (0..5)
+        .flat_map(|f| rows.iter().map(move |x| x[f]))
+        .collect()
 }
 
 /// Spearman rank correlation (ties not expected with continuous data).
@@ -27,7 +29,11 @@ fn spearman(a: &[f64], b: &[f64]) -> f64 {
     let (ra, rb) = (ranks(a), ranks(b));
     let n = a.len() as f64;
     let mean = (n - 1.0) / 2.0;
-    let cov: f64 = ra.iter().zip(&rb).map(|(x, y)| (x - mean) * (y - mean)).sum();
+    let cov: f64 = ra
+        .iter()
+        .zip(&rb)
+        .map(|(x, y)| (x - mean) * (y - mean))
+        .sum();
     let var: f64 = ra.iter().map(|x| (x - mean) * (x - mean)).sum();
     cov / var
 }
@@ -72,5 +78,8 @@ fn main() {
     let rho = spearman(&assessment.pool.weight, &scenario.pool.true_weight);
     println!("Spearman correlation of fitted and exact pool weights: {rho:.4}");
     assert!(s.converged);
-    assert!(rho > 0.95, "fitted weights should track the exact ratio, got {rho}");
+    assert!(
+        rho > 0.95,
+        "fitted weights should track the exact ratio, got {rho}"
+    );
 }

@@ -33,13 +33,12 @@ fn main() {
     let (false_hits, chosen) = false_discovery_proportion(&scenario.pool, &outcome.selected);
     println!(
         "selected {} of {} (first step {:?}, BH on the same p-values {}), {} inactive",
-        outcome.selected_count,
-        m,
-        outcome.first_step_count,
-        outcome.bh_selected_count,
-        false_hits
+        outcome.selected_count, m, outcome.first_step_count, outcome.bh_selected_count, false_hits
     );
-    println!("labeled effective sample size {:.0} of {n}", outcome.labeled_ess);
+    println!(
+        "labeled effective sample size {:.0} of {n}",
+        outcome.labeled_ess
+    );
     for warning in &outcome.warnings {
         println!("warning: {warning}");
     }

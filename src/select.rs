@@ -202,8 +202,12 @@ pub struct SelectionOutcome {
     pub unreachable: Vec<bool>,
     pub selected_count: usize,
     pub first_step_count: Option<usize>,
-    /// How many BH at level q selects on the same p-values.
+    /// How many BH at level q selects on the weighted p-values: the same p-values for BH
+    /// and BY, randomized ones (same seed, as `--procedure bh` uses) for conditional
+    /// calibration.
     pub bh_selected_count: usize,
+    /// The p-values behind `bh_selected_count`.
+    pub bh_pvalues: PValueKind,
     pub unreachable_count: usize,
     /// The shared draw of homogeneous pruning.
     pub pruning_draw: Option<f64>,
@@ -303,6 +307,22 @@ pub fn run_selection(
     )?;
     let p = pvalues.values();
     let bh = benjamini_hochberg(&p, q)?;
+    // The BH alternative the summary quotes: BH as `--procedure bh` runs it by default, on
+    // randomized weighted p-values (same seed), so the two counts compare like for like.
+    let (bh_pvalues, bh_alternative_count) = match settings.procedure {
+        Procedure::Conditional => {
+            let randomized = pool_pvalues(
+                PValueKind::Randomized,
+                &calibration,
+                &pool_v,
+                pool.weights,
+                settings.seed,
+            )?;
+            let count = benjamini_hochberg(&randomized.values(), q)?.count;
+            (PValueKind::Randomized, count)
+        }
+        Procedure::Bh | Procedure::By => (settings.pvalues, bh.count),
+    };
 
     let mut first_step = None;
     let mut conditional_count = None;
@@ -348,7 +368,8 @@ pub fn run_selection(
         unreachable,
         selected_count,
         first_step_count,
-        bh_selected_count: bh.count,
+        bh_selected_count: bh_alternative_count,
+        bh_pvalues,
         unreachable_count,
         pruning_draw,
         weights_vary,
@@ -421,8 +442,9 @@ fn selection_warnings(o: &SelectionOutcome) -> Vec<String> {
     }
     if o.selected_count == 0 {
         warnings.push(format!(
-            "empty shortlist: no pool unit was selected at FDR {q}. BH on the same p-values \
-             would select {}.",
+            "empty shortlist: no pool unit was selected at FDR {q}. BH on the weighted {} \
+             p-values would select {}.",
+            o.bh_pvalues.name(),
             o.bh_selected_count
         ));
     }

@@ -381,9 +381,11 @@ pub struct RepeatedResult {
     pub power: f64,
 }
 
-/// Label permutations per repeated screen: the repeated screens use only the fitted
-/// weights, not the permutation test, so one relabeling is enough.
+/// Label permutations and cross-validation folds per repeated screen: the repeated screens
+/// use only the fitted weights (the main fit), not the AUC or its permutation test, so the
+/// smallest valid settings keep them fast.
 const REPEATED_PERMUTATIONS: usize = 1;
+const REPEATED_FOLDS: usize = 2;
 
 /// Repeat the whole screen `screens` times with fresh invented data (seeds `seed + 1`,
 /// `seed + 2`, ...), fitting the weights afresh each time, and average each compared
@@ -406,7 +408,7 @@ pub fn repeated_screens(
             let scenario = generate(n_labeled, n_pool, screen_seed);
             let fitted = fit_weights(
                 &scenario,
-                fit_params(screen_seed, fdr, REPEATED_PERMUTATIONS),
+                fit_params(screen_seed, fdr, REPEATED_PERMUTATIONS).cv_folds(REPEATED_FOLDS),
             )?;
             let actives = scenario
                 .pool

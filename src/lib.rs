@@ -9,6 +9,7 @@ pub mod plots;
 pub mod pvalue;
 pub mod random;
 pub mod report;
+pub mod rescreen;
 pub mod score;
 pub mod select;
 pub mod shift;

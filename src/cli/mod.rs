@@ -8,6 +8,7 @@
 pub mod audit;
 pub mod check;
 pub mod demo;
+pub mod rescreen;
 pub mod select;
 pub mod shift;
 
@@ -50,6 +51,8 @@ enum Command {
     Audit(audit::AuditArgs),
     /// Estimate by simulation on your labeled set whether the pipeline keeps FDR <= q.
     Check(check::CheckArgs),
+    /// Re-run the selection on a grown pool and report what changed since a previous run.
+    Rescreen(rescreen::RescreenArgs),
 }
 
 /// Why a command failed, and so which exit code it gets.
@@ -146,6 +149,7 @@ pub fn main_entry() -> ExitCode {
         Command::Demo(args) => demo::run(args),
         Command::Audit(args) => audit::run(args),
         Command::Check(args) => check::run(args),
+        Command::Rescreen(args) => rescreen::run(args),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,

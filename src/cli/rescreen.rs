@@ -1,0 +1,332 @@
+//! `weighbridge rescreen`: run the selection on an expanded pool and report what changed
+//! against a previous run's output folder (see `crate::rescreen`).
+
+use std::fmt::Write as _;
+use std::path::{Path, PathBuf};
+
+use clap::Args;
+use serde::Serialize;
+use serde_json::Value;
+
+use crate::report::{add_shift, candidates_csv, select_summary, shift_section, RunInputs};
+use crate::rescreen::{compare, ChangeCounts, CurrentUnit, PreviousUnit};
+use crate::score::Thresholds;
+use crate::select::{run_selection, LabeledInput, PoolInput};
+use crate::table::OutputSet;
+
+use super::select::{obtain_run_weights, read_inputs, thresholds_of, SelectArgs, SelectConfig};
+use super::{commit_outputs, print_stdout, Failure};
+
+const RESCREEN_HELP: &str = "\
+Runs the same selection as `select` (every option applies) on the current files, then
+compares it unit by unit (matched by id) with the candidates.csv and summary.json of a
+previous run in --previous. Writes into --out: candidates.csv and summary.json of the new
+run, changes.csv (id, change, why, previous_p_value, p_value, new_poorly_covered) and
+changes.json (counts, how the diagnostics moved, warnings).
+
+Changes: new to the pool (selected or not), newly selected, dropped (with the reasons that
+apply: its weight moved, its score moved, its p-value moved, or the pool grew so the BH line
+q k / m got stricter), kept, no longer in the pool. New units the labeled set cannot vouch
+for (unreachable at --fdr, or a weight above every labeled weight) are flagged.
+
+Example:
+  weighbridge rescreen --previous round1 --labeled labeled.csv --pool pool_grown.csv \\
+      --threshold 6.5 --fit-weights --features f1..f5 --fdr 0.1 --out round2";
+
+/// Arguments of `rescreen`.
+#[derive(Debug, Args)]
+#[command(after_long_help = RESCREEN_HELP)]
+pub struct RescreenArgs {
+    /// Output folder of the previous run (`select`, `rescreen` or `demo`): its
+    /// candidates.csv and summary.json are read.
+    #[arg(long, value_name = "DIR")]
+    pub previous: PathBuf,
+    #[command(flatten)]
+    pub selection: SelectArgs,
+}
+
+/// One diagnostic before and after.
+#[derive(Debug, Serialize)]
+struct Moved {
+    diagnostic: &'static str,
+    previous: Option<f64>,
+    current: Option<f64>,
+}
+
+#[derive(Debug, Serialize)]
+struct ChangesReport<'a> {
+    tool: crate::report::ToolInfo,
+    previous_folder: String,
+    #[serde(flatten)]
+    counts: &'a ChangeCounts,
+    diagnostics: Vec<Moved>,
+    warnings: Vec<String>,
+}
+
+fn previous_file(dir: &Path, name: &str) -> PathBuf {
+    dir.join(name)
+}
+
+fn read_previous(dir: &Path) -> Result<(Vec<PreviousUnit>, Value), Failure> {
+    let candidates = previous_file(dir, "candidates.csv");
+    let bad = |what: String| {
+        Failure::Input(format!(
+            "{}: {what}. Hint: --previous must be the output folder of an earlier `select`, \
+             `rescreen` or `demo` run.",
+            candidates.display()
+        ))
+    };
+    let mut reader = csv::Reader::from_path(&candidates).map_err(|e| bad(e.to_string()))?;
+    let header = reader.headers().map_err(|e| bad(e.to_string()))?.clone();
+    let column = |name: &str| {
+        header
+            .iter()
+            .position(|h| h == name)
+            .ok_or_else(|| bad(format!("no column `{name}`")))
+    };
+    let (id, score, weight, p, selected) = (
+        column("id")?,
+        column("score")?,
+        column("weight")?,
+        column("p_value")?,
+        column("selected")?,
+    );
+    let mut units = Vec::new();
+    for record in reader.records() {
+        let record = record.map_err(|e| bad(e.to_string()))?;
+        let line = record.position().map_or(0, |p| p.line());
+        let number = |index: usize| -> Result<f64, Failure> {
+            record
+                .get(index)
+                .and_then(|v| v.trim().parse::<f64>().ok())
+                .ok_or_else(|| bad(format!("line {line}: `{}` is not a number", &record[index])))
+        };
+        units.push(PreviousUnit {
+            id: record[id].to_string(),
+            score: number(score)?,
+            weight: number(weight)?,
+            p_value: number(p)?,
+            selected: &record[selected] == "true",
+        });
+    }
+    let summary_path = previous_file(dir, "summary.json");
+    let summary: Value = std::fs::read(&summary_path)
+        .ok()
+        .and_then(|bytes| serde_json::from_slice(&bytes).ok())
+        .ok_or_else(|| {
+            Failure::Input(format!(
+                "{}: missing or not valid JSON. Hint: --previous must be the output folder of \
+                 an earlier `select`, `rescreen` or `demo` run.",
+                summary_path.display()
+            ))
+        })?;
+    Ok((units, summary))
+}
+
+/// A number from a summary by JSON pointer (e.g. "/shift/auc").
+fn number_at(summary: &Value, pointer: &str) -> Option<f64> {
+    summary.pointer(pointer).and_then(Value::as_f64)
+}
+
+/// Run `rescreen`.
+pub fn run(args: RescreenArgs) -> Result<(), Failure> {
+    let previous_dir = args.previous.clone();
+    let config = SelectConfig::try_from(args.selection)?;
+    let (previous, previous_summary) = read_previous(&previous_dir)?;
+    let (labeled, pool) = read_inputs(&config)?;
+    let weighting = obtain_run_weights(&config, &labeled, &pool)?;
+    let calibration = weighting.calibration(&labeled);
+    let outcome = run_selection(
+        &config.options,
+        LabeledInput {
+            outcome: &calibration.outcome,
+            prediction: &calibration.prediction,
+            thresholds: match &calibration.threshold {
+                Some(column) => Thresholds::PerUnit(column),
+                None => thresholds_of(&labeled, config.threshold),
+            },
+            weights: calibration.weights.as_deref(),
+        },
+        PoolInput {
+            prediction: &pool.prediction,
+            thresholds: thresholds_of(&pool, config.threshold),
+            weights: weighting.pool_weights(),
+        },
+    )?;
+    let mut summary = select_summary(
+        &outcome,
+        RunInputs {
+            labeled_file: config.labeled_path.display().to_string(),
+            pool_file: config.pool_path.display().to_string(),
+            threshold: match (&config.pool_read.threshold_column, config.threshold) {
+                (Some(name), _) => format!("column {name}"),
+                (None, Some(c)) => format!("value {c}"),
+                (None, None) => String::new(),
+            },
+            weights: weighting.describe(),
+        },
+    );
+    if let Some(fitted) = weighting.fitted() {
+        add_shift(&mut summary, shift_section(fitted, &labeled.feature_names));
+    }
+
+    let current: Vec<CurrentUnit<'_>> = (0..pool.len())
+        .map(|j| CurrentUnit {
+            id: &pool.ids[j],
+            score: outcome.scores[j],
+            weight: outcome.weights[j],
+            p_value: outcome.p_values[j],
+            selected: outcome.selected[j],
+            unreachable: outcome.unreachable[j],
+        })
+        .collect();
+    let largest_labeled_weight = calibration
+        .weights
+        .as_deref()
+        .map_or(1.0, |w| w.iter().copied().fold(f64::NEG_INFINITY, f64::max));
+    let (rows, counts) = compare(
+        &previous,
+        &current,
+        largest_labeled_weight,
+        outcome.settings.fdr,
+    );
+
+    let current_summary = serde_json::to_value(&summary)
+        .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?;
+    let diagnostics: Vec<Moved> = [
+        ("selected_count", "/selected_count"),
+        ("unreachable_count", "/unreachable_count"),
+        ("labeled_ess", "/labeled_ess"),
+        ("labeled_ess_fraction", "/labeled_ess_fraction"),
+        ("auc", "/shift/auc"),
+        ("ess_fraction", "/shift/ess_fraction"),
+        ("khat", "/shift/khat"),
+    ]
+    .into_iter()
+    .map(|(diagnostic, pointer)| Moved {
+        diagnostic,
+        previous: number_at(&previous_summary, pointer),
+        current: number_at(&current_summary, pointer),
+    })
+    .filter(|m| m.previous.is_some() || m.current.is_some())
+    .collect();
+
+    let mut warnings = Vec::new();
+    if counts.new_poorly_covered > 0 {
+        warnings.push(format!(
+            "{} of {} new pool units sit where the labeled set gives little support \
+             (unreachable at FDR {} or a weight above every labeled weight): assay some of \
+             them to extend coverage before trusting selections there.",
+            counts.new_poorly_covered, counts.new_units, outcome.settings.fdr
+        ));
+    }
+    if counts.dropped_pool_grew > 0 {
+        warnings.push(format!(
+            "{} previously selected units dropped only because the pool grew ({} -> {} units): \
+             their p-values did not move, but the BH line q k / m is stricter at every rank.",
+            counts.dropped_pool_grew, counts.previous_pool, counts.current_pool
+        ));
+    }
+    warnings.extend(summary.warnings.iter().cloned());
+
+    let report = ChangesReport {
+        tool: crate::report::tool_info(),
+        previous_folder: previous_dir.display().to_string(),
+        counts: &counts,
+        diagnostics,
+        warnings,
+    };
+    let mut changes = csv::Writer::from_writer(Vec::new());
+    changes
+        .write_record([
+            "id",
+            "change",
+            "why",
+            "previous_p_value",
+            "p_value",
+            "new_poorly_covered",
+        ])
+        .expect("write to memory");
+    for row in &rows {
+        changes
+            .write_record([
+                row.id.clone(),
+                row.change.words().to_string(),
+                row.why.clone(),
+                row.previous_p_value
+                    .map_or(String::new(), |p| p.to_string()),
+                row.p_value.map_or(String::new(), |p| p.to_string()),
+                row.new_poorly_covered.to_string(),
+            ])
+            .expect("write to memory");
+    }
+    let mut files = OutputSet::new();
+    files.add("candidates.csv", candidates_csv(&pool.ids, &outcome));
+    files.add(
+        "summary.json",
+        serde_json::to_vec_pretty(&summary)
+            .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?,
+    );
+    files.add(
+        "changes.csv",
+        changes.into_inner().expect("flush to memory"),
+    );
+    files.add(
+        "changes.json",
+        serde_json::to_vec_pretty(&report)
+            .map_err(|e| Failure::Internal(format!("cannot serialize the changes: {e}")))?,
+    );
+    commit_outputs(files, &config.out)?;
+
+    if !config.quiet {
+        let mut text = String::new();
+        let _ = writeln!(
+            text,
+            "weighbridge {} rescreen: pool {} -> {} units ({} new, {} left); selected {} -> {} at FDR {}",
+            report.tool.version,
+            counts.previous_pool,
+            counts.current_pool,
+            counts.new_units,
+            counts.left_pool,
+            counts.previously_selected,
+            counts.selected,
+            outcome.settings.fdr
+        );
+        let _ = writeln!(
+            text,
+            "  kept {}, newly selected {} (+{} new units), dropped {} (weight moved {}, score \
+             moved {}, p-value moved {}, only the pool grew {})",
+            counts.kept,
+            counts.newly_selected,
+            counts.new_selected,
+            counts.dropped,
+            counts.dropped_weight_moved,
+            counts.dropped_score_moved,
+            counts.dropped_p_value_moved,
+            counts.dropped_pool_grew
+        );
+        for m in &report.diagnostics {
+            let show = |v: Option<f64>| v.map_or("-".to_string(), |x| format!("{x:.4}"));
+            let _ = writeln!(
+                text,
+                "  {:<22} {:>12} -> {:>12}",
+                m.diagnostic,
+                show(m.previous),
+                show(m.current)
+            );
+        }
+        if !report.warnings.is_empty() {
+            let _ = writeln!(text, "warnings (most serious first):");
+            for w in &report.warnings {
+                let _ = writeln!(text, "  - {w}");
+            }
+        }
+        let _ = writeln!(
+            text,
+            "wrote candidates.csv, summary.json, changes.csv and changes.json to {}",
+            config.out.display()
+        );
+        print_stdout(&text);
+    }
+    Ok(())
+}

@@ -5,6 +5,7 @@ pub mod check;
 pub mod cli;
 pub mod demo;
 pub mod fdr;
+pub mod html_report;
 pub mod plots;
 pub mod pvalue;
 pub mod random;

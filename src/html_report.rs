@@ -1,0 +1,902 @@
+//! `report.html`: one self-contained page a reviewer can read without the tool — inline CSS,
+//! the shift plots as inline SVG (from `crate::plots`), no external assets, no JavaScript.
+//!
+//! Sections, in this order: title and one-line verdict; warnings (worst first); settings;
+//! the shortlist (or, for an audit, the audited list); shift diagnostics with plots when
+//! weights were fitted; extra sections a command adds (the demo's comparison with the
+//! truth); the cautions ([`CAUTIONS`], verbatim); the method, with its sources.
+//!
+//! Everything here builds a `String`; writing it (atomically, with the other outputs) is the
+//! caller's job (`crate::table::OutputSet`). Every piece of user-provided text (ids, file
+//! names, column names) goes through [`escape`].
+
+use std::fmt::Write as _;
+
+use crate::plots::{balance_svg, overlap_svg, weights_svg, PlotError};
+use crate::report::{shift_diagnostics_text, ShiftReport, ShiftSection, CAUTIONS};
+use crate::report::{warning_line, SelectSummary};
+use crate::select::SelectionOutcome;
+use crate::shift::{Severity, ShiftWarning};
+
+/// Rows of the shortlist table shown in the report; candidates.csv has every unit.
+pub const SHORTLIST_ROWS_SHOWN: usize = 300;
+/// Bins of the weight histogram (as in `weighbridge shift`).
+const WEIGHT_PLOT_BINS: usize = 40;
+
+/// Escape text for HTML element content and double-quoted attribute values.
+///
+/// # Examples
+/// ```
+/// use weighbridge::html_report::escape;
+/// assert_eq!(escape("<b>&\"'"), "&lt;b&gt;&amp;&quot;&#39;");
+/// ```
+pub fn escape(text: &str) -> String {
+    let mut out = String::with_capacity(text.len());
+    for c in text.chars() {
+        match c {
+            '&' => out.push_str("&amp;"),
+            '<' => out.push_str("&lt;"),
+            '>' => out.push_str("&gt;"),
+            '"' => out.push_str("&quot;"),
+            '\'' => out.push_str("&#39;"),
+            _ => out.push(c),
+        }
+    }
+    out
+}
+
+/// One warning as the report lists it.
+#[derive(Clone, Debug)]
+pub struct Finding {
+    /// The diagnostic or check that raised it (e.g. `khat`, `unreachable units`).
+    pub diagnostic: String,
+    /// `severe`, `caution`, or `note` for the selection's own warnings.
+    pub severity: String,
+    /// The value and threshold as text ("" when the message states them itself).
+    pub value: String,
+    pub threshold: String,
+    /// What it means for the shortlist.
+    pub meaning: String,
+}
+
+impl Finding {
+    /// A shift warning: diagnostic, severity, value, threshold, meaning.
+    pub fn from_shift(w: &ShiftWarning) -> Self {
+        Finding {
+            diagnostic: w.diagnostic.clone(),
+            severity: match w.severity {
+                Severity::Severe => "severe".to_string(),
+                Severity::Caution => "caution".to_string(),
+            },
+            value: number(w.value),
+            threshold: number(w.threshold),
+            meaning: w.message.clone(),
+        }
+    }
+
+    /// A warning given as one line "name: message" (the selection's and the audit's own
+    /// warnings, which state their values in the message).
+    pub fn from_line(line: &str) -> Self {
+        let (diagnostic, meaning) = match line.split_once(": ") {
+            Some((name, rest)) if name.len() <= 40 => (name.to_string(), rest.to_string()),
+            _ => ("selection".to_string(), line.to_string()),
+        };
+        Finding {
+            diagnostic,
+            severity: "warning".to_string(),
+            value: "see text".to_string(),
+            threshold: "see text".to_string(),
+            meaning,
+        }
+    }
+}
+
+/// A table of text cells (escaped when rendered).
+#[derive(Clone, Debug, Default)]
+pub struct Table {
+    pub header: Vec<String>,
+    pub rows: Vec<Vec<String>>,
+    /// Cells of the first column that mark the row as highlighted (e.g. the default run).
+    pub note: Option<String>,
+}
+
+/// A section of plain paragraphs and tables.
+#[derive(Clone, Debug, Default)]
+pub struct Part {
+    /// HTML id (letters and dashes) and the heading.
+    pub id: String,
+    pub heading: String,
+    pub paragraphs: Vec<String>,
+    pub tables: Vec<Table>,
+}
+
+/// The shift diagnostics with their three plots (SVG text).
+#[derive(Clone, Debug)]
+pub struct ShiftPart {
+    pub section: ShiftSection,
+    pub overlap_svg: String,
+    pub weights_svg: String,
+    pub balance_svg: String,
+}
+
+/// Draw the three shift plots for a report.
+///
+/// # Errors
+/// As the plot functions of `crate::plots`.
+pub fn shift_part(
+    section: &ShiftSection,
+    calibration_weights: &[f64],
+    pool_weights: &[f64],
+) -> Result<ShiftPart, PlotError> {
+    let s = &section.summary;
+    Ok(ShiftPart {
+        section: section.clone(),
+        overlap_svg: overlap_svg(&s.overlap)?,
+        weights_svg: weights_svg(calibration_weights, pool_weights, WEIGHT_PLOT_BINS)?,
+        balance_svg: balance_svg(&s.balance)?,
+    })
+}
+
+/// Where the run's weights came from, for the method section.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub enum WeightsMethod {
+    /// Every weight 1.
+    None,
+    /// Given in a column (text says which).
+    Given(String),
+    /// Fitted by the domain classifier.
+    Fitted,
+}
+
+/// A whole report.
+#[derive(Clone, Debug)]
+pub struct Report {
+    pub title: String,
+    pub verdict: String,
+    /// Worst first.
+    pub warnings: Vec<Finding>,
+    /// (setting, value) pairs.
+    pub settings: Vec<(String, String)>,
+    /// The shortlist (select, demo) or the audited list (audit); `None` for `shift`.
+    pub main: Option<Part>,
+    pub shift: Option<ShiftPart>,
+    /// Extra sections (the demo's comparison with the truth), after the diagnostics.
+    pub extra: Vec<Part>,
+    pub weights_method: WeightsMethod,
+    /// The selection procedure's name (`conditional`, `bh`, `by`), if the run selected.
+    pub procedure: Option<String>,
+}
+
+/// A number for people: 3 decimals without trailing zeros, scientific when very large or
+/// small.
+fn number(v: f64) -> String {
+    if !v.is_finite() {
+        return v.to_string();
+    }
+    if v != 0.0 && (v.abs() >= 1e5 || v.abs() < 1e-3) {
+        return format!("{v:.3e}");
+    }
+    let text = format!("{v:.3}");
+    let text = text.trim_end_matches('0').trim_end_matches('.');
+    if text == "-0" {
+        "0".to_string()
+    } else {
+        text.to_string()
+    }
+}
+
+/// A p-value for people: 4 significant digits.
+fn p_value_text(p: f64) -> String {
+    if p != 0.0 && p.abs() < 1e-3 {
+        format!("{p:.3e}")
+    } else {
+        format!("{p:.4}")
+    }
+}
+
+/// The settings rows of a selection summary.
+pub fn selection_settings(summary: &SelectSummary) -> Vec<(String, String)> {
+    let s = summary;
+    let mut rows = vec![
+        ("labeled file".to_string(), s.inputs.labeled_file.clone()),
+        ("pool file".to_string(), s.inputs.pool_file.clone()),
+        ("threshold".to_string(), s.inputs.threshold.clone()),
+        ("target FDR q".to_string(), number(s.fdr)),
+        ("procedure".to_string(), s.procedure.to_string()),
+        (
+            "pruning".to_string(),
+            s.pruning
+                .unwrap_or("none (not conditional calibration)")
+                .to_string(),
+        ),
+        ("p-values".to_string(), s.pvalues.to_string()),
+        ("score".to_string(), s.score.to_string()),
+        ("seed".to_string(), s.seed.to_string()),
+        ("weights".to_string(), s.inputs.weights.clone()),
+        ("labeled units".to_string(), s.n_labeled.to_string()),
+        ("pool units".to_string(), s.n_pool.to_string()),
+        (
+            "tool".to_string(),
+            format!("{} {}", s.tool.name, s.tool.version),
+        ),
+    ];
+    if let Some(draw) = s.pruning_draw {
+        rows.push(("pruning draw".to_string(), number(draw)));
+    }
+    if let Some(shift) = &s.shift {
+        rows.push(("classifier features".to_string(), shift.features.join(", ")));
+        rows.push(("weight fit".to_string(), shift.fit_rows_note.clone()));
+    }
+    rows
+}
+
+/// The shortlist section: selected units by p-value, the first [`SHORTLIST_ROWS_SHOWN`].
+pub fn shortlist_part(summary: &SelectSummary, ids: &[String], outcome: &SelectionOutcome) -> Part {
+    let mut chosen: Vec<usize> = (0..ids.len()).filter(|&j| outcome.selected[j]).collect();
+    chosen.sort_by(|&a, &b| outcome.p_values[a].total_cmp(&outcome.p_values[b]));
+    let shown = chosen.len().min(SHORTLIST_ROWS_SHOWN);
+    let mut paragraphs = vec![format!(
+        "{} of {} pool units selected at FDR {}. {} candidates.csv in the same folder lists \
+         every pool unit with its score, weight, p-value and, where known, why it could never \
+         be selected.",
+        summary.selected_count,
+        summary.n_pool,
+        number(summary.fdr),
+        if chosen.len() > shown {
+            format!("The table shows the {shown} with the smallest p-values;")
+        } else {
+            "The table shows all of them;".to_string()
+        }
+    )];
+    if let Some(first) = summary.first_step_count {
+        paragraphs.push(format!(
+            "Passed the first step of conditional calibration: {first}. BH on the weighted {} \
+             p-values would select {}{}.",
+            summary.bh_pvalues,
+            summary.bh_selected_count,
+            if summary.weights_vary {
+                " (no finite-sample guarantee when weights vary)"
+            } else {
+                ""
+            }
+        ));
+    }
+    paragraphs.push(format!(
+        "Never selectable at this level (weight too large for the labeled set): {}.",
+        summary.unreachable_count
+    ));
+    let rows = chosen[..shown]
+        .iter()
+        .enumerate()
+        .map(|(rank, &j)| {
+            vec![
+                (rank + 1).to_string(),
+                ids[j].clone(),
+                number(outcome.scores[j]),
+                number(outcome.weights[j]),
+                p_value_text(outcome.p_values[j]),
+            ]
+        })
+        .collect();
+    Part {
+        id: "shortlist".to_string(),
+        heading: "Shortlist".to_string(),
+        paragraphs,
+        tables: vec![Table {
+            header: ["rank", "id", "score", "weight", "p-value"]
+                .map(String::from)
+                .to_vec(),
+            rows,
+            note: (chosen.len() > shown)
+                .then(|| format!("{} more in candidates.csv", chosen.len() - shown)),
+        }],
+    }
+}
+
+/// The verdict line of a selection.
+pub fn selection_verdict(summary: &SelectSummary) -> String {
+    let severe = summary.shift.as_ref().map_or(0, |s| {
+        s.summary
+            .warnings
+            .iter()
+            .filter(|w| w.severity == Severity::Severe)
+            .count()
+    });
+    let mut verdict = format!(
+        "{} of {} pool units selected at FDR {}",
+        summary.selected_count,
+        summary.n_pool,
+        number(summary.fdr)
+    );
+    if severe > 0 {
+        let _ = write!(
+            verdict,
+            "; the fitted weights fail {severe} severe check{}: read the warnings before \
+             using this shortlist",
+            if severe == 1 { "" } else { "s" }
+        );
+    } else if !summary.warnings.is_empty() {
+        verdict.push_str("; see the warnings below");
+    } else {
+        verdict.push_str("; no warnings");
+    }
+    verdict
+}
+
+/// A report of a selection (`select`, the demo); `shift` when weights were fitted.
+pub fn selection_report(
+    summary: &SelectSummary,
+    ids: &[String],
+    outcome: &SelectionOutcome,
+    shift: Option<ShiftPart>,
+    weights_method: WeightsMethod,
+) -> Report {
+    // With fitted weights the summary's warnings begin with the shift warnings (as lines);
+    // they are listed from the structured form instead.
+    let shift_lines: Vec<String> = summary
+        .shift
+        .as_ref()
+        .map(|s| s.summary.warnings.iter().map(warning_line).collect())
+        .unwrap_or_default();
+    let mut warnings: Vec<Finding> = summary
+        .shift
+        .as_ref()
+        .map(|s| s.summary.warnings.iter().map(Finding::from_shift).collect())
+        .unwrap_or_default();
+    warnings.extend(
+        summary
+            .warnings
+            .iter()
+            .filter(|w| !shift_lines.contains(w))
+            .map(|w| Finding::from_line(w)),
+    );
+    Report {
+        title: "weighbridge selection report".to_string(),
+        verdict: selection_verdict(summary),
+        warnings,
+        settings: selection_settings(summary),
+        main: Some(shortlist_part(summary, ids, outcome)),
+        shift,
+        extra: Vec::new(),
+        weights_method,
+        procedure: Some(summary.procedure.to_string()),
+    }
+}
+
+/// A report of a shift assessment (`shift`): no shortlist.
+pub fn shift_report_html(report: &ShiftReport, part: ShiftPart) -> Report {
+    let section = &report.shift;
+    let s = &section.summary;
+    let severe = s
+        .warnings
+        .iter()
+        .filter(|w| w.severity == Severity::Severe)
+        .count();
+    let verdict = format!(
+        "Domain-classifier AUC {} (0.5 = no detectable shift), effective sample size {:.1}% \
+         of the labeled rows; {}",
+        number(s.auc),
+        100.0 * s.ess_fraction,
+        match (severe, s.warnings.len()) {
+            (0, 0) => "no diagnostic crossed its threshold".to_string(),
+            (0, n) => format!("{n} caution{}", if n == 1 { "" } else { "s" }),
+            (k, n) => format!("{k} severe warning{} of {n}", if k == 1 { "" } else { "s" }),
+        }
+    );
+    let settings = vec![
+        (
+            "labeled file".to_string(),
+            report.inputs.labeled_file.clone(),
+        ),
+        ("pool file".to_string(), report.inputs.pool_file.clone()),
+        ("features".to_string(), section.features.join(", ")),
+        ("weight fit".to_string(), section.fit_rows_note.clone()),
+        ("level for unreachable units".to_string(), number(s.fdr)),
+        (
+            "tool".to_string(),
+            format!("{} {}", report.tool.name, report.tool.version),
+        ),
+    ];
+    Report {
+        title: "weighbridge shift report".to_string(),
+        verdict,
+        warnings: s.warnings.iter().map(Finding::from_shift).collect(),
+        settings,
+        main: None,
+        shift: Some(part),
+        extra: Vec::new(),
+        weights_method: WeightsMethod::Fitted,
+        procedure: None,
+    }
+}
+
+const STYLE: &str = "
+body { font-family: sans-serif; color: #1a1a1a; max-width: 1100px; margin: 1.5em auto;
+       padding: 0 1em; line-height: 1.45; }
+h1 { font-size: 1.6em; margin-bottom: 0.2em; }
+h2 { font-size: 1.25em; border-bottom: 1px solid #ccc; padding-bottom: 0.2em; margin-top: 1.6em; }
+p.verdict { font-size: 1.1em; font-weight: bold; background: #f3f3f3; padding: 0.5em 0.7em;
+            border-left: 5px solid #555; }
+table { border-collapse: collapse; margin: 0.6em 0; font-size: 0.92em; }
+th, td { border: 1px solid #ccc; padding: 0.25em 0.55em; text-align: left; vertical-align: top; }
+th { background: #eee; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; }
+tr.severe td { background: #fde2e1; }
+tr.caution td { background: #fff4d6; }
+tr.warning td { background: #fff9e8; }
+figure { margin: 0.8em 0; }
+figure svg { max-width: 100%; height: auto; border: 1px solid #ddd; }
+figcaption { font-size: 0.9em; color: #444; }
+pre { background: #f7f7f7; padding: 0.6em; overflow-x: auto; font-size: 0.88em; }
+code, .formula { font-family: monospace; }
+.formula { display: block; background: #f7f7f7; padding: 0.4em 0.6em; margin: 0.4em 0; }
+";
+
+fn is_numeric(cell: &str) -> bool {
+    !cell.is_empty() && cell.trim_end_matches('%').parse::<f64>().is_ok()
+}
+
+fn table_html(out: &mut String, table: &Table) {
+    out.push_str("<table>\n<thead><tr>");
+    for h in &table.header {
+        let _ = write!(out, "<th>{}</th>", escape(h));
+    }
+    out.push_str("</tr></thead>\n<tbody>\n");
+    for row in &table.rows {
+        out.push_str("<tr>");
+        for cell in row {
+            if is_numeric(cell) {
+                let _ = write!(out, "<td class=\"num\">{}</td>", escape(cell));
+            } else {
+                let _ = write!(out, "<td>{}</td>", escape(cell));
+            }
+        }
+        out.push_str("</tr>\n");
+    }
+    out.push_str("</tbody>\n</table>\n");
+    if let Some(note) = &table.note {
+        let _ = writeln!(out, "<p>{}</p>", escape(note));
+    }
+}
+
+fn part_html(out: &mut String, part: &Part) {
+    let _ = writeln!(
+        out,
+        "<section id=\"{}\">\n<h2>{}</h2>",
+        escape(&part.id),
+        escape(&part.heading)
+    );
+    for p in &part.paragraphs {
+        let _ = writeln!(out, "<p>{}</p>", escape(p));
+    }
+    for t in &part.tables {
+        table_html(out, t);
+    }
+    out.push_str("</section>\n");
+}
+
+/// An SVG from plotters, made fit for inline use: the XML namespace attribute is dropped
+/// (the HTML parser puts `<svg>` in the SVG namespace by itself), so that the page holds no
+/// URL at all.
+fn inline_svg(svg: &str) -> String {
+    svg.replacen(" xmlns=\"http://www.w3.org/2000/svg\"", "", 1)
+        .replace("xmlns:xlink=\"http://www.w3.org/1999/xlink\"", "")
+}
+
+fn shift_html(out: &mut String, part: &ShiftPart) {
+    let section = &part.section;
+    let s = &section.summary;
+    out.push_str("<section id=\"shift\">\n<h2>Shift diagnostics</h2>\n");
+    let _ = writeln!(
+        out,
+        "<p>A logistic regression (the domain classifier) was fit to tell labeled rows from \
+         pool rows on {}; its odds are the density-ratio weights. Each diagnostic below has \
+         a threshold; crossing it raises a warning (listed at the top, worst first).</p>",
+        escape(&section.features.join(", "))
+    );
+    out.push_str("<table>\n<thead><tr><th>diagnostic</th><th>value</th></tr></thead>\n<tbody>\n");
+    for line in shift_diagnostics_text(section, "").lines() {
+        // `shift_diagnostics_text` pads each label to 26 characters.
+        let (label, value) = match line.char_indices().nth(26) {
+            Some((at, _)) => line.split_at(at),
+            None => (line, ""),
+        };
+        let _ = writeln!(
+            out,
+            "<tr><td>{}</td><td>{}</td></tr>",
+            escape(label.trim()),
+            escape(value.trim())
+        );
+    }
+    out.push_str("</tbody>\n</table>\n");
+
+    out.push_str(
+        "<h3>Feature balance before and after weighting</h3>\n<p>Standardized mean difference \
+         (pool minus labeled) per feature; |SMD| above the threshold is flagged (Austin \
+         2009).</p>\n",
+    );
+    let balance = Table {
+        header: ["feature", "SMD before weighting", "SMD after weighting"]
+            .map(String::from)
+            .to_vec(),
+        rows: s
+            .balance
+            .iter()
+            .map(|b| {
+                vec![
+                    b.feature.clone(),
+                    number(b.smd_unweighted),
+                    number(b.smd_weighted),
+                ]
+            })
+            .collect(),
+        note: Some(format!("flagged above |SMD| {}", number(s.smd_threshold))),
+    };
+    table_html(out, &balance);
+    let _ = writeln!(
+        out,
+        "<p>Weight-model adequacy: the largest weighted |SMD| on squared features is {} and on \
+         pairwise products {} (flagged above {}); a large value means the classifier misses \
+         part of the shift, which breaks every weighted procedure.</p>",
+        number(s.adequacy.max_abs_weighted_squares),
+        number(s.adequacy.max_abs_weighted_products),
+        number(s.adequacy.threshold)
+    );
+    for (svg, caption) in [
+        (
+            &part.overlap_svg,
+            "Overlap: the classifier's probability of \"pool\" at equal set sizes, w/(1+w), \
+             for each set. Pool mass near 1 with no labeled mass there means the labeled set \
+             does not cover that part of the pool.",
+        ),
+        (
+            &part.weights_svg,
+            "Weights (log10) of the calibrating labeled rows and of the pool. A long right \
+             tail in the labeled weights means a few rows carry the calibration.",
+        ),
+        (
+            &part.balance_svg,
+            "|SMD| per feature before and after weighting; the dashed line is the flag \
+             threshold.",
+        ),
+    ] {
+        let _ = writeln!(
+            out,
+            "<figure>\n{}\n<figcaption>{}</figcaption>\n</figure>",
+            inline_svg(svg),
+            escape(caption)
+        );
+    }
+    out.push_str("</section>\n");
+}
+
+fn method_html(out: &mut String, report: &Report) {
+    out.push_str("<section id=\"method\">\n<h2>Method</h2>\n");
+    out.push_str(
+        "<p><b>Question.</b> For each pool unit j with threshold c<sub>j</sub>, the null \
+         hypothesis is Y<sub>j</sub> &le; c<sub>j</sub> (\"not interesting\"); a selected unit \
+         is claimed to have Y<sub>j</sub> &gt; c<sub>j</sub>. The false discovery rate (FDR) is \
+         the expected share of selected units for which the claim is wrong.</p>\n\
+         <p><b>Scores.</b> Labeled units get V<sub>i</sub> = V(X<sub>i</sub>, Y<sub>i</sub>); \
+         pool units are scored at their threshold, V&#770;<sub>j</sub> = V(X<sub>j</sub>, \
+         c<sub>j</sub>). The clipped score is V = +&infin; when y &gt; c and c &minus; &mu;(x) \
+         otherwise (Jin &amp; Cand&egrave;s 2023); the residual score is V = y &minus; \
+         &mu;(x), with &mu; the prediction model's output.</p>\n\
+         <p><b>Weighted conformal p-values</b> (Tibshirani, Barber, Cand&egrave;s &amp; Ramdas \
+         2019; Jin &amp; Cand&egrave;s 2023). With weights w<sub>i</sub> = w(X<sub>i</sub>) on \
+         the n labeled units, W = &sum;<sub>i</sub> w<sub>i</sub>, and w<sub>j</sub> for pool \
+         unit j:</p>\n\
+         <span class=\"formula\">conservative: p<sub>j</sub> = ( &sum;<sub>i</sub> \
+         w<sub>i</sub> 1{V<sub>i</sub> &le; V&#770;<sub>j</sub>} + w<sub>j</sub> ) / (W + \
+         w<sub>j</sub>)</span>\n\
+         <span class=\"formula\">randomized: p<sub>j</sub> = ( &sum;<sub>i</sub> \
+         w<sub>i</sub> 1{V<sub>i</sub> &lt; V&#770;<sub>j</sub>} + U<sub>j</sub> \
+         (w<sub>j</sub> + &sum;<sub>i</sub> w<sub>i</sub> 1{V<sub>i</sub> = \
+         V&#770;<sub>j</sub>}) ) / (W + w<sub>j</sub>), U<sub>j</sub> ~ Uniform(0, 1) \
+         (seeded)</span>\n\
+         <p>With every weight 1 these are ordinary split-conformal p-values.</p>\n\
+         <p><b>Benjamini&ndash;Hochberg</b> (Benjamini &amp; Hochberg 1995): with m pool units \
+         and sorted p-values p<sub>(1)</sub> &le; &hellip; &le; p<sub>(m)</sub>, select the \
+         k* smallest, k* = max{k : p<sub>(k)</sub> &le; q k / m}. With equal weights this \
+         controls FDR &le; q (Jin &amp; Cand&egrave;s 2023); with varying weights it has no \
+         finite-sample proof, though it usually stays near q.</p>\n\
+         <p><b>Conditional calibration</b> (Jin &amp; Cand&egrave;s 2023, building on Fithian \
+         &amp; Lei 2022) keeps FDR &le; q in finite samples under covariate shift with known \
+         weights. It uses the conservative p-values. For each pool unit j it recomputes the \
+         other units' p-values as if j were part of the labeled set:</p>\n\
+         <span class=\"formula\">p<sub>l</sub><sup>(j)</sup> = ( &sum;<sub>i</sub> \
+         w<sub>i</sub> 1{V<sub>i</sub> &lt; V&#770;<sub>l</sub>} + w<sub>j</sub> \
+         1{V&#770;<sub>j</sub> &lt; V&#770;<sub>l</sub>} ) / (W + w<sub>j</sub>) for l &ne; \
+         j, p<sub>j</sub><sup>(j)</sup> = 0</span>\n\
+         <p>K<sub>j</sub> is the number BH at level q selects from these m p-values (at least \
+         1). <b>First step:</b> R1 = {j : p<sub>j</sub> &le; q K<sub>j</sub> / m}. \
+         <b>Pruning</b> with draws &xi;<sub>j</sub>: r* = max{r : #{j in R1 : \
+         &xi;<sub>j</sub> K<sub>j</sub> &le; r} &ge; r}, and the shortlist is {j in R1 : \
+         &xi;<sub>j</sub> K<sub>j</sub> &le; r*}. Homogeneous pruning (one shared uniform \
+         &xi;, the default) had the highest power in our simulations; heterogeneous uses one \
+         uniform per unit; deterministic (&xi; = 1) uses no randomness but is nearly \
+         powerless when weights vary. With random pruning the shortlist depends, at its \
+         margin, on one seeded draw (the seed is in the settings). All K<sub>j</sub> are \
+         computed in O(m log m) from the sorted pool scores.</p>\n\
+         <p><b>Unreachable units.</b> Every p-value is at least w<sub>j</sub> / (W + \
+         w<sub>j</sub>). A pool unit with w<sub>j</sub> / (W + w<sub>j</sub>) &gt; q can never \
+         be selected at level q: the labeled set has too little weight near it. Such units \
+         are counted and named in candidates.csv.</p>\n\
+         <p><b>Benjamini&ndash;Yekutieli</b> replaces q by q / &sum;<sub>k&le;m</sub> 1/k: \
+         valid under any dependence, less powerful.</p>\n",
+    );
+    if let Some(p) = &report.procedure {
+        let _ = writeln!(
+            out,
+            "<p><b>This run</b> used the procedure <code>{}</code>.</p>",
+            escape(p)
+        );
+    }
+    match &report.weights_method {
+        WeightsMethod::None => out.push_str(
+            "<p><b>Weights.</b> None: every weight is 1, i.e. the labeled set is treated as \
+             exchangeable with the pool (no shift assumed).</p>\n",
+        ),
+        WeightsMethod::Given(text) => {
+            let _ = writeln!(
+                out,
+                "<p><b>Weights.</b> Given by the user ({}): they must be proportional to the \
+                 density ratio of the pool to the labeled set at each unit's features.</p>",
+                escape(text)
+            );
+        }
+        WeightsMethod::Fitted => out.push_str(
+            "<p><b>Weights</b> were fitted with a domain classifier: an L2-penalized logistic \
+             regression (Newton's method with step halving, intercept unpenalized) on the \
+             standardized features labels labeled rows 0 and pool rows 1; with e(x) = P(pool \
+             | x), w(x) is proportional to e(x) / (1 &minus; e(x)) (the class-size ratio is a \
+             constant and cancels). Diagnostics: cross-validated AUC with a DeLong interval \
+             and a permutation test of \"no shift\" (classifier two-sample test, Lopez-Paz \
+             &amp; Oquab 2017); Kish effective sample size (&sum;w)<sup>2</sup> / \
+             &sum;w<sup>2</sup> (Kish 1965); Pareto k-hat of the weight tail (Vehtari, Simpson, \
+             Gelman, Yao &amp; Gabry 2024); standardized mean differences before and after \
+             weighting (Austin 2009), also on squared and pairwise-product features to check \
+             the weight model. Estimated weights add error the guarantee does not \
+             cover.</p>\n",
+        ),
+    }
+    out.push_str(
+        "<h3>Sources</h3>\n<ul>\n\
+         <li>Tibshirani, R. J., Barber, R. F., Cand&egrave;s, E. J., Ramdas, A. (2019). \
+         Conformal prediction under covariate shift. NeurIPS 2019.</li>\n\
+         <li>Jin, Y., Cand&egrave;s, E. J. (2023). Selection by prediction with conformal \
+         p-values. JMLR 24; and Model-free selective inference under covariate shift via \
+         weighted conformal p-values (2023).</li>\n\
+         <li>Benjamini, Y., Hochberg, Y. (1995). Controlling the false discovery rate. \
+         JRSS B 57(1).</li>\n\
+         <li>Fithian, W., Lei, L. (2022). Conditional calibration for false discovery rate \
+         control under dependence. Annals of Statistics 50(6).</li>\n\
+         <li>Kish, L. (1965). Survey Sampling. Wiley.</li>\n\
+         <li>Vehtari, A., Simpson, D., Gelman, A., Yao, Y., Gabry, J. (2024). Pareto \
+         smoothed importance sampling. JMLR 25.</li>\n\
+         <li>Austin, P. C. (2009). Balance diagnostics for comparing the distribution of \
+         baseline covariates between treatment groups in propensity-score matched samples. \
+         Statistics in Medicine 28.</li>\n\
+         <li>Lopez-Paz, D., Oquab, M. (2017). Revisiting classifier two-sample tests. \
+         ICLR 2017.</li>\n\
+         </ul>\n</section>\n",
+    );
+}
+
+impl Report {
+    /// The whole page.
+    pub fn render(&self) -> String {
+        let mut out = String::with_capacity(64 * 1024);
+        let _ = write!(
+            out,
+            "<!DOCTYPE html>\n<html lang=\"en\">\n<head>\n<meta charset=\"utf-8\">\n\
+             <title>{}</title>\n<style>{STYLE}</style>\n</head>\n<body>\n",
+            escape(&self.title)
+        );
+        let _ = writeln!(
+            out,
+            "<header id=\"title\">\n<h1>{}</h1>\n<p class=\"verdict\">{}</p>\n</header>",
+            escape(&self.title),
+            escape(&self.verdict)
+        );
+
+        out.push_str("<section id=\"warnings\">\n<h2>Warnings (most serious first)</h2>\n");
+        if self.warnings.is_empty() {
+            out.push_str(
+                "<p>None: no diagnostic crossed its threshold. This does not prove the \
+                 weights right; see the cautions below.</p>\n",
+            );
+        } else {
+            out.push_str(
+                "<table>\n<thead><tr><th>diagnostic</th><th>severity</th><th>value</th>\
+                 <th>threshold</th><th>what it means</th></tr></thead>\n<tbody>\n",
+            );
+            for w in &self.warnings {
+                let class = match w.severity.as_str() {
+                    "severe" => "severe",
+                    "caution" => "caution",
+                    _ => "warning",
+                };
+                let _ = writeln!(
+                    out,
+                    "<tr class=\"{class}\"><td>{}</td><td>{}</td><td class=\"num\">{}</td>\
+                     <td class=\"num\">{}</td><td>{}</td></tr>",
+                    escape(&w.diagnostic),
+                    escape(&w.severity),
+                    escape(&w.value),
+                    escape(&w.threshold),
+                    escape(&w.meaning)
+                );
+            }
+            out.push_str("</tbody>\n</table>\n");
+        }
+        out.push_str("</section>\n");
+
+        out.push_str("<section id=\"settings\">\n<h2>Settings</h2>\n<table>\n<tbody>\n");
+        for (name, value) in &self.settings {
+            let _ = writeln!(
+                out,
+                "<tr><th>{}</th><td>{}</td></tr>",
+                escape(name),
+                escape(value)
+            );
+        }
+        out.push_str("</tbody>\n</table>\n</section>\n");
+
+        if let Some(main) = &self.main {
+            part_html(&mut out, main);
+        }
+        if let Some(shift) = &self.shift {
+            shift_html(&mut out, shift);
+        } else {
+            out.push_str(
+                "<section id=\"shift\">\n<h2>Shift diagnostics</h2>\n<p>Not computed: the \
+                 weights were not fitted in this run (run with fitted weights, or \
+                 <code>weighbridge shift</code>, to measure the shift).</p>\n</section>\n",
+            );
+        }
+        for part in &self.extra {
+            part_html(&mut out, part);
+        }
+
+        out.push_str("<section id=\"cautions\">\n<h2>Cautions</h2>\n<ul>\n");
+        for c in CAUTIONS {
+            let _ = writeln!(out, "<li>{}</li>", escape(c));
+        }
+        out.push_str("</ul>\n</section>\n");
+
+        method_html(&mut out, self);
+        out.push_str("</body>\n</html>\n");
+        out
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use linfa::ParamGuard;
+    use crate::report::{add_shift, select_summary, shift_section, RunInputs};
+    use crate::score::Thresholds;
+    use crate::select::{run_selection, LabeledInput, PoolInput, SelectOptions};
+    use crate::shift::{assess_shift_with, FeatureView, ShiftParams};
+    use crate::weighting::FittedWeights;
+
+    /// A small shifted data set (invented, for the page's structure only): labeled feature
+    /// centred at 0, pool at 0.5; outcome = feature + noise-free offset by id.
+    fn fitted_report(odd_id: &str) -> String {
+        let n = 200;
+        let m = 300;
+        let lx: Vec<f64> = (0..n).map(|i| (i as f64 / n as f64) * 4.0 - 2.0).collect();
+        let px: Vec<f64> = (0..m).map(|j| (j as f64 / m as f64) * 4.0 - 1.5).collect();
+        let names = vec!["f1".to_string()];
+        let params = ShiftParams::new().seed(3).fdr(0.2).permutations(20);
+        let options = params.clone().check().unwrap();
+        let assessment = assess_shift_with(
+            FeatureView::new(&lx, n, &names).unwrap(),
+            FeatureView::new(&px, m, &names).unwrap(),
+            params,
+        )
+        .unwrap();
+        let fitted = FittedWeights {
+            options,
+            assessment,
+        };
+        let y: Vec<f64> = lx
+            .iter()
+            .enumerate()
+            .map(|(i, x)| x + if i % 3 == 0 { 1.0 } else { -0.5 })
+            .collect();
+        let outcome = run_selection(
+            &SelectOptions {
+                fdr: 0.2,
+                ..SelectOptions::default()
+            },
+            LabeledInput {
+                outcome: &y,
+                prediction: &lx,
+                thresholds: Thresholds::Constant(0.5),
+                weights: Some(&fitted.assessment.labeled.weight),
+            },
+            PoolInput {
+                prediction: &px,
+                thresholds: Thresholds::Constant(0.5),
+                weights: Some(&fitted.assessment.pool.weight),
+            },
+        )
+        .unwrap();
+        let mut ids: Vec<String> = (0..m).map(|j| format!("u{j}")).collect();
+        // The unit with the largest prediction is selected if anything is.
+        ids[m - 1] = odd_id.to_string();
+        let mut summary = select_summary(
+            &outcome,
+            RunInputs {
+                labeled_file: "lab<el>ed.csv".to_string(),
+                pool_file: "pool.csv".to_string(),
+                threshold: "value 0.5".to_string(),
+                weights: "fitted".to_string(),
+            },
+        );
+        let section = shift_section(&fitted, &names);
+        add_shift(&mut summary, section.clone());
+        let part = shift_part(
+            &section,
+            &fitted.assessment.labeled.weight,
+            &fitted.assessment.pool.weight,
+        )
+        .unwrap();
+        assert!(
+            outcome.selected[m - 1],
+            "the test needs the odd id selected"
+        );
+        selection_report(&summary, &ids, &outcome, Some(part), WeightsMethod::Fitted).render()
+    }
+
+    #[test]
+    fn every_section_in_order_without_script_or_urls() {
+        let html = fitted_report("plain");
+        let ids = [
+            "id=\"title\"",
+            "id=\"warnings\"",
+            "id=\"settings\"",
+            "id=\"shortlist\"",
+            "id=\"shift\"",
+            "id=\"cautions\"",
+            "id=\"method\"",
+        ];
+        let positions: Vec<usize> = ids
+            .iter()
+            .map(|s| html.find(s).unwrap_or_else(|| panic!("missing {s}")))
+            .collect();
+        assert!(positions.windows(2).all(|w| w[0] < w[1]), "{positions:?}");
+        assert_eq!(html.matches("<svg").count(), 3);
+        assert!(!html.to_lowercase().contains("<script"));
+        assert!(!html.contains("http://") && !html.contains("https://"));
+        for c in CAUTIONS {
+            assert!(html.contains(&escape(c)), "caution missing: {c}");
+        }
+        for source in [
+            "Tibshirani",
+            "Benjamini",
+            "Kish",
+            "Vehtari",
+            "Austin",
+            "Lopez-Paz",
+        ] {
+            assert!(html.contains(source), "{source}");
+        }
+    }
+
+    #[test]
+    fn user_text_is_escaped() {
+        let html = fitted_report("<b>&\"");
+        assert!(html.contains("&lt;b&gt;&amp;&quot;"));
+        assert!(!html.contains("<b>&\""));
+        assert!(html.contains("lab&lt;el&gt;ed.csv"));
+    }
+
+    #[test]
+    fn escape_covers_the_five_characters() {
+        assert_eq!(escape("a<b>c&d\"e'f"), "a&lt;b&gt;c&amp;d&quot;e&#39;f");
+        assert_eq!(escape("plain"), "plain");
+    }
+}

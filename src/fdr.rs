@@ -365,26 +365,28 @@ pub fn conditional_counts(
     // Filters on w_j, indexed by k - 1 (k = 1..m), widened by FILTER_MARGIN.
     // High region: A(k) + w <= t (W + w)  <=>  w <= (t W - A(k)) / (1 - t) = tau_k (t < 1).
     // Low region (k >= 2): A(k-1) <= t (W + w)  <=>  w >= A(k-1) / t - W = sigma_k.
-    let mut tau = Vec::with_capacity(m);
-    let mut sigma = Vec::with_capacity(m);
-    for k in 1..=m {
-        let t = bh_level(q, k, m) * (1.0 + TIE_TOLERANCE);
-        let a = below[k - 1];
-        let slack = 1.0 - t - FILTER_MARGIN;
-        tau.push(if slack <= 0.0 {
-            f64::INFINITY
-        } else {
-            (t * total - a + FILTER_MARGIN * (a + total)) / slack
-        });
-        sigma.push(if k == 1 {
-            f64::INFINITY // the low region starts at k = 2
-        } else if bh_level(q, k, m) >= 1.0 {
-            f64::NEG_INFINITY // every weight passes
-        } else {
-            let a_prev = below[k - 2];
-            a_prev * (1.0 - FILTER_MARGIN) / t - total * (1.0 + FILTER_MARGIN)
-        });
-    }
+    let (tau, sigma): (Vec<f64>, Vec<f64>) = (1..=m)
+        .into_par_iter()
+        .map(|k| {
+            let t = bh_level(q, k, m) * (1.0 + TIE_TOLERANCE);
+            let a = below[k - 1];
+            let slack = 1.0 - t - FILTER_MARGIN;
+            let tau = if slack <= 0.0 {
+                f64::INFINITY
+            } else {
+                (t * total - a + FILTER_MARGIN * (a + total)) / slack
+            };
+            let sigma = if k == 1 {
+                f64::INFINITY // the low region starts at k = 2
+            } else if bh_level(q, k, m) >= 1.0 {
+                f64::NEG_INFINITY // every weight passes
+            } else {
+                let a_prev = below[k - 2];
+                a_prev * (1.0 - FILTER_MARGIN) / t - total * (1.0 + FILTER_MARGIN)
+            };
+            (tau, sigma)
+        })
+        .unzip();
     let weight_at = |pos: usize| weight_of(pool_weights, order[pos]);
     let verify_high =
         |w: f64, index: usize| within_level(below[index] + w, total + w, bh_level(q, index + 1, m));
@@ -527,6 +529,7 @@ pub fn conditional_calibration(
     let counts = conditional_counts(calibration, pool_scores, pool_weights, q)?;
     let m = pool_scores.len();
     let first_step: Vec<bool> = (0..m)
+        .into_par_iter()
         .map(|j| {
             within_level(
                 pvalues.numerator[j],

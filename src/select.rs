@@ -306,7 +306,6 @@ pub fn run_selection(
         settings.seed,
     )?;
     let p = pvalues.values();
-    let bh = benjamini_hochberg(&p, q)?;
     // The BH alternative the summary quotes: BH as `--procedure bh` runs it by default, on
     // randomized weighted p-values (same seed), so the two counts compare like for like.
     let (bh_pvalues, bh_alternative_count) = match settings.procedure {
@@ -321,7 +320,7 @@ pub fn run_selection(
             let count = benjamini_hochberg(&randomized.values(), q)?.count;
             (PValueKind::Randomized, count)
         }
-        Procedure::Bh | Procedure::By => (settings.pvalues, bh.count),
+        Procedure::Bh | Procedure::By => (settings.pvalues, benjamini_hochberg(&p, q)?.count),
     };
 
     let mut first_step = None;
@@ -329,7 +328,7 @@ pub fn run_selection(
     let mut first_step_count = None;
     let mut pruning_draw = None;
     let selected = match settings.procedure {
-        Procedure::Bh => bh.selected.clone(),
+        Procedure::Bh => benjamini_hochberg(&p, q)?.selected,
         Procedure::By => benjamini_yekutieli(&p, q)?.selected,
         Procedure::Conditional => {
             let pruning = settings.pruning.unwrap_or(Pruning::Homogeneous);

@@ -774,12 +774,12 @@ impl Report {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use linfa::ParamGuard;
     use crate::report::{add_shift, select_summary, shift_section, RunInputs};
     use crate::score::Thresholds;
     use crate::select::{run_selection, LabeledInput, PoolInput, SelectOptions};
     use crate::shift::{assess_shift_with, FeatureView, ShiftParams};
     use crate::weighting::FittedWeights;
+    use linfa::ParamGuard;
 
     /// A small shifted data set (invented, for the page's structure only): labeled feature
     /// centred at 0, pool at 0.5; outcome = feature + noise-free offset by id.

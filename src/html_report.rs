@@ -84,8 +84,8 @@ impl Finding {
         Finding {
             diagnostic,
             severity: "warning".to_string(),
-            value: "see text".to_string(),
-            threshold: "see text".to_string(),
+            value: "(in the text)".to_string(),
+            threshold: "(in the text)".to_string(),
             meaning,
         }
     }
@@ -98,6 +98,8 @@ pub struct Table {
     pub rows: Vec<Vec<String>>,
     /// Cells of the first column that mark the row as highlighted (e.g. the default run).
     pub note: Option<String>,
+    /// Show the rows in a box of limited height that scrolls (long tables).
+    pub scroll: bool,
 }
 
 /// A section of plain paragraphs and tables.
@@ -289,6 +291,7 @@ pub fn shortlist_part(summary: &SelectSummary, ids: &[String], outcome: &Selecti
             rows,
             note: (chosen.len() > shown)
                 .then(|| format!("{} more in candidates.csv", chosen.len() - shown)),
+            scroll: true,
         }],
     }
 }
@@ -420,6 +423,9 @@ p.verdict { font-size: 1.1em; font-weight: bold; background: #f3f3f3; padding: 0
 table { border-collapse: collapse; margin: 0.6em 0; font-size: 0.92em; }
 th, td { border: 1px solid #ccc; padding: 0.25em 0.55em; text-align: left; vertical-align: top; }
 th { background: #eee; }
+section#settings th { white-space: nowrap; }
+div.scroll { max-height: 22em; overflow-y: auto; display: inline-block; border: 1px solid #ccc; }
+div.scroll table { margin: 0; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; }
 tr.severe td { background: #fde2e1; }
 tr.caution td { background: #fff4d6; }
@@ -437,6 +443,9 @@ fn is_numeric(cell: &str) -> bool {
 }
 
 fn table_html(out: &mut String, table: &Table) {
+    if table.scroll {
+        out.push_str("<div class=\"scroll\">\n");
+    }
     out.push_str("<table>\n<thead><tr>");
     for h in &table.header {
         let _ = write!(out, "<th>{}</th>", escape(h));
@@ -454,6 +463,9 @@ fn table_html(out: &mut String, table: &Table) {
         out.push_str("</tr>\n");
     }
     out.push_str("</tbody>\n</table>\n");
+    if table.scroll {
+        out.push_str("</div>\n");
+    }
     if let Some(note) = &table.note {
         let _ = writeln!(out, "<p>{}</p>", escape(note));
     }
@@ -531,6 +543,7 @@ fn shift_html(out: &mut String, part: &ShiftPart) {
             })
             .collect(),
         note: Some(format!("flagged above |SMD| {}", number(s.smd_threshold))),
+        scroll: s.balance.len() > 12,
     };
     table_html(out, &balance);
     let _ = writeln!(

@@ -259,6 +259,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
             "The pool holds {actives_in_pool} truly active compounds; the first row is the \
              shortlist above."
         )),
+        scroll: false,
     };
     for ((name, _, _), o) in COMPARED.iter().zip(&outcomes) {
         let (false_hits, chosen) = false_discovery_proportion(&scenario.pool, &o.selected);
@@ -321,6 +322,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
                  share of truly active compounds selected.",
                 args.screens
             )),
+            scroll: false,
         });
         for r in &repeated {
             let _ = writeln!(

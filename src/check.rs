@@ -31,7 +31,7 @@ use crate::score::Thresholds;
 use crate::select::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };
-use crate::shift::ShiftParams;
+use crate::shift::{ShiftError, ShiftParams};
 use crate::table::{Role, UnitTable};
 use crate::weighting::{obtain_weights, WeightSource, WeightingError};
 
@@ -128,6 +128,12 @@ pub struct CheckOutcome {
     pub mean_pseudo_pool: f64,
     /// Mean share of interesting units (outcome above threshold) in the pseudo-pool.
     pub mean_interesting_share: f64,
+    /// Share of replicates in which the pipeline could not run — an empty pseudo-pool or
+    /// pseudo-labeled part, or a domain classifier that cannot be fit on the split (too
+    /// few rows, one class, every feature constant). They count as empty selections, as
+    /// the real pipeline would produce no shortlist; only small labeled sets or extreme
+    /// pool shares get here.
+    pub degenerate_share: f64,
     pub results: CheckResults,
 }
 
@@ -174,6 +180,8 @@ fn subset(table: &UnitTable, rows: &[usize], role: Role) -> UnitTable {
 }
 
 struct ReplicateResult {
+    /// The pipeline could not run on this split (see `CheckOutcome::degenerate_share`).
+    degenerate: bool,
     pseudo_labeled: usize,
     pseudo_pool: usize,
     interesting_share: f64,
@@ -279,6 +287,20 @@ pub fn calibration_check(
                     labeled_rows.push(i);
                 }
             }
+            // An empty part leaves nothing to calibrate or nothing to select from.
+            let degenerate = |pseudo_labeled: usize, pseudo_pool: usize| {
+                progress(finished.fetch_add(1, Ordering::Relaxed) + 1);
+                Ok(ReplicateResult {
+                    degenerate: true,
+                    pseudo_labeled,
+                    pseudo_pool,
+                    interesting_share: 0.0,
+                    per_selection: [(0.0, 0.0, 0); 3],
+                })
+            };
+            if labeled_rows.is_empty() || pool_rows.is_empty() {
+                return degenerate(labeled_rows.len(), pool_rows.len());
+            }
             let pseudo_labeled = subset(labeled, &labeled_rows, Role::Labeled);
             let mut pseudo_pool = subset(labeled, &pool_rows, Role::Pool);
             let truth = pseudo_pool.outcome.take().unwrap_or_default();
@@ -295,13 +317,21 @@ pub fn calibration_check(
                 },
                 CheckWeights::Exact => WeightSource::None,
             };
-            let weighting =
-                obtain_weights(&source, &pseudo_labeled, &pseudo_pool).map_err(|source| {
-                    CheckError::Weighting {
+            let weighting = match obtain_weights(&source, &pseudo_labeled, &pseudo_pool) {
+                Ok(w) => w,
+                // The split cannot carry a classifier: the real pipeline would stop here.
+                Err(WeightingError::Shift(
+                    ShiftError::TooFewRows { .. }
+                    | ShiftError::OneClass { .. }
+                    | ShiftError::AllConstant { .. },
+                )) => return degenerate(labeled_rows.len(), pool_rows.len()),
+                Err(source) => {
+                    return Err(CheckError::Weighting {
                         replicate: r,
                         source,
-                    }
-                })?;
+                    })
+                }
+            };
             let calibration = weighting.calibration(&pseudo_labeled);
             // Exact ratios: every pseudo-labeled row calibrates (no fit), so they align.
             let (labeled_weights, pool_weights): (Option<&[f64]>, Option<&[f64]>) =
@@ -378,6 +408,7 @@ pub fn calibration_check(
             ];
             progress(finished.fetch_add(1, Ordering::Relaxed) + 1);
             Ok(ReplicateResult {
+                degenerate: false,
                 pseudo_labeled: calibration.rows(),
                 pseudo_pool: pseudo_pool.len(),
                 interesting_share: interesting_count as f64 / pseudo_pool.len().max(1) as f64,
@@ -421,6 +452,7 @@ pub fn calibration_check(
             / count,
         mean_pseudo_pool: replicates.iter().map(|r| r.pseudo_pool as f64).sum::<f64>() / count,
         mean_interesting_share: replicates.iter().map(|r| r.interesting_share).sum::<f64>() / count,
+        degenerate_share: replicates.iter().filter(|r| r.degenerate).count() as f64 / count,
         results: CheckResults {
             conditional: summarize(0),
             bh: summarize(1),
@@ -515,6 +547,43 @@ mod tests {
         assert_eq!(a.results.conditional.fdr, b.results.conditional.fdr);
         assert_eq!(a.results.bh.power, b.results.bh.power);
         assert!(a.results.conditional.fdr >= 0.0 && a.results.conditional.fdr <= 1.0);
+    }
+
+    #[test]
+    fn splits_with_an_empty_part_count_as_empty_selections() {
+        // 40 rows, no shift: with a pool share of 0.05 about (0.95)^40 = 13% of the splits
+        // have an empty pseudo-pool, with 0.9 about 1.5% an empty pseudo-labeled part, and
+        // the classifier needs at least 2 rows per side.
+        let (table, tilt) = demo_labeled(40, 6);
+        for (share, weights) in [
+            (0.05, CheckWeights::Exact),
+            (
+                0.05,
+                CheckWeights::Fitted(ShiftParams::new().permutations(1).cv_folds(2)),
+            ),
+            (0.9, CheckWeights::Exact),
+        ] {
+            let mut o = options(weights, 200, 0.0);
+            o.pool_share = share;
+            let outcome = calibration_check(&table, &tilt, Some(THRESHOLD), &o, &|_| {}).unwrap();
+            assert!(
+                outcome.degenerate_share > 0.0 && outcome.degenerate_share < 0.5,
+                "share {share}: {}",
+                outcome.degenerate_share
+            );
+            assert!(outcome.results.conditional.fdr <= 1.0);
+        }
+        // Without degenerate splits the share is 0.
+        let (table, tilt) = demo_labeled(400, 6);
+        let outcome = calibration_check(
+            &table,
+            &tilt,
+            Some(THRESHOLD),
+            &options(CheckWeights::Exact, 20, 1.0),
+            &|_| {},
+        )
+        .unwrap();
+        assert_eq!(outcome.degenerate_share, 0.0);
     }
 
     #[test]

@@ -179,6 +179,14 @@ fn reading(outcome: &CheckOutcome, q: f64) -> Vec<String> {
             100.0 * r.conditional.empty_share
         ));
     }
+    if outcome.degenerate_share > 0.0 {
+        lines.push(format!(
+            "{:.1}% of replicates could not run the pipeline (an empty pseudo-pool or \
+             pseudo-labeled part, or a classifier that cannot be fit on so few rows); they \
+             count as empty selections. Use more labeled rows or a pool share nearer 0.5.",
+            100.0 * outcome.degenerate_share
+        ));
+    }
     lines
 }
 

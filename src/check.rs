@@ -122,8 +122,13 @@ pub struct CheckOutcome {
     pub pool_share: f64,
     /// The constant `c` of `pi = min(PI_MAX, c exp(S z))`.
     pub tilt_constant: f64,
-    /// Kish ESS of the exact ratios over the labeled rows, as a share of them.
+    /// Kish ESS of the exact ratios over the labeled rows, as a share of them. Not
+    /// monotone in the strength: once many rows reach `PI_MAX` their ratios are equal.
     pub exact_ess_fraction: f64,
+    /// Mean over replicates of the Kish ESS of the weights the selection used (exact or
+    /// fitted) over the calibrating rows, as a share of those rows: how much of the
+    /// pseudo-labeled part effectively calibrates.
+    pub mean_calibration_ess_fraction: f64,
     pub mean_pseudo_labeled: f64,
     pub mean_pseudo_pool: f64,
     /// Mean share of interesting units (outcome above threshold) in the pseudo-pool.
@@ -183,6 +188,8 @@ struct ReplicateResult {
     /// The pipeline could not run on this split (see `CheckOutcome::degenerate_share`).
     degenerate: bool,
     pseudo_labeled: usize,
+    /// Kish ESS share of the calibrating rows' weights (unused for a degenerate split).
+    calibration_ess_fraction: f64,
     pseudo_pool: usize,
     interesting_share: f64,
     /// (FDP, power, selected) per compared selection.
@@ -293,6 +300,7 @@ pub fn calibration_check(
                 Ok(ReplicateResult {
                     degenerate: true,
                     pseudo_labeled,
+                    calibration_ess_fraction: 1.0,
                     pseudo_pool,
                     interesting_share: 0.0,
                     per_selection: [(0.0, 0.0, 0); 3],
@@ -348,6 +356,10 @@ pub fn calibration_check(
             let thresholds_pool = match &pseudo_pool.threshold {
                 Some(c) => Thresholds::PerUnit(c),
                 None => Thresholds::Constant(constant_threshold.unwrap_or(f64::INFINITY)),
+            };
+            let calibration_ess_fraction = match labeled_weights {
+                Some(w) if !w.is_empty() => crate::select::kish_ess(w) / w.len() as f64,
+                _ => 1.0,
             };
             let calibration_outcome = &calibration.outcome;
             let run = |procedure: Procedure, weighted: bool| {
@@ -410,6 +422,7 @@ pub fn calibration_check(
             Ok(ReplicateResult {
                 degenerate: false,
                 pseudo_labeled: calibration.rows(),
+                calibration_ess_fraction,
                 pseudo_pool: pseudo_pool.len(),
                 interesting_share: interesting_count as f64 / pseudo_pool.len().max(1) as f64,
                 per_selection,
@@ -445,6 +458,18 @@ pub fn calibration_check(
         pool_share: options.pool_share,
         tilt_constant,
         exact_ess_fraction,
+        mean_calibration_ess_fraction: {
+            let run: Vec<f64> = replicates
+                .iter()
+                .filter(|r| !r.degenerate)
+                .map(|r| r.calibration_ess_fraction)
+                .collect();
+            if run.is_empty() {
+                1.0
+            } else {
+                run.iter().sum::<f64>() / run.len() as f64
+            }
+        },
         mean_pseudo_labeled: replicates
             .iter()
             .map(|r| r.pseudo_labeled as f64)
@@ -526,6 +551,13 @@ mod tests {
         // Ignoring the shift: the scenario's model is optimistic where the tilt points.
         assert!(r.unweighted.fdr > 0.2 + 3.0 * r.unweighted.fdr_se, "{r:?}");
         assert_eq!(outcome.replicates, 120);
+        // The tilt makes the calibrating rows' exact weights unequal.
+        assert!(
+            outcome.mean_calibration_ess_fraction > 0.0
+                && outcome.mean_calibration_ess_fraction < 0.95,
+            "{}",
+            outcome.mean_calibration_ess_fraction
+        );
         assert!((outcome.mean_pseudo_pool / 3000.0 - 0.5).abs() < 0.05);
     }
 
@@ -572,6 +604,10 @@ mod tests {
                 outcome.degenerate_share
             );
             assert!(outcome.results.conditional.fdr <= 1.0);
+            if matches!(o.weights, CheckWeights::Exact) {
+                // No shift: equal exact weights, every calibrating row counts fully.
+                assert!((outcome.mean_calibration_ess_fraction - 1.0).abs() < 1e-12);
+            }
         }
         // Without degenerate splits the share is 0.
         let (table, tilt) = demo_labeled(400, 6);

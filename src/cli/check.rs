@@ -316,10 +316,12 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
         let _ = writeln!(
             text,
             "  each replicate: {:.0} pseudo-labeled and {:.0} pseudo-pool rows on average, {:.1}% \
-             of pool rows above threshold",
+             of pool rows above threshold; the weights' effective sample size is {:.0}% of the \
+             calibrating rows",
             outcome.mean_pseudo_labeled,
             outcome.mean_pseudo_pool,
-            100.0 * outcome.mean_interesting_share
+            100.0 * outcome.mean_interesting_share,
+            100.0 * outcome.mean_calibration_ess_fraction
         );
         let _ = writeln!(
             text,

@@ -224,8 +224,8 @@ fn table() -> Result<String, String> {
     out.push_str(&format!(
         "{REPLICATES} replicates per row; pseudo-pool share {POOL_SHARE}; FDR and power are \
          means over replicates, +- 2 Monte Carlo SE. n / m: mean calibrating rows / \
-         pseudo-pool rows per replicate. ESS: Kish ESS of the exact ratios as a share of the \
-         labeled rows. Conditional empty: share of replicates where conditional calibration \
+         pseudo-pool rows per replicate. ESS: mean Kish ESS of the weights used over the \
+         calibrating rows, as a share of them. Conditional empty: share of replicates where conditional calibration \
          selected nothing. **above q**: FDR - 2 SE > q.\n"
     ));
     for d in &DATASETS {
@@ -275,7 +275,7 @@ fn table() -> Result<String, String> {
                 s.pruning.name(),
                 o.mean_pseudo_labeled,
                 o.mean_pseudo_pool,
-                o.exact_ess_fraction,
+                o.mean_calibration_ess_fraction,
                 fdr(&r.conditional),
                 r.conditional.power,
                 r.conditional.empty_share,

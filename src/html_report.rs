@@ -569,8 +569,8 @@ fn shift_html(out: &mut String, part: &ShiftPart) {
         ),
         (
             &part.balance_svg,
-            "|SMD| per feature before and after weighting; the dashed line is the flag \
-             threshold.",
+            "|SMD| per feature before (open circles) and after (filled) weighting; the \
+             vertical line marks the flag threshold.",
         ),
     ] {
         let _ = writeln!(

@@ -12,12 +12,18 @@ use clap::Args;
 use serde::Serialize;
 
 use crate::audit::{audit_shortlist, AuditOutcome, POOL_PROBABILITY_LIMIT};
+use crate::html_report::{shift_part, Finding, Part, Report, Table};
+use crate::report::shift_section;
 use crate::report::{tool_info, ToolInfo, CAUTIONS};
 use crate::score::Thresholds;
 use crate::select::{LabeledInput, PoolInput};
 use crate::table::{read_id_list, OutputSet};
+use crate::weighting::{Calibration, FittedWeights, Weighting};
 
-use super::select::{obtain_run_weights, read_inputs, thresholds_of, SelectArgs, SelectConfig};
+use super::select::{
+    obtain_run_weights, read_inputs, report_pointer, thresholds_of, weights_method, SelectArgs,
+    SelectConfig,
+};
 use super::{commit_outputs, print_stdout, Failure};
 
 const AUDIT_HELP: &str = "\
@@ -122,6 +128,134 @@ fn audit_csv(ids: &[(String, u64)], outcome: &AuditOutcome) -> Vec<u8> {
             .expect("write to memory");
     }
     writer.into_inner().expect("flush to memory")
+}
+
+/// report.html of an audit: the findings first, the settings, the audited list (every
+/// listed unit), the shift diagnostics when weights were fitted, the cautions and method.
+fn audit_report(
+    summary: &AuditSummary<'_>,
+    listed_ids: &[(String, u64)],
+    outcome: &AuditOutcome,
+    weighting: &Weighting<'_>,
+    calibration: &Calibration<'_>,
+    config: &SelectConfig,
+) -> Result<Report, Failure> {
+    let mut warnings: Vec<Finding> = weighting
+        .fitted()
+        .map(|f| {
+            f.assessment
+                .summary
+                .warnings
+                .iter()
+                .map(Finding::from_shift)
+                .collect()
+        })
+        .unwrap_or_default();
+    warnings.extend(outcome.warnings.iter().map(|w| Finding::from_line(w)));
+    let shift = match weighting.fitted() {
+        Some(fitted) => Some(
+            shift_part(
+                &shift_section(fitted, &fitted_feature_names(fitted)),
+                calibration.weights.as_deref().unwrap_or(&[]),
+                &fitted.assessment.pool.weight,
+            )
+            .map_err(|e| Failure::Internal(e.to_string()))?,
+        ),
+        None => None,
+    };
+    let rows = listed_ids
+        .iter()
+        .zip(&outcome.units)
+        .map(|((id, _), u)| {
+            vec![
+                id.clone(),
+                format!("{:.4}", u.p_value_unweighted),
+                format!("{:.4}", u.p_value_weighted),
+                format!("{:.4}", u.adjusted_weighted),
+                if u.survives { "yes" } else { "no" }.to_string(),
+                if u.poorly_covered { "yes" } else { "no" }.to_string(),
+                format!("{:.4}", u.weight),
+            ]
+        })
+        .collect();
+    let settings = [
+        ("earlier shortlist", summary.shortlist_file.clone()),
+        ("labeled file", summary.labeled_file.clone()),
+        ("pool file", summary.pool_file.clone()),
+        ("target FDR q", summary.fdr.to_string()),
+        ("procedure", summary.procedure.to_string()),
+        ("p-values", summary.pvalues.to_string()),
+        ("score", summary.score.to_string()),
+        ("seed", summary.seed.to_string()),
+        ("weights", summary.weights.clone()),
+        (
+            "tool",
+            format!("{} {}", summary.tool.name, summary.tool.version),
+        ),
+    ]
+    .into_iter()
+    .map(|(k, v)| (k.to_string(), v))
+    .collect();
+    Ok(Report {
+        title: "weighbridge audit of an earlier shortlist".to_string(),
+        verdict: format!(
+            "{} listed units: the smallest BH level selecting the whole list is {:.4} without \
+             weights and {:.4} with weights; {} survive the weighted selection at FDR {}; {} \
+             ({:.0}%) sit in poorly covered regions",
+            outcome.listed_count,
+            outcome.fdr_level_unweighted,
+            outcome.fdr_level_weighted,
+            outcome.survivors_count,
+            summary.fdr,
+            outcome.poorly_covered_count,
+            100.0 * summary.poorly_covered_share
+        ),
+        warnings,
+        settings,
+        main: Some(Part {
+            id: "shortlist".to_string(),
+            heading: "Audited list".to_string(),
+            paragraphs: vec![format!(
+                "Every listed unit, in the order of the list (audit.csv has the same rows with \
+                 more columns). \"BH level\" is the unit's BH-adjusted weighted p-value: the \
+                 smallest level at which BH would select it. \"Poorly covered\": unreachable \
+                 at FDR {}, a weight above every labeled weight ({:.4}), or, with fitted \
+                 weights, a balanced pool probability above {}.",
+                summary.fdr, summary.largest_labeled_weight, POOL_PROBABILITY_LIMIT
+            )],
+            tables: vec![Table {
+                header: [
+                    "id",
+                    "p-value unweighted",
+                    "p-value weighted",
+                    "BH level weighted",
+                    "survives",
+                    "poorly covered",
+                    "weight",
+                ]
+                .map(String::from)
+                .to_vec(),
+                rows,
+                note: None,
+                scroll: outcome.listed_count > 15,
+            }],
+        }),
+        shift,
+        extra: Vec::new(),
+        weights_method: weights_method(&config.weights),
+        procedure: Some(summary.procedure.to_string()),
+    })
+}
+
+/// The feature names a fit used (its settings' input features).
+fn fitted_feature_names(fitted: &FittedWeights) -> Vec<String> {
+    fitted
+        .assessment
+        .summary
+        .balance
+        .iter()
+        .map(|b| b.feature.clone())
+        .collect()
 }
 
 /// Run `audit`.
@@ -248,6 +382,17 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
     let json = serde_json::to_vec_pretty(&summary)
         .map_err(|e| Failure::Internal(format!("cannot serialize the audit: {e}")))?;
     files.add("audit.json", json);
+    if config.report {
+        let report = audit_report(
+            &summary,
+            &listed_ids,
+            &outcome,
+            &weighting,
+            &calibration,
+            &config,
+        )?;
+        files.add("report.html", report.render().into_bytes());
+    }
     commit_outputs(files, &config.out)?;
 
     if !config.quiet {
@@ -287,6 +432,9 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
             config.out.join("audit.csv").display(),
             config.out.join("audit.json").display()
         );
+        if config.report {
+            text.push_str(&report_pointer(&config.out));
+        }
         print_stdout(&text);
     }
     Ok(())

@@ -8,6 +8,7 @@ use std::path::PathBuf;
 use clap::{Args, ValueEnum};
 
 use crate::fdr::Pruning;
+use crate::html_report::{selection_report, shift_part, WeightsMethod};
 use crate::pvalue::PValueKind;
 use crate::report::{
     add_shift, candidates_csv, select_summary, shift_section, text_summary, RunInputs,
@@ -40,6 +41,7 @@ Outputs in --out (written all at once; nothing is written when an input is bad):
                   selected, [first_step, conditional_count,] never_selectable_because
   summary.json    settings, counts, warnings, seed, tool version, and with --fit-weights
                   the shift diagnostics (`shift`)
+  report.html     with --report: one self-contained page (no scripts, no external files)
 
 Exit codes: 0 success, 2 bad usage or input, 1 internal failure.
 
@@ -134,6 +136,10 @@ pub struct SelectArgs {
     /// Do not print the summary.
     #[arg(long)]
     pub quiet: bool,
+    /// Also write report.html: a self-contained page (warnings, settings, shortlist,
+    /// shift diagnostics with plots, cautions, method).
+    #[arg(long)]
+    pub report: bool,
 }
 
 /// `--score`.
@@ -208,6 +214,8 @@ pub struct SelectConfig {
     pub weights: WeightSource,
     pub out: PathBuf,
     pub quiet: bool,
+    /// Write report.html too.
+    pub report: bool,
 }
 
 impl TryFrom<SelectArgs> for SelectConfig {
@@ -285,6 +293,7 @@ impl TryFrom<SelectArgs> for SelectConfig {
             weights,
             out: a.out,
             quiet: a.quiet,
+            report: a.report,
         })
     }
 }
@@ -339,6 +348,22 @@ fn select_or_explain(
     })
 }
 
+/// How the method section of report.html describes the weights.
+pub(crate) fn weights_method(source: &WeightSource) -> WeightsMethod {
+    match source {
+        WeightSource::None => WeightsMethod::None,
+        WeightSource::Given { column } => WeightsMethod::Given(format!("column {column}")),
+        _ => WeightsMethod::Fitted,
+    }
+}
+
+/// "report: file:///abs/path/report.html" for the end of a summary.
+pub(crate) fn report_pointer(out: &std::path::Path) -> String {
+    let path = out.join("report.html");
+    let path = std::path::absolute(&path).unwrap_or(path);
+    format!("report: file://{}\n", path.display())
+}
+
 /// Run `select`.
 pub fn run(args: SelectArgs) -> Result<(), Failure> {
     let mut timer = PhaseTimer::new();
@@ -389,6 +414,27 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     let json = serde_json::to_vec_pretty(&summary)
         .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?;
     files.add("summary.json", json);
+    if config.report {
+        let part = match weighting.fitted() {
+            Some(fitted) => Some(
+                shift_part(
+                    summary.shift.as_ref().expect("added above"),
+                    calibration.weights.as_deref().unwrap_or(&[]),
+                    &fitted.assessment.pool.weight,
+                )
+                .map_err(|e| Failure::Internal(e.to_string()))?,
+            ),
+            None => None,
+        };
+        let report = selection_report(
+            &summary,
+            &pool.ids,
+            &outcome,
+            part,
+            weights_method(&config.weights),
+        );
+        files.add("report.html", report.render().into_bytes());
+    }
     timer.mark("format outputs");
     commit_outputs(files, &config.out)?;
     timer.mark("write outputs");
@@ -399,6 +445,9 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
             config.out.join("candidates.csv").display(),
             config.out.join("summary.json").display()
         ));
+        if config.report {
+            text.push_str(&report_pointer(&config.out));
+        }
         print_stdout(&text);
     }
     Ok(())

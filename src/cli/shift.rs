@@ -10,6 +10,7 @@ use std::path::{Path, PathBuf};
 use clap::{Args, ValueEnum};
 use linfa::ParamGuard;
 
+use crate::html_report::{shift_report_html, ShiftPart};
 use crate::plots::{balance_svg, overlap_svg, weights_svg};
 use crate::report::{
     balance_csv, shift_report, shift_section, shift_text, weights_csv, ShiftInputs,
@@ -58,6 +59,7 @@ Outputs in --out (written all at once; nothing is written when an input is bad):
   overlap.svg   histograms of the balanced probability w/(1+w) for both sets
   weights.svg   histograms of log10 weight for both sets
   balance.svg   |SMD| per feature before and after weighting
+  report.html   with --report: one self-contained page (no scripts, no external files)
 
 Warnings (most serious first) name the diagnostic, its value, the threshold and what it
 means for the shortlist: classifier not converged, clamped weights, imbalance left on
@@ -305,6 +307,10 @@ pub struct ShiftArgs {
     /// Do not print the summary.
     #[arg(long)]
     pub quiet: bool,
+    /// Also write report.html: a self-contained page (warnings, settings, diagnostics with
+    /// plots, cautions, method).
+    #[arg(long)]
+    pub report: bool,
 }
 
 /// Checked configuration of one `shift` run.
@@ -316,6 +322,8 @@ pub struct ShiftConfig {
     pub params: ShiftParams,
     pub out: PathBuf,
     pub quiet: bool,
+    /// Write report.html too.
+    pub report: bool,
 }
 
 impl TryFrom<ShiftArgs> for ShiftConfig {
@@ -346,6 +354,7 @@ impl TryFrom<ShiftArgs> for ShiftConfig {
             params,
             out: a.out,
             quiet: a.quiet,
+            report: a.report,
         })
     }
 }
@@ -456,28 +465,29 @@ pub fn run(args: ShiftArgs) -> Result<(), Failure> {
     files.add("shift.json", json);
     files.add("weights.csv", weights_csv(&labeled.ids, &pool.ids, fitted));
     files.add("balance.csv", balance_csv(&summary.balance));
-    files.add(
-        "overlap.svg",
-        overlap_svg(&summary.overlap)
-            .map_err(plot_failure)?
-            .into_bytes(),
-    );
-    files.add(
-        "weights.svg",
-        weights_svg(
-            &calibration_weights,
-            &fitted.assessment.pool.weight,
-            WEIGHT_PLOT_BINS,
-        )
-        .map_err(plot_failure)?
-        .into_bytes(),
-    );
-    files.add(
-        "balance.svg",
-        balance_svg(&summary.balance)
-            .map_err(plot_failure)?
-            .into_bytes(),
-    );
+    let overlap = overlap_svg(&summary.overlap).map_err(plot_failure)?;
+    let weights = weights_svg(
+        &calibration_weights,
+        &fitted.assessment.pool.weight,
+        WEIGHT_PLOT_BINS,
+    )
+    .map_err(plot_failure)?;
+    let balance = balance_svg(&summary.balance).map_err(plot_failure)?;
+    if config.report {
+        let part = ShiftPart {
+            section: report.shift.clone(),
+            overlap_svg: overlap.clone(),
+            weights_svg: weights.clone(),
+            balance_svg: balance.clone(),
+        };
+        files.add(
+            "report.html",
+            shift_report_html(&report, part).render().into_bytes(),
+        );
+    }
+    files.add("overlap.svg", overlap.into_bytes());
+    files.add("weights.svg", weights.into_bytes());
+    files.add("balance.svg", balance.into_bytes());
     timer.mark("format outputs");
     commit_outputs(files, &config.out)?;
     timer.mark("write outputs");
@@ -488,6 +498,9 @@ pub fn run(args: ShiftArgs) -> Result<(), Failure> {
              balance.svg to {}\n",
             config.out.display()
         ));
+        if config.report {
+            text.push_str(&super::select::report_pointer(&config.out));
+        }
         print_stdout(&text);
     }
     Ok(())

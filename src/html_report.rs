@@ -52,7 +52,7 @@ pub struct Finding {
     pub diagnostic: String,
     /// `severe`, `caution`, or `note` for the selection's own warnings.
     pub severity: String,
-    /// The value and threshold as text ("" when the message states them itself).
+    /// The value and threshold as text (a dash when the message states them itself).
     pub value: String,
     pub threshold: String,
     /// What it means for the shortlist.
@@ -84,8 +84,8 @@ impl Finding {
         Finding {
             diagnostic,
             severity: "warning".to_string(),
-            value: "(in the text)".to_string(),
-            threshold: "(in the text)".to_string(),
+            value: "\u{2014}".to_string(),
+            threshold: "\u{2014}".to_string(),
             meaning,
         }
     }

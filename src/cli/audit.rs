@@ -21,10 +21,10 @@ use crate::table::{read_id_list, OutputSet};
 use crate::weighting::{Calibration, FittedWeights, Weighting};
 
 use super::select::{
-    obtain_run_weights, read_inputs, report_pointer, thresholds_of, weights_method, SelectArgs,
-    SelectConfig,
+    obtain_run_weights, read_inputs, report_pointer, thresholds_of, weighting_is_fitted,
+    weights_method, SelectArgs, SelectConfig,
 };
-use super::{commit_outputs, print_stdout, Failure};
+use super::{commit_outputs, print_stdout, Failure, StepStatus};
 
 const AUDIT_HELP: &str = "\
 Takes a list of pool ids chosen earlier (by ranking, by an unweighted selection, by hand)
@@ -266,6 +266,8 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         .unwrap_or_else(|| args.selection.id.clone());
     let shortlist_path = args.shortlist.clone();
     let config = SelectConfig::try_from(args.selection)?;
+    let status = StepStatus::new(config.quiet);
+    status.step("reading the labeled and pool files");
     let (labeled, pool) = read_inputs(&config)?;
     let listed_ids = read_id_list(
         &shortlist_path,
@@ -306,7 +308,11 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         .map(|(id, _)| position[id.as_str()])
         .collect();
 
+    if weighting_is_fitted(&config) {
+        status.step("fitting the domain classifier and its diagnostics");
+    }
     let weighting = obtain_run_weights(&config, &labeled, &pool)?;
+    status.step("p-values and selection with and without weights");
     // Held-out fitting: the rows that fit the classifier do not calibrate.
     let calibration = weighting.calibration(&labeled);
     // e(x) on the equal-size scale w / (1 + w), as the shift diagnostics use it: the raw
@@ -393,7 +399,9 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         )?;
         files.add("report.html", report.render().into_bytes());
     }
+    status.step("writing the outputs");
     commit_outputs(files, &config.out)?;
+    drop(status);
 
     if !config.quiet {
         let mut text = String::new();

@@ -20,7 +20,7 @@ use crate::shift::FeatureBalance;
 use crate::table::OutputSet;
 use crate::weighting::{fit_rows_statement, FittedWeights};
 
-use super::{commit_outputs, print_stdout, Failure};
+use super::{commit_outputs, print_stdout, Failure, StepStatus};
 
 const DEMO_HELP: &str = "\
 Generates an invented compound library (our own simulation, no real data): a labeled set of
@@ -151,6 +151,8 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
             "--labeled and --pool must each be at least 10".to_string(),
         ));
     }
+    let status = StepStatus::new(false);
+    status.step("inventing the scenario");
     let scenario = generate(args.labeled, args.pool, args.seed);
     let q = args.fdr;
     let params = fit_params(args.seed, q, DEMO_PERMUTATIONS);
@@ -158,7 +160,9 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
         .clone()
         .check()
         .map_err(|e| Failure::Input(format!("--fdr: {e}")))?;
+    status.step("fitting the domain classifier and its diagnostics");
     let assessment = fit_weights(&scenario, params).map_err(DemoError::from)?;
+    status.step("selecting with and without weights");
     let outcomes = compared_selections(&scenario, &assessment, q, args.seed)?;
     let weighted = &outcomes[0];
     let fitted = FittedWeights {
@@ -288,6 +292,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
     );
     let mut repeated_table = None;
     if args.screens > 0 {
+        status.step(&format!("{} further screens", args.screens));
         let repeated = repeated_screens(args.labeled, args.pool, q, args.seed, args.screens)?;
         let _ = writeln!(
             out,
@@ -379,7 +384,9 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
         tables,
     });
     files.add("report.html", report.render().into_bytes());
+    status.step("writing the outputs and report.html");
     commit_outputs(files, &args.out)?;
+    drop(status);
     let report_path = std::path::absolute(args.out.join("report.html"))
         .unwrap_or_else(|_| args.out.join("report.html"));
     let _ = writeln!(

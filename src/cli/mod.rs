@@ -133,6 +133,48 @@ impl PhaseTimer {
     }
 }
 
+/// A one-line status on stderr naming the step that is running (reading the files, fitting
+/// the classifier, selecting, ...), shown only when stderr is a terminal: never in files or
+/// pipes, and costing nothing there. Each new step overwrites the line; dropping the value
+/// clears it.
+pub(crate) struct StepStatus {
+    enabled: bool,
+    started: std::time::Instant,
+}
+
+impl StepStatus {
+    pub(crate) fn new(quiet: bool) -> Self {
+        use std::io::IsTerminal;
+        StepStatus {
+            enabled: !quiet && std::io::stderr().is_terminal(),
+            started: std::time::Instant::now(),
+        }
+    }
+
+    /// Announce the step now starting.
+    pub(crate) fn step(&self, what: &str) {
+        if self.enabled {
+            let mut err = std::io::stderr().lock();
+            let _ = write!(
+                err,
+                "\r\x1b[2Kweighbridge [{:6.1} s] {what} ...",
+                self.started.elapsed().as_secs_f64()
+            );
+            let _ = err.flush();
+        }
+    }
+}
+
+impl Drop for StepStatus {
+    fn drop(&mut self) {
+        if self.enabled {
+            let mut err = std::io::stderr().lock();
+            let _ = write!(err, "\r\x1b[2K");
+            let _ = err.flush();
+        }
+    }
+}
+
 /// Parse arguments, run the command, map the result to an exit code.
 pub fn main_entry() -> ExitCode {
     let cli = match Cli::try_parse() {

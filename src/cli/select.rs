@@ -21,7 +21,7 @@ use crate::table::{check_same_features, read_units, OutputSet, ReadOptions, Role
 use crate::weighting::{obtain_weights, WeightSource, Weighting};
 
 use super::shift::{feature_selectors, weighting_failure, FitArgs};
-use super::{commit_outputs, print_stdout, Failure, PhaseTimer};
+use super::{commit_outputs, print_stdout, Failure, PhaseTimer, StepStatus};
 
 const SELECT_HELP: &str = "\
 Reads both files completely into memory (about 100 bytes per row plus 8 per feature).
@@ -348,6 +348,11 @@ fn select_or_explain(
     })
 }
 
+/// Are the weights fitted in this run (the step worth announcing)?
+pub(crate) fn weighting_is_fitted(config: &SelectConfig) -> bool {
+    matches!(config.weights, WeightSource::Fitted { .. })
+}
+
 /// How the method section of report.html describes the weights.
 pub(crate) fn weights_method(source: &WeightSource) -> WeightsMethod {
     match source {
@@ -368,14 +373,20 @@ pub(crate) fn report_pointer(out: &std::path::Path) -> String {
 pub fn run(args: SelectArgs) -> Result<(), Failure> {
     let mut timer = PhaseTimer::new();
     let config = SelectConfig::try_from(args)?;
+    let status = StepStatus::new(config.quiet);
+    status.step("reading the labeled and pool files");
     let (labeled, pool) = read_inputs(&config)?;
     timer.mark("read inputs");
+    if weighting_is_fitted(&config) {
+        status.step("fitting the domain classifier and its diagnostics");
+    }
     let weighting = obtain_run_weights(&config, &labeled, &pool)?;
     if weighting.fitted().is_some() {
         timer.mark("fit weights and diagnostics");
     }
     // Held-out fitting: the rows that fit the classifier do not calibrate.
     let calibration = weighting.calibration(&labeled);
+    status.step("scores, p-values and selection");
     let outcome = select_or_explain(
         &config,
         LabeledInput {
@@ -436,8 +447,10 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
         files.add("report.html", report.render().into_bytes());
     }
     timer.mark("format outputs");
+    status.step("writing the outputs");
     commit_outputs(files, &config.out)?;
     timer.mark("write outputs");
+    drop(status);
     if !config.quiet {
         let mut text = text_summary(&summary, &pool.ids, &outcome);
         text.push_str(&format!(

@@ -23,7 +23,7 @@ use crate::table::{
 use crate::weighting::{obtain_weights, WeightSource, Weighting, WeightingError};
 
 use super::select::DelimiterArg;
-use super::{commit_outputs, print_stdout, Failure, PhaseTimer};
+use super::{commit_outputs, print_stdout, Failure, PhaseTimer, StepStatus};
 
 /// Default L2 penalty alpha (scikit-learn's default C = 1).
 pub const DEFAULT_PENALTY: f64 = 1.0;
@@ -428,10 +428,13 @@ pub(crate) fn read_feature_table(
 pub fn run(args: ShiftArgs) -> Result<(), Failure> {
     let mut timer = PhaseTimer::new();
     let config = ShiftConfig::try_from(args)?;
+    let status = StepStatus::new(config.quiet);
+    status.step("reading the labeled and pool files");
     let labeled = read_feature_table(&config.labeled_path, Role::Labeled, &config.read)?;
     let pool = read_feature_table(&config.pool_path, Role::Pool, &config.read)?;
     check_same_features(&labeled, &pool)?;
     timer.mark("read inputs");
+    status.step("fitting the domain classifier, cross-validated AUC and permutation test");
     let source = WeightSource::Fitted {
         params: config.params.clone(),
     };
@@ -489,8 +492,10 @@ pub fn run(args: ShiftArgs) -> Result<(), Failure> {
     files.add("weights.svg", weights.into_bytes());
     files.add("balance.svg", balance.into_bytes());
     timer.mark("format outputs");
+    status.step("writing the outputs");
     commit_outputs(files, &config.out)?;
     timer.mark("write outputs");
+    drop(status);
     if !config.quiet {
         let mut text = shift_text(&report);
         text.push_str(&format!(

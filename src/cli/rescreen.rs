@@ -14,7 +14,10 @@ use crate::score::Thresholds;
 use crate::select::{run_selection, LabeledInput, PoolInput};
 use crate::table::OutputSet;
 
-use super::select::{obtain_run_weights, read_inputs, thresholds_of, SelectArgs, SelectConfig};
+use super::select::{
+    obtain_run_weights, read_inputs, report_pointer, selection_report_page, thresholds_of,
+    SelectArgs, SelectConfig,
+};
 use super::{commit_outputs, print_stdout, Failure};
 
 const RESCREEN_HELP: &str = "\
@@ -271,6 +274,19 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         "changes.csv",
         changes.into_inner().expect("flush to memory"),
     );
+    if config.report {
+        files.add(
+            "report.html",
+            selection_report_page(
+                config.weights.clone(),
+                &summary,
+                &pool.ids,
+                &outcome,
+                &weighting,
+                &calibration,
+            )?,
+        );
+    }
     files.add(
         "changes.json",
         serde_json::to_vec_pretty(&report)
@@ -326,6 +342,9 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
             "wrote candidates.csv, summary.json, changes.csv and changes.json to {}",
             config.out.display()
         );
+        if config.report {
+            text.push_str(&report_pointer(&config.out));
+        }
         print_stdout(&text);
     }
     Ok(())

@@ -362,6 +362,30 @@ pub(crate) fn weights_method(source: &WeightSource) -> WeightsMethod {
     }
 }
 
+/// report.html of a selection run (`select --report`, `rescreen --report`).
+pub(crate) fn selection_report_page(
+    source: WeightSource,
+    summary: &crate::report::SelectSummary,
+    ids: &[String],
+    outcome: &crate::select::SelectionOutcome,
+    weighting: &Weighting<'_>,
+    calibration: &crate::weighting::Calibration<'_>,
+) -> Result<Vec<u8>, Failure> {
+    let part = match (weighting.fitted(), summary.shift.as_ref()) {
+        (Some(fitted), Some(section)) => Some(
+            shift_part(
+                section,
+                calibration.weights.as_deref().unwrap_or(&[]),
+                &fitted.assessment.pool.weight,
+            )
+            .map_err(|e| Failure::Internal(e.to_string()))?,
+        ),
+        _ => None,
+    };
+    let report = selection_report(summary, ids, outcome, part, weights_method(&source));
+    Ok(report.render().into_bytes())
+}
+
 /// "report: file:///abs/path/report.html" for the end of a summary.
 pub(crate) fn report_pointer(out: &std::path::Path) -> String {
     let path = out.join("report.html");
@@ -426,25 +450,17 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
         .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?;
     files.add("summary.json", json);
     if config.report {
-        let part = match weighting.fitted() {
-            Some(fitted) => Some(
-                shift_part(
-                    summary.shift.as_ref().expect("added above"),
-                    calibration.weights.as_deref().unwrap_or(&[]),
-                    &fitted.assessment.pool.weight,
-                )
-                .map_err(|e| Failure::Internal(e.to_string()))?,
-            ),
-            None => None,
-        };
-        let report = selection_report(
-            &summary,
-            &pool.ids,
-            &outcome,
-            part,
-            weights_method(&config.weights),
+        files.add(
+            "report.html",
+            selection_report_page(
+                config.weights.clone(),
+                &summary,
+                &pool.ids,
+                &outcome,
+                &weighting,
+                &calibration,
+            )?,
         );
-        files.add("report.html", report.render().into_bytes());
     }
     timer.mark("format outputs");
     status.step("writing the outputs");

@@ -15,13 +15,11 @@ use crate::audit::{audit_shortlist, AuditOutcome, POOL_PROBABILITY_LIMIT};
 use crate::html_report::{shift_part, Finding, Part, Report, Table};
 use crate::report::shift_section;
 use crate::report::{tool_info, ToolInfo, CAUTIONS};
-use crate::score::Thresholds;
-use crate::select::{LabeledInput, PoolInput};
 use crate::table::{read_id_list, OutputSet};
 use crate::weighting::{Calibration, FittedWeights, Weighting};
 
 use super::select::{
-    obtain_run_weights, read_inputs, report_pointer, thresholds_of, weighting_is_fitted,
+    obtain_run_weights, read_inputs, report_pointer, selection_inputs, weighting_is_fitted,
     weights_method, SelectArgs, SelectConfig,
 };
 use super::{commit_outputs, print_stdout, Failure, StepStatus};
@@ -325,22 +323,11 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
             .map(|w| w / (1.0 + w))
             .collect()
     });
+    let (labeled_input, pool_input) = selection_inputs(&config, &pool, &calibration, &weighting);
     let outcome = audit_shortlist(
         &config.options,
-        LabeledInput {
-            outcome: &calibration.outcome,
-            prediction: &calibration.prediction,
-            thresholds: match &calibration.threshold {
-                Some(column) => Thresholds::PerUnit(column),
-                None => thresholds_of(&labeled, config.threshold),
-            },
-            weights: calibration.weights.as_deref(),
-        },
-        PoolInput {
-            prediction: &pool.prediction,
-            thresholds: thresholds_of(&pool, config.threshold),
-            weights: weighting.pool_weights(),
-        },
+        labeled_input,
+        pool_input,
         &listed,
         pool_probability.as_deref(),
     )?;

@@ -10,12 +10,11 @@ use serde_json::Value;
 
 use crate::report::{add_shift, candidates_csv, select_summary, shift_section, RunInputs};
 use crate::rescreen::{compare, ChangeCounts, CurrentUnit, PreviousUnit};
-use crate::score::Thresholds;
-use crate::select::{run_selection, LabeledInput, PoolInput};
+use crate::select::run_selection;
 use crate::table::OutputSet;
 
 use super::select::{
-    obtain_run_weights, read_inputs, report_pointer, selection_report_page, thresholds_of,
+    obtain_run_weights, read_inputs, report_pointer, selection_inputs, selection_report_page,
     SelectArgs, SelectConfig,
 };
 use super::{commit_outputs, print_stdout, Failure};
@@ -139,23 +138,8 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     let (labeled, pool) = read_inputs(&config)?;
     let weighting = obtain_run_weights(&config, &labeled, &pool)?;
     let calibration = weighting.calibration(&labeled);
-    let outcome = run_selection(
-        &config.options,
-        LabeledInput {
-            outcome: &calibration.outcome,
-            prediction: &calibration.prediction,
-            thresholds: match &calibration.threshold {
-                Some(column) => Thresholds::PerUnit(column),
-                None => thresholds_of(&labeled, config.threshold),
-            },
-            weights: calibration.weights.as_deref(),
-        },
-        PoolInput {
-            prediction: &pool.prediction,
-            thresholds: thresholds_of(&pool, config.threshold),
-            weights: weighting.pool_weights(),
-        },
-    )?;
+    let (labeled_input, pool_input) = selection_inputs(&config, &pool, &calibration, &weighting);
+    let outcome = run_selection(&config.options, labeled_input, pool_input)?;
     let mut summary = select_summary(
         &outcome,
         RunInputs {

@@ -18,7 +18,7 @@ use crate::select::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };
 use crate::table::{check_same_features, read_units, OutputSet, ReadOptions, Role, UnitTable};
-use crate::weighting::{obtain_weights, WeightSource, Weighting};
+use crate::weighting::{obtain_weights, Calibration, WeightSource, Weighting};
 
 use super::shift::{feature_selectors, weighting_failure, FitArgs};
 use super::{commit_outputs, print_stdout, Failure, PhaseTimer, StepStatus};
@@ -298,6 +298,33 @@ impl TryFrom<SelectArgs> for SelectConfig {
     }
 }
 
+/// The selection's two sides: the calibrating labeled rows (held-out fitting drops the rows
+/// that fit the classifier) and the pool, with the run's weights and thresholds.
+pub(crate) fn selection_inputs<'a>(
+    config: &SelectConfig,
+    pool: &'a UnitTable,
+    calibration: &'a Calibration<'a>,
+    weighting: &'a Weighting<'a>,
+) -> (LabeledInput<'a>, PoolInput<'a>) {
+    (
+        LabeledInput {
+            outcome: &calibration.outcome,
+            prediction: &calibration.prediction,
+            thresholds: match (&calibration.threshold, config.threshold) {
+                (Some(column), _) => Thresholds::PerUnit(column),
+                (None, Some(c)) => Thresholds::Constant(c),
+                (None, None) => unreachable!("clap requires --threshold or --threshold-column"),
+            },
+            weights: calibration.weights.as_deref(),
+        },
+        PoolInput {
+            prediction: &pool.prediction,
+            thresholds: thresholds_of(pool, config.threshold),
+            weights: weighting.pool_weights(),
+        },
+    )
+}
+
 /// Thresholds of a table: the constant, or its threshold column.
 pub(crate) fn thresholds_of(table: &UnitTable, constant: Option<f64>) -> Thresholds<'_> {
     match (&table.threshold, constant) {
@@ -369,7 +396,7 @@ pub(crate) fn selection_report_page(
     ids: &[String],
     outcome: &crate::select::SelectionOutcome,
     weighting: &Weighting<'_>,
-    calibration: &crate::weighting::Calibration<'_>,
+    calibration: &Calibration<'_>,
 ) -> Result<Vec<u8>, Failure> {
     let part = match (weighting.fitted(), summary.shift.as_ref()) {
         (Some(fitted), Some(section)) => Some(
@@ -411,24 +438,8 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     // Held-out fitting: the rows that fit the classifier do not calibrate.
     let calibration = weighting.calibration(&labeled);
     status.step("scores, p-values and selection");
-    let outcome = select_or_explain(
-        &config,
-        LabeledInput {
-            outcome: &calibration.outcome,
-            prediction: &calibration.prediction,
-            thresholds: match (&calibration.threshold, config.threshold) {
-                (Some(column), _) => Thresholds::PerUnit(column),
-                (None, Some(c)) => Thresholds::Constant(c),
-                (None, None) => unreachable!("clap requires --threshold or --threshold-column"),
-            },
-            weights: calibration.weights.as_deref(),
-        },
-        PoolInput {
-            prediction: &pool.prediction,
-            thresholds: thresholds_of(&pool, config.threshold),
-            weights: weighting.pool_weights(),
-        },
-    )?;
+    let (labeled_input, pool_input) = selection_inputs(&config, &pool, &calibration, &weighting);
+    let outcome = select_or_explain(&config, labeled_input, pool_input)?;
     timer.mark("scores, p-values, selection");
     let inputs = RunInputs {
         labeled_file: config.labeled_path.display().to_string(),

@@ -10,8 +10,10 @@
 //!   `p_l^(j) = (sum_i w_i 1{V_i < Vh_l} + w_j 1{Vh_j < Vh_l}) / (W + w_j)` (`l != j`),
 //!   `p_j^(j) = 0`. First step `R1 = {j : p_j <= q K_j / m}` on the conservative p-values,
 //!   then pruning with `xi_j`: `r* = max{r : #{j in R1 : xi_j K_j <= r} >= r}`,
-//!   `R = {j in R1 : xi_j K_j <= r*}`. Finite-sample `FDR <= q m0 / m` under covariate shift
-//!   with the true weights.
+//!   `R = {j in R1 : xi_j K_j <= r*}`. Finite-sample `FDR <= q` under covariate shift with
+//!   the true weights. (design.md states `q m0 / m`; that needs a fixed set of nulls, but
+//!   here whether a unit is null is random, and simulations reach q itself: see the notes
+//!   in tests/fdr_simulation.rs and docs/validation.md.)
 //!
 //! The `K_j` are computed in `O(m log m)` in total (design.md 2.4): sort the pool scores
 //! `s_1 <= ... <= s_m`, `A(k) = sum_i w_i 1{V_i < s_k}`, `b_j` the last sorted position

@@ -183,7 +183,7 @@ pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome) -> Vec<u8> {
     header.push("never_selectable_because");
     writer.write_record(&header).expect("write to memory");
     let mut floats = ryu::Buffer::new();
-    let mut integers = itoa_buffer();
+    let mut integers = itoa::Buffer::new();
     let mut record = csv::ByteRecord::with_capacity(128, header.len());
     for (j, id) in ids.iter().enumerate() {
         record.clear();
@@ -194,9 +194,7 @@ pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome) -> Vec<u8> {
         record.push_field(bool_text(outcome.selected[j]));
         if let (Some(first), Some(count)) = (&outcome.first_step, &outcome.conditional_count) {
             record.push_field(bool_text(first[j]));
-            integers.clear();
-            let _ = write!(integers, "{}", count[j]);
-            record.push_field(integers.as_bytes());
+            record.push_field(integers.format(count[j]).as_bytes());
         }
         if outcome.unreachable[j] {
             record.push_field(unselectable_reason(outcome, j).as_bytes());
@@ -206,10 +204,6 @@ pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome) -> Vec<u8> {
         writer.write_byte_record(&record).expect("write to memory");
     }
     writer.into_inner().expect("flush to memory")
-}
-
-fn itoa_buffer() -> String {
-    String::with_capacity(20)
 }
 
 fn bool_text(value: bool) -> &'static [u8] {

@@ -13,7 +13,9 @@ use crate::fdr::{
     self, benjamini_hochberg, benjamini_yekutieli, check_fdr, conditional_calibration, Pruning,
     SelectionError,
 };
-use crate::pvalue::{pool_pvalues, CalibrationSet, PValueError, PValueKind};
+use crate::pvalue::{
+    conservative_and_randomized_pvalues, pool_pvalues, CalibrationSet, PValueError, PValueKind,
+};
 use crate::score::{labeled_scores, pool_scores, ScoreKind, Thresholds};
 
 /// Which multiple-testing procedure makes the shortlist.
@@ -298,29 +300,38 @@ pub fn run_selection(
         });
     }
 
-    let pvalues = pool_pvalues(
-        settings.pvalues,
-        &calibration,
-        &pool_v,
-        pool.weights,
-        settings.seed,
-    )?;
-    let p = pvalues.values();
-    // The BH alternative the summary quotes: BH as `--procedure bh` runs it by default, on
-    // randomized weighted p-values (same seed), so the two counts compare like for like.
-    let (bh_pvalues, bh_alternative_count) = match settings.procedure {
+    // Conditional calibration also quotes BH as `--procedure bh` runs it by default, on
+    // randomized weighted p-values (same seed), so both are computed in one pass there.
+    let (pvalues, randomized) = match settings.procedure {
         Procedure::Conditional => {
-            let randomized = pool_pvalues(
-                PValueKind::Randomized,
+            let (conservative, randomized) = conservative_and_randomized_pvalues(
                 &calibration,
                 &pool_v,
                 pool.weights,
                 settings.seed,
             )?;
-            let count = benjamini_hochberg(&randomized.values(), q)?.count;
-            (PValueKind::Randomized, count)
+            (conservative, Some(randomized))
         }
-        Procedure::Bh | Procedure::By => (settings.pvalues, benjamini_hochberg(&p, q)?.count),
+        Procedure::Bh | Procedure::By => (
+            pool_pvalues(
+                settings.pvalues,
+                &calibration,
+                &pool_v,
+                pool.weights,
+                settings.seed,
+            )?,
+            None,
+        ),
+    };
+    let p = pvalues.values();
+    // For BH and BY this is BH on their own p-values; for conditional calibration, on the
+    // randomized ones.
+    let (bh_pvalues, bh) = match &randomized {
+        Some(randomized) => (
+            PValueKind::Randomized,
+            benjamini_hochberg(&randomized.values(), q)?,
+        ),
+        None => (settings.pvalues, benjamini_hochberg(&p, q)?),
     };
 
     let mut first_step = None;
@@ -328,7 +339,7 @@ pub fn run_selection(
     let mut first_step_count = None;
     let mut pruning_draw = None;
     let selected = match settings.procedure {
-        Procedure::Bh => benjamini_hochberg(&p, q)?.selected,
+        Procedure::Bh => bh.selected.clone(),
         Procedure::By => benjamini_yekutieli(&p, q)?.selected,
         Procedure::Conditional => {
             let pruning = settings.pruning.unwrap_or(Pruning::Homogeneous);
@@ -367,7 +378,7 @@ pub fn run_selection(
         unreachable,
         selected_count,
         first_step_count,
-        bh_selected_count: bh_alternative_count,
+        bh_selected_count: bh.count,
         bh_pvalues,
         unreachable_count,
         pruning_draw,

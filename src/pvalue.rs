@@ -312,60 +312,6 @@ pub fn randomized_pvalues(
     })
 }
 
-/// Conservative and randomized p-values of the same pool in one pass: what
-/// [`conservative_pvalues`] and [`randomized_pvalues`] return, bit for bit (same formulas,
-/// same draws), with the labeled-weight sums looked up once per unit. Used where a run
-/// needs both (conditional calibration and the BH count quoted beside it).
-///
-/// # Errors
-/// As [`randomized_pvalues`].
-pub fn conservative_and_randomized_pvalues(
-    calibration: &CalibrationSet,
-    pool_scores: &[f64],
-    pool_weights: Option<&[f64]>,
-    seed: u64,
-) -> Result<(PoolPValues, PoolPValues), PValueError> {
-    check_pool(pool_scores, pool_weights)?;
-    let total = calibration.total_weight();
-    let m = pool_scores.len();
-    let mut conservative = vec![0.0; m];
-    let mut randomized = vec![0.0; m];
-    let mut denominator = vec![0.0; m];
-    const CHUNK: usize = 1 << 14; // as in randomized_pvalues: draw j is 64-bit output j
-    conservative
-        .par_chunks_mut(CHUNK)
-        .zip(randomized.par_chunks_mut(CHUNK))
-        .zip(denominator.par_chunks_mut(CHUNK))
-        .enumerate()
-        .for_each(|(c, ((cons, rand_part), dens))| {
-            let first = c * CHUNK;
-            let mut rng: ChaCha20Rng = stream(seed, Stream::PValueTies);
-            rng.set_word_pos(2 * first as u128);
-            for (offset, ((a, r), d)) in cons.iter_mut().zip(rand_part).zip(dens).enumerate() {
-                let j = first + offset;
-                let v = pool_scores[j];
-                let w = weight_of(pool_weights, j);
-                let below = calibration.weight_below(v);
-                let at_or_below = calibration.weight_at_or_below(v);
-                let tied = at_or_below - below;
-                let u: f64 = rng.gen();
-                *a = at_or_below + w;
-                *r = below + u * (w + tied);
-                *d = total + w;
-            }
-        });
-    Ok((
-        PoolPValues {
-            numerator: conservative,
-            denominator: denominator.clone(),
-        },
-        PoolPValues {
-            numerator: randomized,
-            denominator,
-        },
-    ))
-}
-
 /// p-values of the chosen kind.
 ///
 /// # Errors
@@ -435,35 +381,6 @@ mod tests {
             // strict part 1/6, conservative 5/6
             assert!((1.0 / 6.0..=5.0 / 6.0).contains(&x));
         }
-    }
-
-    /// The fused pass equals the two separate functions bit for bit.
-    #[test]
-    fn fused_pass_equals_the_separate_functions() {
-        let mut rng = ChaCha20Rng::seed_from_u64(21);
-        let v: Vec<f64> = (0..300)
-            .map(|_| match rng.gen_range(0..5) {
-                0 => f64::INFINITY,
-                _ => rng.gen_range(0..20) as f64 * 0.1,
-            })
-            .collect();
-        let w: Vec<f64> = (0..300)
-            .map(|_| 10f64.powf(rng.gen_range(-3.0..3.0)))
-            .collect();
-        let cal = CalibrationSet::new(&v, Some(&w)).unwrap();
-        let vh: Vec<f64> = (0..40_000)
-            .map(|_| rng.gen_range(-2..22) as f64 * 0.1)
-            .collect();
-        let wh: Vec<f64> = (0..40_000)
-            .map(|_| 10f64.powf(rng.gen_range(-3.0..3.0)))
-            .collect();
-        let (cons, rand) = conservative_and_randomized_pvalues(&cal, &vh, Some(&wh), 8).unwrap();
-        let cons_ref = conservative_pvalues(&cal, &vh, Some(&wh)).unwrap();
-        let rand_ref = randomized_pvalues(&cal, &vh, Some(&wh), 8).unwrap();
-        assert_eq!(cons.numerator, cons_ref.numerator);
-        assert_eq!(cons.denominator, cons_ref.denominator);
-        assert_eq!(rand.numerator, rand_ref.numerator);
-        assert_eq!(rand.denominator, rand_ref.denominator);
     }
 
     /// The parallel chunks reproduce one sequential stream of draws, in input order.

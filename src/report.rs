@@ -71,7 +71,7 @@ pub struct SelectSummary {
     pub first_step_count: Option<usize>,
     /// How many BH at level `fdr` selects on the same weighted p-values.
     pub bh_selected_count: usize,
-    /// The p-values behind `bh_selected_count` (randomized for conditional calibration).
+    /// The p-values behind `bh_selected_count` (the run's own weighted p-values).
     pub bh_pvalues: &'static str,
     pub bh_note: Option<String>,
     pub unreachable_count: usize,

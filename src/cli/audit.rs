@@ -261,7 +261,7 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
     let shortlist_column = args
         .shortlist_id
         .clone()
-        .unwrap_or_else(|| args.selection.id.clone());
+        .unwrap_or_else(|| args.selection.input.id.clone());
     let shortlist_path = args.shortlist.clone();
     let config = SelectConfig::try_from(args.selection)?;
     let status = StepStatus::new(config.quiet);

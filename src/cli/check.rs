@@ -13,11 +13,11 @@ use crate::pvalue::PValueKind;
 use crate::report::{tool_info, ToolInfo};
 use crate::score::ScoreKind;
 use crate::select::{Procedure, SelectOptions};
-use crate::table::{check_same_features, read_units, OutputSet, ReadOptions, Role};
+use crate::table::{check_same_features, read_units, OutputSet, Role};
 use crate::weighting::{obtain_weights, WeightSource};
 
-use super::select::{DelimiterArg, PValuesArg, ScoreArg};
-use super::shift::{feature_selectors, weighting_failure, FitArgs};
+use super::select::{DelimiterArg, InputArgs, PValuesArg, ScoreArg};
+use super::shift::{weighting_failure, FitArgs};
 use super::{commit_outputs, print_stdout, Failure};
 
 const CHECK_HELP: &str = "\
@@ -53,34 +53,9 @@ pub enum CheckWeightsArg {
 /// Arguments of `check`.
 #[derive(Debug, Args)]
 #[command(after_long_help = CHECK_HELP)]
-#[command(group(
-    clap::ArgGroup::new("threshold_choice")
-        .args(["threshold", "threshold_column"])
-        .required(true)
-        .multiple(false)
-))]
 pub struct CheckArgs {
-    /// Labeled file: units with measured outcome, prediction and features.
-    #[arg(long, value_name = "FILE")]
-    pub labeled: PathBuf,
-    /// Pool file: read for its features only (the direction of the real shift).
-    #[arg(long, value_name = "FILE")]
-    pub pool: PathBuf,
-    /// Id column (both files).
-    #[arg(long, default_value = "id", value_name = "NAME")]
-    pub id: String,
-    /// Outcome column (labeled file only).
-    #[arg(long, default_value = "y", value_name = "NAME")]
-    pub outcome: String,
-    /// Prediction column (both files).
-    #[arg(long, default_value = "pred", value_name = "NAME")]
-    pub prediction: String,
-    /// One threshold for every unit.
-    #[arg(long, value_name = "VALUE", allow_negative_numbers = true)]
-    pub threshold: Option<f64>,
-    /// Per-unit thresholds, a column present in both files.
-    #[arg(long, value_name = "NAME")]
-    pub threshold_column: Option<String>,
+    #[command(flatten)]
+    pub input: InputArgs,
     /// Feature columns in both files: a comma list of names and/or ranges like `f1..f32`.
     #[arg(long, value_name = "LIST", required = true)]
     pub features: Vec<String>,
@@ -192,13 +167,7 @@ fn reading(outcome: &CheckOutcome, q: f64) -> Vec<String> {
 
 /// Run `check`.
 pub fn run(a: CheckArgs) -> Result<(), Failure> {
-    if let Some(c) = a.threshold {
-        if !c.is_finite() {
-            return Err(Failure::Input(format!(
-                "--threshold must be a finite number, got {c}"
-            )));
-        }
-    }
+    a.input.check_threshold()?;
     let select = SelectOptions {
         fdr: a.fdr,
         procedure: Procedure::Conditional,
@@ -219,21 +188,9 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
     };
     check_fdr.check()?;
     let params = a.fit.params(a.seed, a.fdr)?;
-    let pool_read = ReadOptions {
-        id: a.id.clone(),
-        outcome: None,
-        prediction: a.prediction.clone(),
-        threshold_column: a.threshold_column.clone(),
-        weight_column: None,
-        features: feature_selectors(&a.features),
-        delimiter: a.delimiter.map(DelimiterArg::byte),
-    };
-    let labeled_read = ReadOptions {
-        outcome: Some(a.outcome.clone()),
-        ..pool_read.clone()
-    };
-    let labeled = read_units(&a.labeled, Role::Labeled, &labeled_read)?;
-    let pool = read_units(&a.pool, Role::Pool, &pool_read)?;
+    let (labeled_read, pool_read) = a.input.read_options(None, &a.features, a.delimiter);
+    let labeled = read_units(&a.input.labeled, Role::Labeled, &labeled_read)?;
+    let pool = read_units(&a.input.pool, Role::Pool, &pool_read)?;
     check_same_features(&labeled, &pool)?;
 
     // The direction of the real shift: the classifier's log-odds at the labeled rows
@@ -245,7 +202,7 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
         &labeled,
         &pool,
     )
-    .map_err(|e| weighting_failure(e, &a.labeled, &a.pool))?;
+    .map_err(|e| weighting_failure(e, &a.input.labeled, &a.input.pool))?;
     let real_fit = real.fitted().expect("fitted weights were asked for");
     let tilt: Vec<f64> = real_fit
         .assessment
@@ -279,13 +236,13 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
             }
         }
     };
-    let outcome = calibration_check(&labeled, &tilt, a.threshold, &options, &progress)
+    let outcome = calibration_check(&labeled, &tilt, a.input.threshold, &options, &progress)
         .map_err(|e| Failure::Input(format!("calibration check: {e}")))?;
 
     let report = CheckReport {
         tool: tool_info(),
-        labeled_file: a.labeled.display().to_string(),
-        pool_file: a.pool.display().to_string(),
+        labeled_file: a.input.labeled.display().to_string(),
+        pool_file: a.input.pool.display().to_string(),
         fdr: a.fdr,
         score: select.score.name(),
         bh_pvalues: select.pvalues.unwrap_or(PValueKind::Randomized).name(),

@@ -58,9 +58,9 @@ Examples:
   weighbridge select --labeled fixtures/labeled.csv --pool fixtures/pool.csv \\
       --threshold 6.5 --fit-weights --features f1..f5 --fdr 0.1 --out shortlist";
 
-/// Command-line arguments of `select`, as typed.
+/// The input files and their columns, shared by `select` (and so `audit`, `rescreen`) and
+/// `check`.
 #[derive(Debug, Args)]
-#[command(after_long_help = SELECT_HELP)]
 // Exactly one of the two threshold flags; as a group, the error names both choices.
 #[command(group(
     clap::ArgGroup::new("threshold_choice")
@@ -68,11 +68,11 @@ Examples:
         .required(true)
         .multiple(false)
 ))]
-pub struct SelectArgs {
+pub struct InputArgs {
     /// Labeled file (CSV, or TSV by extension): units with measured outcome and prediction.
     #[arg(long, value_name = "FILE")]
     pub labeled: PathBuf,
-    /// Pool file: untested units with predictions only.
+    /// Pool file: untested units with predictions.
     #[arg(long, value_name = "FILE")]
     pub pool: PathBuf,
     /// Id column (both files).
@@ -90,6 +90,52 @@ pub struct SelectArgs {
     /// Per-unit thresholds, a column present in both files.
     #[arg(long, value_name = "NAME")]
     pub threshold_column: Option<String>,
+}
+
+impl InputArgs {
+    /// A constant threshold must be finite.
+    ///
+    /// # Errors
+    /// [`Failure::Input`] for NaN or infinite `--threshold`.
+    pub(crate) fn check_threshold(&self) -> Result<(), Failure> {
+        match self.threshold {
+            Some(c) if !c.is_finite() => Err(Failure::Input(format!(
+                "--threshold must be a finite number, got {c}"
+            ))),
+            _ => Ok(()),
+        }
+    }
+
+    /// How to read the labeled and the pool file with these columns.
+    pub(crate) fn read_options(
+        &self,
+        weight_column: Option<String>,
+        features: &[String],
+        delimiter: Option<DelimiterArg>,
+    ) -> (ReadOptions, ReadOptions) {
+        let pool = ReadOptions {
+            id: self.id.clone(),
+            outcome: None,
+            prediction: self.prediction.clone(),
+            threshold_column: self.threshold_column.clone(),
+            weight_column,
+            features: feature_selectors(features),
+            delimiter: delimiter.map(DelimiterArg::byte),
+        };
+        let labeled = ReadOptions {
+            outcome: Some(self.outcome.clone()),
+            ..pool.clone()
+        };
+        (labeled, pool)
+    }
+}
+
+/// Command-line arguments of `select`, as typed.
+#[derive(Debug, Args)]
+#[command(after_long_help = SELECT_HELP)]
+pub struct SelectArgs {
+    #[command(flatten)]
+    pub input: InputArgs,
     /// Density-ratio weights (pool / labeled), a column in both files. Without it (and
     /// without --fit-weights) every weight is 1, i.e. no shift is assumed.
     #[arg(long, value_name = "NAME")]
@@ -222,13 +268,7 @@ impl TryFrom<SelectArgs> for SelectConfig {
     type Error = Failure;
 
     fn try_from(a: SelectArgs) -> Result<Self, Failure> {
-        if let Some(c) = a.threshold {
-            if !c.is_finite() {
-                return Err(Failure::Input(format!(
-                    "--threshold must be a finite number, got {c}"
-                )));
-            }
-        }
+        a.input.check_threshold()?;
         let options = SelectOptions {
             fdr: a.fdr,
             procedure: match a.procedure {
@@ -270,25 +310,15 @@ impl TryFrom<SelectArgs> for SelectConfig {
         } else {
             WeightSource::None
         };
-        let pool_read = ReadOptions {
-            id: a.id.clone(),
-            outcome: None,
-            prediction: a.prediction.clone(),
-            threshold_column: a.threshold_column.clone(),
-            weight_column: a.weight_column.clone(),
-            features: feature_selectors(&a.features),
-            delimiter: a.delimiter.map(DelimiterArg::byte),
-        };
-        let labeled_read = ReadOptions {
-            outcome: Some(a.outcome.clone()),
-            ..pool_read.clone()
-        };
+        let (labeled_read, pool_read) =
+            a.input
+                .read_options(a.weight_column.clone(), &a.features, a.delimiter);
         Ok(SelectConfig {
-            labeled_path: a.labeled,
-            pool_path: a.pool,
+            labeled_path: a.input.labeled,
+            pool_path: a.input.pool,
             labeled_read,
             pool_read,
-            threshold: a.threshold,
+            threshold: a.input.threshold,
             options,
             weights,
             out: a.out,

@@ -25,6 +25,7 @@ use rayon::prelude::*;
 use serde::Serialize;
 use thiserror::Error;
 
+use crate::io::{Role, UnitTable};
 use crate::pvalue::PValueKind;
 use crate::random::{stream, Stream};
 use crate::score::Thresholds;
@@ -32,7 +33,6 @@ use crate::select::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };
 use crate::shift::{ShiftError, ShiftParams};
-use crate::table::{Role, UnitTable};
 use crate::weighting::{obtain_weights, WeightSource, WeightingError};
 
 /// Largest probability of sending a row to the pseudo-pool, so that every density ratio

@@ -7,7 +7,7 @@
 //! truth); the cautions ([`CAUTIONS`], verbatim); the method, with its sources.
 //!
 //! Everything here builds a `String`; writing it (atomically, with the other outputs) is the
-//! caller's job (`crate::table::OutputSet`). Every piece of user-provided text (ids, file
+//! caller's job (`crate::io::OutputSet`). Every piece of user-provided text (ids, file
 //! names, column names) goes through [`escape`].
 
 use std::fmt::Write as _;

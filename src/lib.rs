@@ -6,6 +6,7 @@ pub mod cli;
 pub mod demo;
 pub mod fdr;
 pub mod html_report;
+pub mod io;
 pub mod plots;
 pub mod pvalue;
 pub mod random;
@@ -14,5 +15,7 @@ pub mod rescreen;
 pub mod score;
 pub mod select;
 pub mod shift;
-pub mod table;
 pub mod weighting;
+
+/// Old path of [`io`].
+pub use io as table;

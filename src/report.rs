@@ -3,7 +3,7 @@
 //! assessment (`shift`, and `select --fit-weights`).
 //!
 //! Everything here turns a [`SelectionOutcome`] or a [`FittedWeights`] into bytes or text;
-//! writing the bytes to disk (atomically) is the caller's job (`crate::table::OutputSet`).
+//! writing the bytes to disk (atomically) is the caller's job (`crate::io::OutputSet`).
 
 use std::fmt::Write as _;
 

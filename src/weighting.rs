@@ -19,10 +19,10 @@ use std::borrow::Cow;
 
 use linfa::ParamGuard;
 
+use crate::io::{Role, UnitTable};
 use crate::shift::{
     assess_shift, FeatureView, FitRows, ShiftAssessment, ShiftError, ShiftOptions, ShiftParams,
 };
-use crate::table::{Role, UnitTable};
 
 /// How the weights of a run are obtained.
 #[derive(Clone, Debug, PartialEq)]
@@ -94,7 +94,7 @@ pub struct FittedWeights {
 ///
 /// # Errors
 /// [`ShiftError::NoFeatures`] when the table has no feature columns; the buffer checks of
-/// [`FeatureView::new`] (never triggered by tables from [`crate::table::read_units`]).
+/// [`FeatureView::new`] (never triggered by tables from [`crate::io::read_units`]).
 pub fn feature_view(table: &UnitTable) -> Result<FeatureView<'_>, ShiftError> {
     FeatureView::new(&table.features, table.len(), &table.feature_names)
 }
@@ -109,7 +109,7 @@ pub fn feature_view(table: &UnitTable) -> Result<FeatureView<'_>, ShiftError> {
 ///
 /// # Examples
 /// ```
-/// use weighbridge::table::{Role, UnitTable};
+/// use weighbridge::io::{Role, UnitTable};
 /// use weighbridge::weighting::{obtain_weights, WeightSource};
 /// let table = |role, rows: usize| UnitTable {
 ///     path: "x.csv".into(),

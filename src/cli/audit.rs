@@ -13,9 +13,9 @@ use serde::Serialize;
 
 use crate::audit::{audit_shortlist, AuditOutcome, POOL_PROBABILITY_LIMIT};
 use crate::html_report::{shift_part, Finding, Part, Report, Table};
+use crate::io::{read_id_list, OutputSet};
 use crate::report::shift_section;
 use crate::report::{tool_info, ToolInfo, CAUTIONS};
-use crate::table::{read_id_list, OutputSet};
 use crate::weighting::{Calibration, FittedWeights, Weighting};
 
 use super::select::{

@@ -9,11 +9,11 @@ use clap::{Args, ValueEnum};
 use serde::Serialize;
 
 use crate::check::{calibration_check, CheckOptions, CheckOutcome, CheckWeights, PI_MAX};
+use crate::io::{check_same_features, read_units, OutputSet, Role};
 use crate::pvalue::PValueKind;
 use crate::report::{tool_info, ToolInfo};
 use crate::score::ScoreKind;
 use crate::select::{Procedure, SelectOptions};
-use crate::table::{check_same_features, read_units, OutputSet, Role};
 use crate::weighting::{obtain_weights, WeightSource};
 
 use super::select::{DelimiterArg, InputArgs, PValuesArg, ScoreArg};

@@ -13,11 +13,11 @@ use crate::demo::{
     repeated_screens, spearman_correlation, DemoError, COMPARED, FEATURES, THRESHOLD,
 };
 use crate::html_report::{selection_report, shift_part, Part, Table, WeightsMethod};
+use crate::io::OutputSet;
 use crate::report::{
     add_shift, candidates_csv, select_summary, warning_line, RunInputs, ShiftSection, CAUTIONS,
 };
 use crate::shift::FeatureBalance;
-use crate::table::OutputSet;
 use crate::weighting::{fit_rows_statement, FittedWeights};
 
 use super::{commit_outputs, print_stdout, Failure, StepStatus};

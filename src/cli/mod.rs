@@ -64,8 +64,8 @@ pub enum Failure {
     Internal(String),
 }
 
-impl From<crate::table::InputError> for Failure {
-    fn from(e: crate::table::InputError) -> Self {
+impl From<crate::io::InputError> for Failure {
+    fn from(e: crate::io::InputError) -> Self {
         Failure::Input(e.to_string())
     }
 }
@@ -84,7 +84,7 @@ impl From<crate::select::SelectError> for Failure {
 
 /// Write output files all at once; a failure names the folder.
 pub(crate) fn commit_outputs(
-    set: crate::table::OutputSet,
+    set: crate::io::OutputSet,
     dir: &std::path::Path,
 ) -> Result<Vec<std::path::PathBuf>, Failure> {
     set.commit(dir).map_err(|e| {

@@ -8,10 +8,10 @@ use clap::Args;
 use serde::Serialize;
 use serde_json::Value;
 
+use crate::io::OutputSet;
 use crate::report::{add_shift, candidates_csv, select_summary, shift_section, RunInputs};
 use crate::rescreen::{compare, ChangeCounts, CurrentUnit, PreviousUnit};
 use crate::select::run_selection;
-use crate::table::OutputSet;
 
 use super::select::{
     obtain_run_weights, read_inputs, report_pointer, selection_inputs, selection_report_page,

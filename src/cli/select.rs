@@ -9,6 +9,7 @@ use clap::{Args, ValueEnum};
 
 use crate::fdr::Pruning;
 use crate::html_report::{selection_report, shift_part, WeightsMethod};
+use crate::io::{check_same_features, read_units, OutputSet, ReadOptions, Role, UnitTable};
 use crate::pvalue::PValueKind;
 use crate::report::{
     add_shift, candidates_csv, select_summary, shift_section, text_summary, RunInputs,
@@ -17,7 +18,6 @@ use crate::score::{ScoreKind, Thresholds};
 use crate::select::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };
-use crate::table::{check_same_features, read_units, OutputSet, ReadOptions, Role, UnitTable};
 use crate::weighting::{obtain_weights, Calibration, WeightSource, Weighting};
 
 use super::shift::{feature_selectors, weighting_failure, FitArgs};

@@ -11,15 +11,15 @@ use clap::{Args, ValueEnum};
 use linfa::ParamGuard;
 
 use crate::html_report::{shift_report_html, ShiftPart};
+use crate::io::{
+    check_same_features, delimiter_for, read_units, resolve_features, ColumnKind, InputError,
+    OutputSet, ReadOptions, Role, UnitTable,
+};
 use crate::plots::{balance_svg, overlap_svg, weights_svg};
 use crate::report::{
     balance_csv, shift_report, shift_section, shift_text, weights_csv, ShiftInputs,
 };
 use crate::shift::{Expansion, FitRows, ShiftError, ShiftParams};
-use crate::table::{
-    check_same_features, delimiter_for, read_units, resolve_features, ColumnKind, InputError,
-    OutputSet, ReadOptions, Role, UnitTable,
-};
 use crate::weighting::{obtain_weights, WeightSource, Weighting, WeightingError};
 
 use super::select::DelimiterArg;

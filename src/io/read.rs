@@ -1,5 +1,5 @@
-//! Reading the labeled and pool CSV/TSV files into column vectors, and writing output files
-//! atomically.
+//! Reading the labeled and pool CSV/TSV files into column vectors ([`read_units`]) and
+//! lists of ids ([`read_id_list`]): the csv reader, editor line numbers, cell parsing.
 //!
 //! Every bad input becomes an [`InputError`] naming the file, the line (1-based, the header
 //! is line 1, counted as a text editor counts them), the column, what is wrong and what to do.
@@ -13,11 +13,13 @@
 use std::collections::hash_map::Entry;
 use std::collections::{HashMap, HashSet};
 use std::fmt;
-use std::fs::{self, File, OpenOptions};
+use std::fs::File;
 use std::hash::{DefaultHasher, Hash, Hasher};
-use std::io::{self, Read, Seek, SeekFrom, Write};
+use std::io::{self, Read, Seek, SeekFrom};
 use std::path::{Path, PathBuf};
-use std::sync::atomic::{AtomicU64, Ordering};
+
+use super::columns::{ChosenColumns, Column, Header};
+use super::errors::{shown, InputError};
 
 /// Which file a table came from; used in messages ("labeled file", "pool file").
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -89,7 +91,7 @@ pub struct ReadOptions {
     /// Given density-ratio weights; every value must be finite and > 0.
     pub weight_column: Option<String>,
     /// Feature selectors, already split on commas: names or ranges "f1..f32"
-    /// (see [`resolve_features`]).
+    /// (see [`resolve_features`](super::resolve_features)).
     pub features: Vec<String>,
     /// Field delimiter. `None`: tab if the file name ends in .tsv/.tab, else comma.
     pub delimiter: Option<u8>,
@@ -148,207 +150,6 @@ impl UnitTable {
         let n = self.len();
         &self.features[f * n..(f + 1) * n]
     }
-}
-
-/// A bad input file. The message names the file, line, column, the problem and a fix.
-#[derive(Debug, thiserror::Error)]
-#[non_exhaustive]
-pub enum InputError {
-    #[error("cannot open {file}: {source}. Hint: check the path and that the file is readable.", file = .path.display())]
-    Open {
-        path: PathBuf,
-        #[source]
-        source: io::Error,
-    },
-
-    #[error("{file} line {line}: read error: {source}. Hint: check that the file is complete and readable.", file = .path.display())]
-    Read {
-        path: PathBuf,
-        line: u64,
-        #[source]
-        source: io::Error,
-    },
-
-    #[error("{file} line 1: the {role} is empty (no header row). Hint: the first line must name the columns, e.g. `id,prediction,f1,f2`.", file = .path.display())]
-    EmptyFile { path: PathBuf, role: Role },
-
-    #[error("{file} line {header_line}: the {role} has a header but no data rows. Hint: add at least one row below the header.", file = .path.display())]
-    NoRows {
-        path: PathBuf,
-        role: Role,
-        header_line: u64,
-    },
-
-    #[error("{file} line {header_line} (header): the {role} has no column `{column}` for the {what}; its columns are: {names}. Hint: {hint}", file = .path.display(), what = .kind.describe(), names = name_list(.available), hint = missing_column_hint(*.kind, .available))]
-    MissingColumn {
-        path: PathBuf,
-        role: Role,
-        header_line: u64,
-        kind: ColumnKind,
-        column: String,
-        available: Vec<String>,
-    },
-
-    #[error("{file} line {header_line} (header), column `{column}`: the name appears in fields {first_field} and {second_field}, so it is unclear which to read. Hint: give the columns unique names.", file = .path.display())]
-    DuplicateColumn {
-        path: PathBuf,
-        header_line: u64,
-        column: String,
-        first_field: usize,
-        second_field: usize,
-    },
-
-    #[error("{file} line {line}, column `{column}`: `{value}` is not a number. Hint: every {what} must be a finite number like 0.25 or 1e-3; remove or fix the row.", file = .path.display(), what = .kind.describe())]
-    NotANumber {
-        path: PathBuf,
-        line: u64,
-        column: String,
-        kind: ColumnKind,
-        value: String,
-    },
-
-    #[error("{file} line {line}, column `{column}`: `{value}` is not a finite number (NaN, infinite, or too large for a 64-bit float). Hint: every {what} must be a finite number; remove or fix the row.", file = .path.display(), what = .kind.describe())]
-    NotFinite {
-        path: PathBuf,
-        line: u64,
-        column: String,
-        kind: ColumnKind,
-        value: String,
-    },
-
-    #[error("{file} line {line}, column `{column}`: the cell is empty. Hint: every {what} is required (missing values are not filled in); fill in the value or remove the row.", file = .path.display(), what = .kind.describe())]
-    EmptyCell {
-        path: PathBuf,
-        line: u64,
-        column: String,
-        kind: ColumnKind,
-    },
-
-    #[error("{file} line {line}, column `{column}`: the id is empty. Hint: every row needs a unique, non-empty id.", file = .path.display())]
-    EmptyId {
-        path: PathBuf,
-        line: u64,
-        column: String,
-    },
-
-    #[error("{file} line {line}, column `{column}`: the cell is not valid UTF-8. Hint: save the file as UTF-8 text.", file = .path.display())]
-    InvalidUtf8 {
-        path: PathBuf,
-        line: u64,
-        column: String,
-    },
-
-    #[error("{file} line {line}, column `{column}`: id `{id}` already appears on line {first_line}. Hint: ids must be unique within a file; remove the repeated row or give it its own id.", file = .path.display())]
-    DuplicateId {
-        path: PathBuf,
-        line: u64,
-        first_line: u64,
-        column: String,
-        id: String,
-    },
-
-    #[error("{file} line {line}, column `{column}`: weight `{value}` is not positive. Hint: weights are density ratios (pool density over labeled density) and must be > 0; remove the unit rather than give it weight 0.", file = .path.display())]
-    NonPositiveWeight {
-        path: PathBuf,
-        line: u64,
-        column: String,
-        value: String,
-    },
-
-    #[error("{file} line {line}: the row has {found} fields but the header has {expected} ({detail}). Hint: quote values that contain the delimiter, and check the delimiter ({delimiter}).", file = .path.display(), detail = field_count_detail(*.found, .header), delimiter = delimiter_name(*.delimiter))]
-    FieldCount {
-        path: PathBuf,
-        line: u64,
-        expected: usize,
-        found: usize,
-        header: Vec<String>,
-        delimiter: u8,
-    },
-
-    #[error("{file} line {header_line} (header): feature selection failed: {message}. Hint: a range `f1..f32` needs every column f1, f2, ..., f32 in the header; otherwise list the feature names with --features.", file = .path.display())]
-    FeatureSelection {
-        path: PathBuf,
-        header_line: u64,
-        message: String,
-    },
-
-    #[error("the feature columns differ: labeled file {labeled_file} uses [{labeled_names}] but pool file {pool_file} uses [{pool_names}]. Hint: select the same features, in the same order, in both files.", labeled_file = .labeled_path.display(), pool_file = .pool_path.display(), labeled_names = .labeled.join(", "), pool_names = .pool.join(", "))]
-    FeatureMismatch {
-        labeled_path: PathBuf,
-        pool_path: PathBuf,
-        labeled: Vec<String>,
-        pool: Vec<String>,
-    },
-
-    #[error("{file} line {line}: the file is not valid CSV: {message}. Hint: check quoting and the delimiter.", file = .path.display())]
-    Malformed {
-        path: PathBuf,
-        line: u64,
-        message: String,
-    },
-}
-
-/// At most this many names are listed in a message.
-const LISTED_NAMES: usize = 20;
-/// Cell values longer than this many characters are cut in messages.
-const SHOWN_VALUE_CHARS: usize = 60;
-
-fn name_list(names: &[String]) -> String {
-    let mut text = names
-        .iter()
-        .take(LISTED_NAMES)
-        .map(|name| format!("`{name}`"))
-        .collect::<Vec<_>>()
-        .join(", ");
-    if names.len() > LISTED_NAMES {
-        text.push_str(&format!(" and {} more", names.len() - LISTED_NAMES));
-    }
-    text
-}
-
-fn missing_column_hint(kind: ColumnKind, available: &[String]) -> String {
-    let mut hint = format!(
-        "name the {} column with {} (names are case-sensitive).",
-        kind.describe(),
-        kind.flag()
-    );
-    if available.len() == 1 {
-        hint.push_str(
-            " The header has a single column: if the file uses another delimiter, pass it with --delimiter.",
-        );
-    }
-    hint
-}
-
-fn field_count_detail(found: usize, header: &[String]) -> String {
-    if found < header.len() {
-        format!("no value for {}", name_list(&header[found..]))
-    } else {
-        format!(
-            "{} extra after column `{}`",
-            found - header.len(),
-            header.last().map_or("", String::as_str)
-        )
-    }
-}
-
-fn delimiter_name(delimiter: u8) -> String {
-    match delimiter {
-        b'\t' => "tab".to_string(),
-        b',' => "comma".to_string(),
-        other => format!("`{}`", other.escape_ascii()),
-    }
-}
-
-/// A cell as shown in messages: lossy UTF-8, cut after [`SHOWN_VALUE_CHARS`] characters.
-fn shown(cell: &[u8]) -> String {
-    let text = String::from_utf8_lossy(cell);
-    let mut chars = text.chars();
-    let mut out: String = chars.by_ref().take(SHOWN_VALUE_CHARS).collect();
-    if chars.next().is_some() {
-        out.push('…');
-    }
-    out
 }
 
 /// The field delimiter for `path`: `explicit` if given, else tab for names ending in
@@ -455,57 +256,6 @@ fn csv_error(
             line,
             message: format!("{other:?}"),
         },
-    }
-}
-
-/// A column chosen from the header.
-#[derive(Clone, Debug)]
-struct Column {
-    index: usize,
-    name: String,
-    kind: ColumnKind,
-}
-
-/// Header facts every column lookup needs.
-struct Header<'a> {
-    path: &'a Path,
-    role: Role,
-    line: u64,
-    names: Vec<String>,
-}
-
-impl Header<'_> {
-    fn column(&self, name: &str, kind: ColumnKind) -> Result<Column, InputError> {
-        let mut matches = self
-            .names
-            .iter()
-            .enumerate()
-            .filter(|(_, header_name)| header_name.as_str() == name)
-            .map(|(index, _)| index);
-        let Some(index) = matches.next() else {
-            return Err(InputError::MissingColumn {
-                path: self.path.to_path_buf(),
-                role: self.role,
-                header_line: self.line,
-                kind,
-                column: name.to_string(),
-                available: self.names.clone(),
-            });
-        };
-        if let Some(second) = matches.next() {
-            return Err(InputError::DuplicateColumn {
-                path: self.path.to_path_buf(),
-                header_line: self.line,
-                column: name.to_string(),
-                first_field: index + 1,
-                second_field: second + 1,
-            });
-        }
-        Ok(Column {
-            index,
-            name: name.to_string(),
-            kind,
-        })
     }
 }
 
@@ -659,14 +409,6 @@ fn id_cell(path: &Path, record: &csv::ByteRecord, column: &Column) -> Result<Str
     }
 }
 
-fn optional_column(
-    header: &Header<'_>,
-    name: Option<&String>,
-    kind: ColumnKind,
-) -> Result<Option<Column>, InputError> {
-    name.map(|name| header.column(name, kind)).transpose()
-}
-
 /// Read one file of units.
 ///
 /// Reads the whole file into memory: about 8 bytes per number plus the ids.
@@ -679,6 +421,26 @@ fn optional_column(
 /// empty, NaN or infinite cell, empty or non-UTF-8 id, duplicate id, weight <= 0, wrong
 /// number of fields, feature selection that does not resolve.
 pub fn read_units(path: &Path, role: Role, options: &ReadOptions) -> Result<UnitTable, InputError> {
+    let (mut reader, delimiter, file_len) = open_table(path, options.delimiter)?;
+    let header = read_header(&mut reader, path, role, delimiter)?;
+    let columns = header.choose_columns(options)?;
+    let rows = read_rows(
+        &mut reader,
+        path,
+        delimiter,
+        &header.names,
+        &columns,
+        file_len,
+    )?;
+    finish_table(path, role, delimiter, header.line, columns, rows)
+}
+
+/// Open `path` for reading (not a directory) with the delimiter it gets; also returns the
+/// file length, from which the row count is estimated.
+fn open_table(
+    path: &Path,
+    explicit_delimiter: Option<u8>,
+) -> Result<(csv::Reader<File>, u8, u64), InputError> {
     let open_error = |source| InputError::Open {
         path: path.to_path_buf(),
         source,
@@ -691,9 +453,17 @@ pub fn read_units(path: &Path, role: Role, options: &ReadOptions) -> Result<Unit
         )));
     }
     let file_len = metadata.len();
-    let delimiter = delimiter_for(path, options.delimiter);
-    let mut reader = csv_reader(delimiter, file);
+    let delimiter = delimiter_for(path, explicit_delimiter);
+    Ok((csv_reader(delimiter, file), delimiter, file_len))
+}
 
+/// The header row: its editor line and its names, trimmed (each must be UTF-8).
+fn read_header<'a>(
+    reader: &mut csv::Reader<File>,
+    path: &'a Path,
+    role: Role,
+    delimiter: u8,
+) -> Result<Header<'a>, InputError> {
     let header_record = reader
         .byte_headers()
         .map_err(|error| csv_error(path, delimiter, &[], 1, error))?
@@ -720,45 +490,91 @@ pub fn read_units(path: &Path, role: Role, options: &ReadOptions) -> Result<Unit
             }
         }
     }
-    let header = Header {
+    Ok(Header {
         path,
         role,
         line: header_line,
         names,
-    };
+    })
+}
 
-    let id_column = header.column(&options.id, ColumnKind::Id)?;
-    let prediction_column = header.column(&options.prediction, ColumnKind::Prediction)?;
-    let outcome_column = match role {
-        Role::Labeled => optional_column(&header, options.outcome.as_ref(), ColumnKind::Outcome)?,
-        Role::Pool | Role::Shortlist => None,
-    };
-    let threshold_column = optional_column(
-        &header,
-        options.threshold_column.as_ref(),
-        ColumnKind::Threshold,
-    )?;
-    let weight_column =
-        optional_column(&header, options.weight_column.as_ref(), ColumnKind::Weight)?;
-    let feature_names = resolve_features(&options.features, &header.names).map_err(|message| {
-        InputError::FeatureSelection {
-            path: path.to_path_buf(),
-            header_line,
-            message,
+/// The chosen columns' values, gathered row by row.
+struct Rows {
+    ids: Vec<String>,
+    prediction: Vec<f64>,
+    outcome: Vec<f64>,
+    threshold: Vec<f64>,
+    weight: Vec<f64>,
+    features: FeatureBuffer,
+}
+
+impl Rows {
+    fn new(feature_count: usize) -> Self {
+        Rows {
+            ids: Vec::new(),
+            prediction: Vec::new(),
+            outcome: Vec::new(),
+            threshold: Vec::new(),
+            weight: Vec::new(),
+            features: FeatureBuffer::new(feature_count),
         }
-    })?;
-    let feature_columns = feature_names
-        .iter()
-        .map(|name| header.column(name, ColumnKind::Feature))
-        .collect::<Result<Vec<_>, _>>()?;
+    }
 
-    let mut ids: Vec<String> = Vec::new();
-    let mut prediction: Vec<f64> = Vec::new();
-    let mut outcome: Vec<f64> = Vec::new();
-    let mut threshold: Vec<f64> = Vec::new();
-    let mut weight: Vec<f64> = Vec::new();
-    let mut features = FeatureBuffer::new(feature_columns.len());
+    /// Size every chosen column for `estimate` rows.
+    fn reserve(&mut self, estimate: usize, columns: &ChosenColumns) {
+        self.ids.reserve(estimate);
+        self.prediction.reserve(estimate);
+        if columns.outcome.is_some() {
+            self.outcome.reserve(estimate);
+        }
+        if columns.threshold.is_some() {
+            self.threshold.reserve(estimate);
+        }
+        if columns.weight.is_some() {
+            self.weight.reserve(estimate);
+        }
+        self.features.reserve_rows(estimate);
+    }
 
+    /// Parse one record's chosen cells (id, prediction, outcome, threshold, weight, features,
+    /// in that order, so the first bad cell is the one reported).
+    fn push(
+        &mut self,
+        path: &Path,
+        record: &csv::ByteRecord,
+        columns: &ChosenColumns,
+    ) -> Result<(), InputError> {
+        self.ids.push(id_cell(path, record, &columns.id)?);
+        self.prediction
+            .push(number_cell(path, record, &columns.prediction)?);
+        if let Some(column) = &columns.outcome {
+            self.outcome.push(number_cell(path, record, column)?);
+        }
+        if let Some(column) = &columns.threshold {
+            self.threshold.push(number_cell(path, record, column)?);
+        }
+        if let Some(column) = &columns.weight {
+            self.weight.push(weight_cell(path, record, column)?);
+        }
+        self.features.start_row();
+        for (f, column) in columns.features.iter().enumerate() {
+            self.features.set(f, number_cell(path, record, column)?);
+        }
+        self.features.finish_row();
+        Ok(())
+    }
+}
+
+/// Read every data row, checking each chosen cell.
+fn read_rows(
+    reader: &mut csv::Reader<File>,
+    path: &Path,
+    delimiter: u8,
+    header_names: &[String],
+    columns: &ChosenColumns,
+    file_len: u64,
+) -> Result<Rows, InputError> {
+    let mut rows = Rows::new(columns.features.len());
     let mut record = csv::ByteRecord::new();
     loop {
         match reader.read_byte_record(&mut record) {
@@ -769,50 +585,42 @@ pub fn read_units(path: &Path, role: Role, options: &ReadOptions) -> Result<Unit
                 return Err(csv_error(
                     path,
                     delimiter,
-                    &header.names,
+                    header_names,
                     reached_line,
                     error,
                 ));
             }
         }
-        if ids.is_empty() {
+        if rows.ids.is_empty() {
             // Size every column from the file length and this row's length; generous,
             // since untouched capacity is never paged in.
             let row_bytes = (record.as_slice().len() + record.len()).max(1) as u64;
             let estimate = (file_len / row_bytes).saturating_mul(5) / 4 + 16;
             let estimate = estimate.min(file_len / 2 + 16) as usize;
-            ids.reserve(estimate);
-            prediction.reserve(estimate);
-            if outcome_column.is_some() {
-                outcome.reserve(estimate);
-            }
-            if threshold_column.is_some() {
-                threshold.reserve(estimate);
-            }
-            if weight_column.is_some() {
-                weight.reserve(estimate);
-            }
-            features.reserve_rows(estimate);
+            rows.reserve(estimate, columns);
         }
-
-        ids.push(id_cell(path, &record, &id_column)?);
-        prediction.push(number_cell(path, &record, &prediction_column)?);
-        if let Some(column) = &outcome_column {
-            outcome.push(number_cell(path, &record, column)?);
-        }
-        if let Some(column) = &threshold_column {
-            threshold.push(number_cell(path, &record, column)?);
-        }
-        if let Some(column) = &weight_column {
-            weight.push(weight_cell(path, &record, column)?);
-        }
-        features.start_row();
-        for (f, column) in feature_columns.iter().enumerate() {
-            features.set(f, number_cell(path, &record, column)?);
-        }
-        features.finish_row();
+        rows.push(path, &record, columns)?;
     }
+    Ok(rows)
+}
 
+/// Check the rows as a whole (at least one, ids unique) and build the table.
+fn finish_table(
+    path: &Path,
+    role: Role,
+    delimiter: u8,
+    header_line: u64,
+    columns: ChosenColumns,
+    rows: Rows,
+) -> Result<UnitTable, InputError> {
+    let Rows {
+        mut ids,
+        mut prediction,
+        outcome,
+        threshold,
+        weight,
+        features,
+    } = rows;
     if ids.is_empty() {
         return Err(InputError::NoRows {
             path: path.to_path_buf(),
@@ -826,7 +634,7 @@ pub fn read_units(path: &Path, role: Role, options: &ReadOptions) -> Result<Unit
             path: path.to_path_buf(),
             line: lines[1],
             first_line: lines[0],
-            column: id_column.name,
+            column: columns.id.name,
             id: shown(ids[row].as_bytes()),
         });
     }
@@ -843,11 +651,11 @@ pub fn read_units(path: &Path, role: Role, options: &ReadOptions) -> Result<Unit
         path: path.to_path_buf(),
         role,
         ids,
-        outcome: finish(outcome, &outcome_column),
+        outcome: finish(outcome, &columns.outcome),
         prediction,
-        threshold: finish(threshold, &threshold_column),
-        weight: finish(weight, &weight_column),
-        feature_names,
+        threshold: finish(threshold, &columns.threshold),
+        weight: finish(weight, &columns.weight),
+        feature_names: columns.feature_names,
         features: features.into_column_major(),
     })
 }
@@ -911,74 +719,6 @@ fn row_lines(path: &Path, delimiter: u8, rows: &[usize]) -> Vec<u64> {
         row += 1;
     }
     lines
-}
-
-/// Split "f12" into ("f", 12). `None` without a numeric suffix or on overflow.
-fn numeric_suffix(name: &str) -> Option<(&str, u64)> {
-    let prefix = name.trim_end_matches(|c: char| c.is_ascii_digit());
-    let digits = &name[prefix.len()..];
-    if digits.is_empty() {
-        return None;
-    }
-    digits.parse().ok().map(|number| (prefix, number))
-}
-
-fn expand_range(
-    selector: &str,
-    from: &str,
-    to: &str,
-    header: &[String],
-) -> Result<Vec<String>, String> {
-    let (prefix, start) = numeric_suffix(from)
-        .ok_or_else(|| format!("range `{selector}`: `{from}` does not end in a number"))?;
-    let (end_prefix, end) = numeric_suffix(to)
-        .ok_or_else(|| format!("range `{selector}`: `{to}` does not end in a number"))?;
-    if prefix != end_prefix {
-        return Err(format!(
-            "range `{selector}`: both ends must share one prefix, got `{prefix}` and `{end_prefix}`"
-        ));
-    }
-    if start > end {
-        return Err(format!(
-            "range `{selector}` runs backwards; write `{to}..{from}`"
-        ));
-    }
-    let count = end - start + 1;
-    if count > header.len() as u64 {
-        return Err(format!(
-            "range `{selector}` covers {count} columns but the header has only {}",
-            header.len()
-        ));
-    }
-    let mut by_number: HashMap<u64, Vec<&str>> = HashMap::new();
-    for name in header {
-        if let Some((name_prefix, number)) = numeric_suffix(name) {
-            if name_prefix == prefix && (start..=end).contains(&number) {
-                by_number.entry(number).or_default().push(name);
-            }
-        }
-    }
-    let mut names = Vec::with_capacity(count as usize);
-    let mut missing = Vec::new();
-    for number in start..=end {
-        match by_number.get(&number).map(Vec::as_slice) {
-            None | Some([]) => missing.push(format!("{prefix}{number}")),
-            Some([name]) => names.push(name.to_string()),
-            Some(several) => {
-                return Err(format!(
-                    "range `{selector}`: number {number} matches several columns: {}",
-                    several.join(", ")
-                ))
-            }
-        }
-    }
-    if !missing.is_empty() {
-        return Err(format!(
-            "range `{selector}`: the header lacks {}",
-            name_list(&missing)
-        ));
-    }
-    Ok(names)
 }
 
 /// Read a list of ids (one per data row) from column `column` of a CSV/TSV file, e.g. a
@@ -1062,224 +802,14 @@ pub fn read_id_list(
     Ok(ids)
 }
 
-/// Expand feature selectors against a header.
-///
-/// A selector is a column name, or a range `f1..f5` meaning every header name with the same
-/// prefix and numeric suffix 1, 2, ..., 5 (compared as numbers, so `f01` counts as 1), each
-/// of which must exist. A selector that is itself a header name is taken as a name even if
-/// it contains `..`. Selectors are trimmed; the result keeps the order given. Plain names are
-/// not checked against the header here ([`read_units`] reports them as missing columns).
-///
-/// # Errors
-/// An empty selector, a range that does not resolve (missing member, different prefixes,
-/// no numeric suffix, backwards, ambiguous), or a feature selected twice.
-pub fn resolve_features(selectors: &[String], header: &[String]) -> Result<Vec<String>, String> {
-    let mut chosen: Vec<String> = Vec::new();
-    let mut selected_by: HashMap<String, String> = HashMap::new();
-    for raw in selectors {
-        let selector = raw.trim();
-        if selector.is_empty() {
-            return Err(
-                "empty feature name in the feature list (a doubled or trailing comma?)".to_string(),
-            );
-        }
-        let names = match selector.split_once("..") {
-            Some((from, to)) if !header.iter().any(|name| name == selector) => {
-                expand_range(selector, from.trim(), to.trim(), header)?
-            }
-            _ => vec![selector.to_string()],
-        };
-        for name in names {
-            match selected_by.entry(name.clone()) {
-                Entry::Occupied(earlier) => {
-                    return Err(format!(
-                        "feature `{name}` is selected twice (by `{}` and by `{selector}`)",
-                        earlier.get()
-                    ))
-                }
-                Entry::Vacant(slot) => {
-                    slot.insert(selector.to_string());
-                }
-            }
-            chosen.push(name);
-        }
-    }
-    Ok(chosen)
-}
-
-/// Check that the labeled and pool tables chose the same feature columns (same order).
-///
-/// # Errors
-/// [`InputError::FeatureMismatch`] listing both choices.
-pub fn check_same_features(labeled: &UnitTable, pool: &UnitTable) -> Result<(), InputError> {
-    if labeled.feature_names == pool.feature_names {
-        return Ok(());
-    }
-    Err(InputError::FeatureMismatch {
-        labeled_path: labeled.path.clone(),
-        pool_path: pool.path.clone(),
-        labeled: labeled.feature_names.clone(),
-        pool: pool.feature_names.clone(),
-    })
-}
-
-static TEMP_COUNTER: AtomicU64 = AtomicU64::new(0);
-
-/// Write `bytes` to a new hidden temporary file next to the target and fsync it.
-fn write_temp(dir: &Path, file_name: &str, bytes: &[u8]) -> io::Result<PathBuf> {
-    let process = std::process::id();
-    loop {
-        let count = TEMP_COUNTER.fetch_add(1, Ordering::Relaxed);
-        let temp = dir.join(format!(".{file_name}.{process}-{count}.tmp"));
-        let mut file = match OpenOptions::new().write(true).create_new(true).open(&temp) {
-            Ok(file) => file,
-            Err(error) if error.kind() == io::ErrorKind::AlreadyExists => continue,
-            Err(error) => return Err(error),
-        };
-        let written = file.write_all(bytes).and_then(|()| file.sync_all());
-        return match written {
-            Ok(()) => Ok(temp),
-            Err(error) => {
-                let _ = fs::remove_file(&temp);
-                Err(error)
-            }
-        };
-    }
-}
-
-/// Make renames in `dir` durable. Best effort: not every platform can fsync a directory.
-fn sync_dir(dir: &Path) {
-    if let Ok(handle) = File::open(dir) {
-        let _ = handle.sync_all();
-    }
-}
-
-fn parent_dir(path: &Path) -> &Path {
-    match path.parent() {
-        Some(parent) if !parent.as_os_str().is_empty() => parent,
-        _ => Path::new("."),
-    }
-}
-
-/// Write a file atomically: write to a temporary file in the same directory, fsync, rename.
-///
-/// Readers see either the old file or the complete new one, never a partial write; on error
-/// the temporary file is removed. The directory must exist.
-///
-/// # Errors
-/// I/O errors from creating, writing or renaming; `InvalidInput` if `path` has no file name.
-pub fn write_atomic(path: &Path, bytes: &[u8]) -> io::Result<()> {
-    let file_name = path
-        .file_name()
-        .and_then(|name| name.to_str())
-        .ok_or_else(|| {
-            io::Error::new(
-                io::ErrorKind::InvalidInput,
-                format!("cannot write {}: no UTF-8 file name", path.display()),
-            )
-        })?;
-    let dir = parent_dir(path);
-    let temp = write_temp(dir, file_name, bytes)?;
-    if let Err(error) = fs::rename(&temp, path) {
-        let _ = fs::remove_file(&temp);
-        return Err(error);
-    }
-    sync_dir(dir);
-    Ok(())
-}
-
-/// A set of output files that are all written or none.
-///
-/// [`OutputSet::add`] collects files in memory; [`OutputSet::commit`] writes each to a
-/// temporary name, and only when all are written and synced renames them into place. A
-/// failure while writing leaves no file behind. (The renames themselves are separate
-/// operations; within one directory they do not fail in practice.)
-#[derive(Debug, Default)]
-pub struct OutputSet {
-    files: Vec<(String, Vec<u8>)>,
-}
-
-impl OutputSet {
-    pub fn new() -> Self {
-        OutputSet::default()
-    }
-
-    /// Stage a file. A later `add` with the same name replaces the earlier bytes.
-    pub fn add(&mut self, file_name: &str, bytes: Vec<u8>) {
-        match self.files.iter_mut().find(|(name, _)| name == file_name) {
-            Some(slot) => slot.1 = bytes,
-            None => self.files.push((file_name.to_string(), bytes)),
-        }
-    }
-
-    /// Names of the staged files, in the order first added.
-    pub fn file_names(&self) -> impl Iterator<Item = &str> {
-        self.files.iter().map(|(name, _)| name.as_str())
-    }
-
-    /// Create `dir` if needed, write every file to a temporary name, then rename them all.
-    /// Returns the final paths in the order first added.
-    ///
-    /// # Errors
-    /// `InvalidInput` for a file name that is empty, `.`/`..` or contains a path separator
-    /// (checked before anything is written); I/O errors from writing or renaming.
-    pub fn commit(self, dir: &Path) -> io::Result<Vec<PathBuf>> {
-        for (name, _) in &self.files {
-            let bad =
-                name.is_empty() || name == "." || name == ".." || name.contains(['/', '\\', '\0']);
-            if bad {
-                return Err(io::Error::new(
-                    io::ErrorKind::InvalidInput,
-                    format!("output file name `{name}` must be a plain file name"),
-                ));
-            }
-        }
-        fs::create_dir_all(dir)?;
-        // A directory in the way would make its rename fail after earlier files were
-        // renamed; refuse before writing anything.
-        for (name, _) in &self.files {
-            let target = dir.join(name);
-            if target.is_dir() {
-                return Err(io::Error::other(format!(
-                    "cannot write {}: a directory of that name exists",
-                    target.display()
-                )));
-            }
-        }
-        let mut temps: Vec<PathBuf> = Vec::with_capacity(self.files.len());
-        for (name, bytes) in &self.files {
-            match write_temp(dir, name, bytes) {
-                Ok(temp) => temps.push(temp),
-                Err(error) => {
-                    for temp in &temps {
-                        let _ = fs::remove_file(temp);
-                    }
-                    return Err(error);
-                }
-            }
-        }
-        let mut finals = Vec::with_capacity(self.files.len());
-        for (i, ((name, _), temp)) in self.files.iter().zip(&temps).enumerate() {
-            let target = dir.join(name);
-            if let Err(error) = fs::rename(temp, &target) {
-                for leftover in &temps[i..] {
-                    let _ = fs::remove_file(leftover);
-                }
-                return Err(error);
-            }
-            finals.push(target);
-        }
-        sync_dir(dir);
-        Ok(finals)
-    }
-}
-
 #[cfg(test)]
 mod tests {
     //! Expected numbers come from Rust's own `str::parse::<f64>` ("Rust std as reference");
     //! expected line numbers are counted by hand in the fixture text, the way a text editor
     //! numbers lines (header = line 1).
     use super::*;
+    use crate::io::columns::check_same_features;
+    use std::fs;
     use tempfile::TempDir;
 
     fn write(dir: &TempDir, name: &str, content: &[u8]) -> PathBuf {
@@ -2089,133 +1619,5 @@ mod tests {
                 .collect();
             assert_same_as_std(&junk);
         }
-    }
-
-    // ---- feature selectors ----
-
-    fn names(list: &[&str]) -> Vec<String> {
-        list.iter().map(|s| s.to_string()).collect()
-    }
-
-    #[test]
-    fn feature_ranges_expand_by_numeric_suffix() {
-        let header = names(&["id", "pred", "f1", "f2", "f3", "f10", "g1", "x..y"]);
-        let resolve = |selectors: &[&str]| resolve_features(&names(selectors), &header);
-        assert_eq!(resolve(&["f1..f3"]).unwrap(), ["f1", "f2", "f3"]);
-        assert_eq!(resolve(&["f3", " f1..f2 "]).unwrap(), ["f3", "f1", "f2"]);
-        assert_eq!(resolve(&["f2..f2", "g1"]).unwrap(), ["f2", "g1"]);
-        assert_eq!(resolve(&["x..y"]).unwrap(), ["x..y"]);
-        assert_eq!(resolve(&[]).unwrap(), Vec::<String>::new());
-        // Plain names pass through; read_units reports the missing ones.
-        assert_eq!(resolve(&["not_there"]).unwrap(), ["not_there"]);
-        // Zero-padded names match by number.
-        let padded = names(&["f01", "f02", "f03"]);
-        assert_eq!(
-            resolve_features(&names(&["f1..f3"]), &padded).unwrap(),
-            ["f01", "f02", "f03"]
-        );
-        assert_eq!(
-            resolve_features(&names(&["f02..f03"]), &padded).unwrap(),
-            ["f02", "f03"]
-        );
-    }
-
-    #[test]
-    fn feature_ranges_that_fail() {
-        let header = names(&["id", "f1", "f3", "f4", "g2", "h1", "h01"]);
-        let fails = |selectors: &[&str], needle: &str| {
-            let message = resolve_features(&names(selectors), &header).unwrap_err();
-            assert!(message.contains(needle), "{selectors:?}: {message}");
-        };
-        fails(&["f1..f3"], "`f2`");
-        fails(&["f1..g2"], "prefix");
-        fails(&["f4..f1"], "backwards");
-        fails(&["f..f3"], "does not end in a number");
-        fails(&["h1..h1"], "several columns");
-        fails(&["f1", "f1"], "selected twice");
-        fails(&["f3..f4", "f4"], "`f4` is selected twice");
-        fails(&["f1", ""], "empty feature name");
-        fails(&["f1..f99999999999999"], "covers");
-    }
-
-    // ---- writing ----
-
-    fn leftovers(dir: &Path) -> Vec<String> {
-        fs::read_dir(dir)
-            .unwrap()
-            .map(|entry| entry.unwrap().file_name().to_string_lossy().into_owned())
-            .filter(|name| name.ends_with(".tmp"))
-            .collect()
-    }
-
-    #[test]
-    fn write_atomic_replaces_and_leaves_no_temporary_file() {
-        let dir = TempDir::new().unwrap();
-        let path = dir.path().join("summary.json");
-        write_atomic(&path, b"first").unwrap();
-        write_atomic(&path, b"second").unwrap();
-        assert_eq!(fs::read(&path).unwrap(), b"second");
-        assert!(leftovers(dir.path()).is_empty());
-        assert_eq!(fs::read_dir(dir.path()).unwrap().count(), 1);
-
-        let missing = dir.path().join("no_such_dir").join("x.csv");
-        assert!(write_atomic(&missing, b"x").is_err());
-        assert!(!missing.exists());
-
-        // The target is a directory: the rename fails and the temporary file is removed.
-        let blocked = dir.path().join("blocked");
-        fs::create_dir(&blocked).unwrap();
-        fs::write(blocked.join("inside"), b"x").unwrap();
-        assert!(write_atomic(&blocked, b"x").is_err());
-        assert!(leftovers(dir.path()).is_empty());
-    }
-
-    #[test]
-    fn output_set_writes_every_file() {
-        let dir = TempDir::new().unwrap();
-        let out = dir.path().join("results").join("run1");
-        let mut set = OutputSet::new();
-        set.add("candidates.csv", b"id,p\n".to_vec());
-        set.add("summary.json", b"{}".to_vec());
-        set.add("candidates.csv", b"id,p\na,0.5\n".to_vec());
-        assert_eq!(
-            set.file_names().collect::<Vec<_>>(),
-            ["candidates.csv", "summary.json"]
-        );
-        let written = set.commit(&out).unwrap();
-        assert_eq!(
-            written,
-            [out.join("candidates.csv"), out.join("summary.json")]
-        );
-        assert_eq!(fs::read(&written[0]).unwrap(), b"id,p\na,0.5\n");
-        assert_eq!(fs::read(&written[1]).unwrap(), b"{}");
-        assert!(leftovers(&out).is_empty());
-        assert_eq!(fs::read_dir(&out).unwrap().count(), 2);
-    }
-
-    #[test]
-    fn output_set_writes_nothing_when_a_name_is_bad() {
-        for bad in ["", "..", "sub/file.csv"] {
-            let dir = TempDir::new().unwrap();
-            let out = dir.path().join("out");
-            let mut set = OutputSet::new();
-            set.add("good.csv", b"x".to_vec());
-            set.add(bad, b"y".to_vec());
-            let error = set.commit(&out).unwrap_err();
-            assert_eq!(error.kind(), io::ErrorKind::InvalidInput);
-            assert!(!out.exists(), "nothing may be created for {bad:?}");
-        }
-    }
-
-    #[test]
-    fn output_set_writes_nothing_when_a_target_is_a_directory() {
-        let dir = TempDir::new().unwrap();
-        fs::create_dir(dir.path().join("report.html")).unwrap();
-        let mut set = OutputSet::new();
-        set.add("candidates.csv", b"x".to_vec());
-        set.add("report.html", b"y".to_vec());
-        assert!(set.commit(dir.path()).is_err());
-        assert!(!dir.path().join("candidates.csv").exists());
-        assert!(leftovers(dir.path()).is_empty());
     }
 }

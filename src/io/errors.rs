@@ -1,0 +1,211 @@
+//! The error every bad input file becomes ([`InputError`]) and the helpers that word its
+//! messages (name lists, hints, delimiter names, cut-off cell values).
+//!
+//! Every message names the file, the line (1-based, the header is line 1, counted as a text
+//! editor counts them), the column, what is wrong and what to do.
+
+use std::io;
+use std::path::PathBuf;
+
+use super::read::{ColumnKind, Role};
+
+/// A bad input file. The message names the file, line, column, the problem and a fix.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum InputError {
+    #[error("cannot open {file}: {source}. Hint: check the path and that the file is readable.", file = .path.display())]
+    Open {
+        path: PathBuf,
+        #[source]
+        source: io::Error,
+    },
+
+    #[error("{file} line {line}: read error: {source}. Hint: check that the file is complete and readable.", file = .path.display())]
+    Read {
+        path: PathBuf,
+        line: u64,
+        #[source]
+        source: io::Error,
+    },
+
+    #[error("{file} line 1: the {role} is empty (no header row). Hint: the first line must name the columns, e.g. `id,prediction,f1,f2`.", file = .path.display())]
+    EmptyFile { path: PathBuf, role: Role },
+
+    #[error("{file} line {header_line}: the {role} has a header but no data rows. Hint: add at least one row below the header.", file = .path.display())]
+    NoRows {
+        path: PathBuf,
+        role: Role,
+        header_line: u64,
+    },
+
+    #[error("{file} line {header_line} (header): the {role} has no column `{column}` for the {what}; its columns are: {names}. Hint: {hint}", file = .path.display(), what = .kind.describe(), names = name_list(.available), hint = missing_column_hint(*.kind, .available))]
+    MissingColumn {
+        path: PathBuf,
+        role: Role,
+        header_line: u64,
+        kind: ColumnKind,
+        column: String,
+        available: Vec<String>,
+    },
+
+    #[error("{file} line {header_line} (header), column `{column}`: the name appears in fields {first_field} and {second_field}, so it is unclear which to read. Hint: give the columns unique names.", file = .path.display())]
+    DuplicateColumn {
+        path: PathBuf,
+        header_line: u64,
+        column: String,
+        first_field: usize,
+        second_field: usize,
+    },
+
+    #[error("{file} line {line}, column `{column}`: `{value}` is not a number. Hint: every {what} must be a finite number like 0.25 or 1e-3; remove or fix the row.", file = .path.display(), what = .kind.describe())]
+    NotANumber {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        kind: ColumnKind,
+        value: String,
+    },
+
+    #[error("{file} line {line}, column `{column}`: `{value}` is not a finite number (NaN, infinite, or too large for a 64-bit float). Hint: every {what} must be a finite number; remove or fix the row.", file = .path.display(), what = .kind.describe())]
+    NotFinite {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        kind: ColumnKind,
+        value: String,
+    },
+
+    #[error("{file} line {line}, column `{column}`: the cell is empty. Hint: every {what} is required (missing values are not filled in); fill in the value or remove the row.", file = .path.display(), what = .kind.describe())]
+    EmptyCell {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        kind: ColumnKind,
+    },
+
+    #[error("{file} line {line}, column `{column}`: the id is empty. Hint: every row needs a unique, non-empty id.", file = .path.display())]
+    EmptyId {
+        path: PathBuf,
+        line: u64,
+        column: String,
+    },
+
+    #[error("{file} line {line}, column `{column}`: the cell is not valid UTF-8. Hint: save the file as UTF-8 text.", file = .path.display())]
+    InvalidUtf8 {
+        path: PathBuf,
+        line: u64,
+        column: String,
+    },
+
+    #[error("{file} line {line}, column `{column}`: id `{id}` already appears on line {first_line}. Hint: ids must be unique within a file; remove the repeated row or give it its own id.", file = .path.display())]
+    DuplicateId {
+        path: PathBuf,
+        line: u64,
+        first_line: u64,
+        column: String,
+        id: String,
+    },
+
+    #[error("{file} line {line}, column `{column}`: weight `{value}` is not positive. Hint: weights are density ratios (pool density over labeled density) and must be > 0; remove the unit rather than give it weight 0.", file = .path.display())]
+    NonPositiveWeight {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        value: String,
+    },
+
+    #[error("{file} line {line}: the row has {found} fields but the header has {expected} ({detail}). Hint: quote values that contain the delimiter, and check the delimiter ({delimiter}).", file = .path.display(), detail = field_count_detail(*.found, .header), delimiter = delimiter_name(*.delimiter))]
+    FieldCount {
+        path: PathBuf,
+        line: u64,
+        expected: usize,
+        found: usize,
+        header: Vec<String>,
+        delimiter: u8,
+    },
+
+    #[error("{file} line {header_line} (header): feature selection failed: {message}. Hint: a range `f1..f32` needs every column f1, f2, ..., f32 in the header; otherwise list the feature names with --features.", file = .path.display())]
+    FeatureSelection {
+        path: PathBuf,
+        header_line: u64,
+        message: String,
+    },
+
+    #[error("the feature columns differ: labeled file {labeled_file} uses [{labeled_names}] but pool file {pool_file} uses [{pool_names}]. Hint: select the same features, in the same order, in both files.", labeled_file = .labeled_path.display(), pool_file = .pool_path.display(), labeled_names = .labeled.join(", "), pool_names = .pool.join(", "))]
+    FeatureMismatch {
+        labeled_path: PathBuf,
+        pool_path: PathBuf,
+        labeled: Vec<String>,
+        pool: Vec<String>,
+    },
+
+    #[error("{file} line {line}: the file is not valid CSV: {message}. Hint: check quoting and the delimiter.", file = .path.display())]
+    Malformed {
+        path: PathBuf,
+        line: u64,
+        message: String,
+    },
+}
+
+/// At most this many names are listed in a message.
+const LISTED_NAMES: usize = 20;
+/// Cell values longer than this many characters are cut in messages.
+const SHOWN_VALUE_CHARS: usize = 60;
+
+pub(super) fn name_list(names: &[String]) -> String {
+    let mut text = names
+        .iter()
+        .take(LISTED_NAMES)
+        .map(|name| format!("`{name}`"))
+        .collect::<Vec<_>>()
+        .join(", ");
+    if names.len() > LISTED_NAMES {
+        text.push_str(&format!(" and {} more", names.len() - LISTED_NAMES));
+    }
+    text
+}
+
+fn missing_column_hint(kind: ColumnKind, available: &[String]) -> String {
+    let mut hint = format!(
+        "name the {} column with {} (names are case-sensitive).",
+        kind.describe(),
+        kind.flag()
+    );
+    if available.len() == 1 {
+        hint.push_str(
+            " The header has a single column: if the file uses another delimiter, pass it with --delimiter.",
+        );
+    }
+    hint
+}
+
+fn field_count_detail(found: usize, header: &[String]) -> String {
+    if found < header.len() {
+        format!("no value for {}", name_list(&header[found..]))
+    } else {
+        format!(
+            "{} extra after column `{}`",
+            found - header.len(),
+            header.last().map_or("", String::as_str)
+        )
+    }
+}
+
+fn delimiter_name(delimiter: u8) -> String {
+    match delimiter {
+        b'\t' => "tab".to_string(),
+        b',' => "comma".to_string(),
+        other => format!("`{}`", other.escape_ascii()),
+    }
+}
+
+/// A cell as shown in messages: lossy UTF-8, cut after [`SHOWN_VALUE_CHARS`] characters.
+pub(super) fn shown(cell: &[u8]) -> String {
+    let text = String::from_utf8_lossy(cell);
+    let mut chars = text.chars();
+    let mut out: String = chars.by_ref().take(SHOWN_VALUE_CHARS).collect();
+    if chars.next().is_some() {
+        out.push('…');
+    }
+    out
+}

@@ -1,0 +1,24 @@
+//! Input and output files: reading the labeled and pool CSV/TSV files into column vectors
+//! with column selection and located errors, and writing output files atomically.
+//!
+//! Nothing here does statistics: the readers only check what every later step relies on
+//! (finite numbers, positive weights, unique non-empty ids, the requested columns exist).
+//!
+//! - [`read`]: [`read_units`], [`read_id_list`], [`UnitTable`], [`ReadOptions`], the csv
+//!   reader and cell parsing;
+//! - [`columns`]: column selection ([`resolve_features`] with ranges such as `f1..f32`,
+//!   [`check_same_features`], header lookup);
+//! - [`errors`]: [`InputError`] and the wording of its messages;
+//! - [`output`]: [`write_atomic`] and [`OutputSet`].
+
+pub mod columns;
+pub mod errors;
+pub mod output;
+pub mod read;
+
+pub use columns::{check_same_features, resolve_features};
+pub use errors::InputError;
+pub use output::{write_atomic, OutputSet};
+pub use read::{
+    delimiter_for, parse_finite, read_id_list, read_units, ColumnKind, ReadOptions, Role, UnitTable,
+};

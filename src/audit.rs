@@ -21,9 +21,9 @@
 
 use serde::Serialize;
 
+use crate::conformal::pvalue::{pool_pvalues, CalibrationSet};
+use crate::conformal::score::{labeled_scores, pool_scores};
 use crate::fdr::bh_adjusted;
-use crate::pvalue::{pool_pvalues, CalibrationSet};
-use crate::score::{labeled_scores, pool_scores};
 use crate::select::{run_selection, LabeledInput, PoolInput, SelectError, SelectOptions};
 
 /// e(x) above which a unit counts as poorly covered (Crump et al. 2009 trimming rule).
@@ -205,7 +205,7 @@ fn audit_warnings(o: &AuditOutcome, q: f64, weights_vary: bool) -> Vec<String> {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::score::Thresholds;
+    use crate::conformal::score::Thresholds;
     use crate::select::Procedure;
 
     /// Hand example (design.md 2.2): 9 inactive labeled units with scores 0.1..0.9
@@ -219,7 +219,7 @@ mod tests {
         let options = SelectOptions {
             fdr: 0.5,
             procedure: Procedure::Bh,
-            pvalues: Some(crate::pvalue::PValueKind::Conservative),
+            pvalues: Some(crate::conformal::pvalue::PValueKind::Conservative),
             ..SelectOptions::default()
         };
         let o = audit_shortlist(

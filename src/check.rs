@@ -25,10 +25,10 @@ use rayon::prelude::*;
 use serde::Serialize;
 use thiserror::Error;
 
+use crate::conformal::pvalue::PValueKind;
+use crate::conformal::score::Thresholds;
 use crate::io::{Role, UnitTable};
-use crate::pvalue::PValueKind;
 use crate::random::{stream, Stream};
-use crate::score::Thresholds;
 use crate::select::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };

@@ -27,10 +27,10 @@ use rand_distr::StandardNormal;
 use rayon::prelude::*;
 use thiserror::Error;
 
+use crate::conformal::pvalue::PValueKind;
+use crate::conformal::score::{ScoreKind, Thresholds};
 use crate::fdr::Pruning;
-use crate::pvalue::PValueKind;
 use crate::random::{stream, Stream};
-use crate::score::{ScoreKind, Thresholds};
 use crate::select::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions, SelectionOutcome,
 };

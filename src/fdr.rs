@@ -40,7 +40,9 @@ use rayon::prelude::*;
 use serde::Serialize;
 use thiserror::Error;
 
-use crate::pvalue::{check_weights, weight_of, CalibrationSet, PValueError, PoolPValues};
+use crate::conformal::pvalue::{
+    check_weights, weight_of, CalibrationSet, PValueError, PoolPValues,
+};
 use crate::random::{stream, Stream};
 
 /// One-sided relative tolerance of every level comparison: `p <= t` is decided as
@@ -515,7 +517,7 @@ pub fn prune(
 /// Conditional-calibration selection at level `q` (design.md 2.4).
 ///
 /// `pvalues` must be the conservative p-values of the same pool (see
-/// [`crate::pvalue::conservative_pvalues`]); `seed` drives the pruning draws.
+/// [`crate::conformal::pvalue::conservative_pvalues`]); `seed` drives the pruning draws.
 ///
 /// # Errors
 /// `q` outside (0, 1], NaN pool scores, bad pool weights.

@@ -787,8 +787,8 @@ impl Report {
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::conformal::score::Thresholds;
     use crate::report::{add_shift, select_summary, shift_section, RunInputs};
-    use crate::score::Thresholds;
     use crate::select::{run_selection, LabeledInput, PoolInput, SelectOptions};
     use crate::shift::{assess_shift_with, FeatureView, ShiftParams};
     use crate::weighting::FittedWeights;

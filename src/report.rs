@@ -702,7 +702,7 @@ pub fn shift_text(report: &ShiftReport) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::score::Thresholds;
+    use crate::conformal::score::Thresholds;
     use crate::select::{run_selection, LabeledInput, PoolInput, SelectOptions};
 
     #[test]

@@ -2,19 +2,19 @@
 //! calibration, for one labeled set and one pool held in memory.
 //!
 //! Data flows one way (design.md section 3): the caller has read and validated the tables
-//! and decided the weights; this module computes scores (`crate::score`), p-values
-//! (`crate::pvalue`) and the selection (`crate::fdr`), and collects the counts and
+//! and decided the weights; this module computes scores (`crate::conformal::score`), p-values
+//! (`crate::conformal::pvalue`) and the selection (`crate::fdr`), and collects the counts and
 //! warnings a summary needs. It does no I/O.
 
 use serde::Serialize;
 use thiserror::Error;
 
+use crate::conformal::pvalue::{pool_pvalues, CalibrationSet, PValueError, PValueKind};
+use crate::conformal::score::{labeled_scores, pool_scores, ScoreKind, Thresholds};
 use crate::fdr::{
     self, benjamini_hochberg, benjamini_yekutieli, check_fdr, conditional_calibration, Pruning,
     SelectionError,
 };
-use crate::pvalue::{pool_pvalues, CalibrationSet, PValueError, PValueKind};
-use crate::score::{labeled_scores, pool_scores, ScoreKind, Thresholds};
 
 /// Which multiple-testing procedure makes the shortlist.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]

@@ -9,10 +9,10 @@ use clap::{Args, ValueEnum};
 use serde::Serialize;
 
 use crate::check::{calibration_check, CheckOptions, CheckOutcome, CheckWeights, PI_MAX};
+use crate::conformal::pvalue::PValueKind;
+use crate::conformal::score::ScoreKind;
 use crate::io::{check_same_features, read_units, OutputSet, Role};
-use crate::pvalue::PValueKind;
 use crate::report::{tool_info, ToolInfo};
-use crate::score::ScoreKind;
 use crate::select::{Procedure, SelectOptions};
 use crate::weighting::{obtain_weights, WeightSource};
 

@@ -7,14 +7,14 @@ use std::path::PathBuf;
 
 use clap::{Args, ValueEnum};
 
+use crate::conformal::pvalue::PValueKind;
+use crate::conformal::score::{ScoreKind, Thresholds};
 use crate::fdr::Pruning;
 use crate::html_report::{selection_report, shift_part, WeightsMethod};
 use crate::io::{check_same_features, read_units, OutputSet, ReadOptions, Role, UnitTable};
-use crate::pvalue::PValueKind;
 use crate::report::{
     add_shift, candidates_csv, select_summary, shift_section, text_summary, RunInputs,
 };
-use crate::score::{ScoreKind, Thresholds};
 use crate::select::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };

@@ -236,7 +236,7 @@ pub(crate) fn weight_of(weights: Option<&[f64]>, j: usize) -> f64 {
 ///
 /// # Examples
 /// ```
-/// use weighbridge::pvalue::{conservative_pvalues, CalibrationSet};
+/// use weighbridge::conformal::pvalue::{conservative_pvalues, CalibrationSet};
 /// // Unweighted: (#{V_i <= 0.5} + 1) / (n + 1) = (2 + 1) / 5.
 /// let cal = CalibrationSet::new(&[0.1, 0.5, 0.9, 2.0], None).unwrap();
 /// let p = conservative_pvalues(&cal, &[0.5], None).unwrap();

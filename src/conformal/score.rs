@@ -41,7 +41,7 @@ impl ScoreKind {
     ///
     /// # Examples
     /// ```
-    /// use weighbridge::score::ScoreKind;
+    /// use weighbridge::conformal::score::ScoreKind;
     /// assert_eq!(ScoreKind::Residual.labeled_score(3.0, 2.0, 1.5), 1.5);
     /// assert_eq!(ScoreKind::Clipped.labeled_score(3.0, 2.0, 1.5), f64::INFINITY);
     /// assert_eq!(ScoreKind::Clipped.labeled_score(1.0, 2.0, 1.5), 0.5);

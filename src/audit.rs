@@ -23,8 +23,10 @@ use serde::Serialize;
 
 use crate::conformal::pvalue::{pool_pvalues, CalibrationSet};
 use crate::conformal::score::{labeled_scores, pool_scores};
-use crate::fdr::bh_adjusted;
-use crate::select::{run_selection, LabeledInput, PoolInput, SelectError, SelectOptions};
+use crate::selection::bh::bh_adjusted;
+use crate::selection::pipeline::{
+    run_selection, LabeledInput, PoolInput, SelectError, SelectOptions,
+};
 
 /// e(x) above which a unit counts as poorly covered (Crump et al. 2009 trimming rule).
 pub const POOL_PROBABILITY_LIMIT: f64 = 0.9;
@@ -206,7 +208,7 @@ fn audit_warnings(o: &AuditOutcome, q: f64, weights_vary: bool) -> Vec<String> {
 mod tests {
     use super::*;
     use crate::conformal::score::Thresholds;
-    use crate::select::Procedure;
+    use crate::selection::pipeline::Procedure;
 
     /// Hand example (design.md 2.2): 9 inactive labeled units with scores 0.1..0.9
     /// (threshold 1, predictions 0.9..0.1), pool predictions 1.5 (score -0.5), 0.95 (0.05)

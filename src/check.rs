@@ -29,7 +29,7 @@ use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::Thresholds;
 use crate::io::{Role, UnitTable};
 use crate::random::{stream, Stream};
-use crate::select::{
+use crate::selection::pipeline::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };
 use crate::shift::{ShiftError, ShiftParams};
@@ -272,7 +272,7 @@ pub fn calibration_check(
         .collect();
     let (pi, tilt_constant) = tilt_probabilities(&z, options.strength, options.pool_share);
     let exact_ratio: Vec<f64> = pi.iter().map(|p| p / (1.0 - p)).collect();
-    let exact_ess_fraction = crate::select::kish_ess(&exact_ratio) / n as f64;
+    let exact_ess_fraction = crate::selection::pipeline::kish_ess(&exact_ratio) / n as f64;
 
     let threshold_of = |table: &UnitTable, i: usize| match (&table.threshold, constant_threshold) {
         (Some(c), _) => c[i],
@@ -358,7 +358,9 @@ pub fn calibration_check(
                 None => Thresholds::Constant(constant_threshold.unwrap_or(f64::INFINITY)),
             };
             let calibration_ess_fraction = match labeled_weights {
-                Some(w) if !w.is_empty() => crate::select::kish_ess(w) / w.len() as f64,
+                Some(w) if !w.is_empty() => {
+                    crate::selection::pipeline::kish_ess(w) / w.len() as f64
+                }
                 _ => 1.0,
             };
             let calibration_outcome = &calibration.outcome;

@@ -29,11 +29,11 @@ use thiserror::Error;
 
 use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::{ScoreKind, Thresholds};
-use crate::fdr::Pruning;
 use crate::random::{stream, Stream};
-use crate::select::{
+use crate::selection::pipeline::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions, SelectionOutcome,
 };
+use crate::selection::pruning::Pruning;
 use crate::shift::{assess_shift_with, FeatureView, ShiftAssessment, ShiftError, ShiftParams};
 
 /// Descriptor names of the demo data.

@@ -15,7 +15,7 @@ use std::fmt::Write as _;
 use crate::plots::{balance_svg, overlap_svg, weights_svg, PlotError};
 use crate::report::{shift_diagnostics_text, ShiftReport, ShiftSection, CAUTIONS};
 use crate::report::{warning_line, SelectSummary};
-use crate::select::SelectionOutcome;
+use crate::selection::pipeline::SelectionOutcome;
 use crate::shift::{Severity, ShiftWarning};
 
 /// Rows of the shortlist table shown in the report; candidates.csv has every unit.
@@ -789,7 +789,7 @@ mod tests {
     use super::*;
     use crate::conformal::score::Thresholds;
     use crate::report::{add_shift, select_summary, shift_section, RunInputs};
-    use crate::select::{run_selection, LabeledInput, PoolInput, SelectOptions};
+    use crate::selection::pipeline::{run_selection, LabeledInput, PoolInput, SelectOptions};
     use crate::shift::{assess_shift_with, FeatureView, ShiftParams};
     use crate::weighting::FittedWeights;
     use linfa::ParamGuard;

@@ -5,14 +5,13 @@ pub mod check;
 pub mod cli;
 pub mod conformal;
 pub mod demo;
-pub mod fdr;
 pub mod html_report;
 pub mod io;
 pub mod plots;
 pub mod random;
 pub mod report;
 pub mod rescreen;
-pub mod select;
+pub mod selection;
 pub mod shift;
 pub mod weighting;
 
@@ -20,3 +19,13 @@ pub mod weighting;
 pub use conformal::{pvalue, score};
 /// Old path of [`io`].
 pub use io as table;
+/// Old path of [`selection::pipeline`].
+pub use selection::pipeline as select;
+
+/// Old path of the multiple-testing procedures, now in [`selection::bh`],
+/// [`selection::conditional`] and [`selection::pruning`].
+pub mod fdr {
+    pub use crate::selection::bh::*;
+    pub use crate::selection::conditional::*;
+    pub use crate::selection::pruning::*;
+}

@@ -9,7 +9,7 @@ use std::fmt::Write as _;
 
 use serde::Serialize;
 
-use crate::select::SelectionOutcome;
+use crate::selection::pipeline::SelectionOutcome;
 use crate::shift::{FeatureBalance, Severity, ShiftOptions, ShiftSummary, ShiftWarning};
 use crate::weighting::{fit_rows_statement, FittedWeights};
 
@@ -124,7 +124,7 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
     }
 }
 
-/// Start of the selection's warning about unreachable units (`crate::select`), repeated by
+/// Start of the selection's warning about unreachable units (`crate::selection::pipeline`), repeated by
 /// the shift diagnostic `unreachable_share`.
 const SELECTION_UNREACHABLE_PREFIX: &str = "unreachable units:";
 /// Start of the selection's warning about the effective sample size, repeated by the shift
@@ -703,7 +703,7 @@ pub fn shift_text(report: &ShiftReport) -> String {
 mod tests {
     use super::*;
     use crate::conformal::score::Thresholds;
-    use crate::select::{run_selection, LabeledInput, PoolInput, SelectOptions};
+    use crate::selection::pipeline::{run_selection, LabeledInput, PoolInput, SelectOptions};
 
     #[test]
     fn shown_numbers_are_short() {
@@ -717,7 +717,7 @@ mod tests {
     }
 
     /// The de-duplication in [`add_shift`] recognises the selection's warnings by how they
-    /// start; this pins those starts to what `crate::select` writes.
+    /// start; this pins those starts to what `crate::selection::pipeline` writes.
     #[test]
     fn selection_warning_prefixes_match_the_selection_module() {
         // 200 labeled units with weights 1 except a few huge ones: tiny ESS; pool units

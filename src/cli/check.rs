@@ -13,7 +13,7 @@ use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::ScoreKind;
 use crate::io::{check_same_features, read_units, OutputSet, Role};
 use crate::report::{tool_info, ToolInfo};
-use crate::select::{Procedure, SelectOptions};
+use crate::selection::pipeline::{Procedure, SelectOptions};
 use crate::weighting::{obtain_weights, WeightSource};
 
 use super::select::{DelimiterArg, InputArgs, PValuesArg, ScoreArg};

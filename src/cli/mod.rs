@@ -70,10 +70,10 @@ impl From<crate::io::InputError> for Failure {
     }
 }
 
-impl From<crate::select::SelectError> for Failure {
-    fn from(e: crate::select::SelectError) -> Self {
+impl From<crate::selection::pipeline::SelectError> for Failure {
+    fn from(e: crate::selection::pipeline::SelectError) -> Self {
         match e {
-            crate::select::SelectError::FdrOutOfRange(_) => Failure::Input(format!(
+            crate::selection::pipeline::SelectError::FdrOutOfRange(_) => Failure::Input(format!(
                 "--fdr: {e}. Hint: pass --fdr Q with 0 < Q <= 1, e.g. --fdr 0.1 (on average \
                  at most 10% of the shortlist is not above the threshold)."
             )),

@@ -11,7 +11,7 @@ use serde_json::Value;
 use crate::io::OutputSet;
 use crate::report::{add_shift, candidates_csv, select_summary, shift_section, RunInputs};
 use crate::rescreen::{compare, ChangeCounts, CurrentUnit, PreviousUnit};
-use crate::select::run_selection;
+use crate::selection::pipeline::run_selection;
 
 use super::select::{
     obtain_run_weights, read_inputs, report_pointer, selection_inputs, selection_report_page,

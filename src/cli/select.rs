@@ -9,15 +9,15 @@ use clap::{Args, ValueEnum};
 
 use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::{ScoreKind, Thresholds};
-use crate::fdr::Pruning;
 use crate::html_report::{selection_report, shift_part, WeightsMethod};
 use crate::io::{check_same_features, read_units, OutputSet, ReadOptions, Role, UnitTable};
 use crate::report::{
     add_shift, candidates_csv, select_summary, shift_section, text_summary, RunInputs,
 };
-use crate::select::{
+use crate::selection::pipeline::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };
+use crate::selection::pruning::Pruning;
 use crate::weighting::{obtain_weights, Calibration, WeightSource, Weighting};
 
 use super::shift::{feature_selectors, weighting_failure, FitArgs};
@@ -389,7 +389,7 @@ fn select_or_explain(
     config: &SelectConfig,
     labeled: LabeledInput<'_>,
     pool: PoolInput<'_>,
-) -> Result<crate::select::SelectionOutcome, Failure> {
+) -> Result<crate::selection::pipeline::SelectionOutcome, Failure> {
     run_selection(&config.options, labeled, pool).map_err(|e| match e {
         SelectError::LabeledSetTooSmall { .. } => Failure::Input(format!(
             "labeled file {}: {e}{}",
@@ -424,7 +424,7 @@ pub(crate) fn selection_report_page(
     source: WeightSource,
     summary: &crate::report::SelectSummary,
     ids: &[String],
-    outcome: &crate::select::SelectionOutcome,
+    outcome: &crate::selection::pipeline::SelectionOutcome,
     weighting: &Weighting<'_>,
     calibration: &Calibration<'_>,
 ) -> Result<Vec<u8>, Failure> {

@@ -13,7 +13,7 @@
 //!
 //! Every p-value has a floor `w_j / (W + w_j)`: a unit whose weight is large relative to
 //! `W` can never reach a small level. Such units are "unreachable" (see
-//! [`crate::fdr::unreachable`]).
+//! [`crate::selection::bh::unreachable`]).
 
 use rand::Rng;
 use rand_chacha::ChaCha20Rng;
@@ -157,7 +157,7 @@ impl PValueKind {
 }
 
 /// Pool p-values kept as numerator and denominator, so that level comparisons can be
-/// made in one form everywhere (see [`crate::fdr::within_level`]).
+/// made in one form everywhere (see [`crate::selection::bh::within_level`]).
 #[derive(Clone, Debug)]
 pub struct PoolPValues {
     /// `sum_i w_i 1{V_i <= Vh_j} + w_j` (conservative) or the randomized numerator.

@@ -3,7 +3,7 @@
 //!
 //! Data flows one way (design.md section 3): the caller has read and validated the tables
 //! and decided the weights; this module computes scores (`crate::conformal::score`), p-values
-//! (`crate::conformal::pvalue`) and the selection (`crate::fdr`), and collects the counts and
+//! (`crate::conformal::pvalue`) and the selection (`crate::selection`), and collects the counts and
 //! warnings a summary needs. It does no I/O.
 
 use serde::Serialize;
@@ -11,10 +11,11 @@ use thiserror::Error;
 
 use crate::conformal::pvalue::{pool_pvalues, CalibrationSet, PValueError, PValueKind};
 use crate::conformal::score::{labeled_scores, pool_scores, ScoreKind, Thresholds};
-use crate::fdr::{
-    self, benjamini_hochberg, benjamini_yekutieli, check_fdr, conditional_calibration, Pruning,
-    SelectionError,
+use crate::selection::bh::{
+    self, benjamini_hochberg, benjamini_yekutieli, check_fdr, SelectionError,
 };
+use crate::selection::conditional::conditional_calibration;
+use crate::selection::pruning::Pruning;
 
 /// Which multiple-testing procedure makes the shortlist.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
@@ -220,8 +221,8 @@ pub struct SelectionOutcome {
 ///
 /// # Examples
 /// ```
-/// assert_eq!(weighbridge::select::kish_ess(&[1.0, 1.0, 1.0]), 3.0);
-/// assert!((weighbridge::select::kish_ess(&[1.0, 3.0]) - 1.6).abs() < 1e-15);
+/// assert_eq!(weighbridge::selection::pipeline::kish_ess(&[1.0, 1.0, 1.0]), 3.0);
+/// assert!((weighbridge::selection::pipeline::kish_ess(&[1.0, 3.0]) - 1.6).abs() < 1e-15);
 /// ```
 pub fn kish_ess(weights: &[f64]) -> f64 {
     let sum: f64 = weights.iter().sum();
@@ -280,7 +281,7 @@ pub fn run_selection(
     let calibration = CalibrationSet::new(&labeled_v, labeled.weights)?;
     let total = calibration.total_weight();
 
-    let unreachable = fdr::unreachable(total, pool.weights, m, q);
+    let unreachable = bh::unreachable(total, pool.weights, m, q);
     let unreachable_count = unreachable.iter().filter(|&&u| u).count();
     if unreachable_count == m {
         let smallest_floor = (0..m)

@@ -1,0 +1,14 @@
+//! Multiple testing and the selection pipeline (design.md sections 2.3 and 2.4).
+//!
+//! - [`bh`]: Benjamini–Hochberg, Benjamini–Yekutieli, BH-adjusted p-values, unreachable
+//!   units, and the one comparison rule [`bh::within_level`] with [`bh::TIE_TOLERANCE`];
+//! - [`conditional`]: conditional calibration (Jin & Candes 2023), its `K_j` in
+//!   `O(m log m)`;
+//! - [`pruning`]: the pruning of conditional calibration's first-step set;
+//! - [`pipeline`]: one run from scores to the shortlist (checked options, scores ->
+//!   p-values -> procedure, counts, warnings).
+
+pub mod bh;
+pub mod conditional;
+pub mod pipeline;
+pub mod pruning;

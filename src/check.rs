@@ -32,8 +32,8 @@ use crate::random::{stream, Stream};
 use crate::selection::pipeline::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };
+use crate::shift::weighting::{obtain_weights, WeightSource, WeightingError};
 use crate::shift::{ShiftError, ShiftParams};
-use crate::weighting::{obtain_weights, WeightSource, WeightingError};
 
 /// Largest probability of sending a row to the pseudo-pool, so that every density ratio
 /// `pi / (1 - pi)` stays finite (at most 19). Common practice.

@@ -790,8 +790,8 @@ mod tests {
     use crate::conformal::score::Thresholds;
     use crate::report::{add_shift, select_summary, shift_section, RunInputs};
     use crate::selection::pipeline::{run_selection, LabeledInput, PoolInput, SelectOptions};
+    use crate::shift::weighting::FittedWeights;
     use crate::shift::{assess_shift_with, FeatureView, ShiftParams};
-    use crate::weighting::FittedWeights;
     use linfa::ParamGuard;
 
     /// A small shifted data set (invented, for the page's structure only): labeled feature

@@ -13,7 +13,6 @@ pub mod report;
 pub mod rescreen;
 pub mod selection;
 pub mod shift;
-pub mod weighting;
 
 /// Old paths of [`conformal::score`] and [`conformal::pvalue`].
 pub use conformal::{pvalue, score};
@@ -29,3 +28,5 @@ pub mod fdr {
     pub use crate::selection::conditional::*;
     pub use crate::selection::pruning::*;
 }
+/// Old path of [`shift::weighting`].
+pub use shift::weighting;

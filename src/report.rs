@@ -10,8 +10,8 @@ use std::fmt::Write as _;
 use serde::Serialize;
 
 use crate::selection::pipeline::SelectionOutcome;
+use crate::shift::weighting::{fit_rows_statement, FittedWeights};
 use crate::shift::{FeatureBalance, Severity, ShiftOptions, ShiftSummary, ShiftWarning};
-use crate::weighting::{fit_rows_statement, FittedWeights};
 
 /// The cautions every output carries (design.md section 1).
 pub const CAUTIONS: [&str; 6] = [

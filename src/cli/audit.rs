@@ -16,7 +16,7 @@ use crate::html_report::{shift_part, Finding, Part, Report, Table};
 use crate::io::{read_id_list, OutputSet};
 use crate::report::shift_section;
 use crate::report::{tool_info, ToolInfo, CAUTIONS};
-use crate::weighting::{Calibration, FittedWeights, Weighting};
+use crate::shift::weighting::{Calibration, FittedWeights, Weighting};
 
 use super::select::{
     obtain_run_weights, read_inputs, report_pointer, selection_inputs, weighting_is_fitted,

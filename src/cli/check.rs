@@ -14,7 +14,7 @@ use crate::conformal::score::ScoreKind;
 use crate::io::{check_same_features, read_units, OutputSet, Role};
 use crate::report::{tool_info, ToolInfo};
 use crate::selection::pipeline::{Procedure, SelectOptions};
-use crate::weighting::{obtain_weights, WeightSource};
+use crate::shift::weighting::{obtain_weights, WeightSource};
 
 use super::select::{DelimiterArg, InputArgs, PValuesArg, ScoreArg};
 use super::shift::{weighting_failure, FitArgs};

@@ -17,8 +17,8 @@ use crate::io::OutputSet;
 use crate::report::{
     add_shift, candidates_csv, select_summary, warning_line, RunInputs, ShiftSection, CAUTIONS,
 };
+use crate::shift::weighting::{fit_rows_statement, FittedWeights};
 use crate::shift::FeatureBalance;
-use crate::weighting::{fit_rows_statement, FittedWeights};
 
 use super::{commit_outputs, print_stdout, Failure, StepStatus};
 

@@ -18,7 +18,7 @@ use crate::selection::pipeline::{
     run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };
 use crate::selection::pruning::Pruning;
-use crate::weighting::{obtain_weights, Calibration, WeightSource, Weighting};
+use crate::shift::weighting::{obtain_weights, Calibration, WeightSource, Weighting};
 
 use super::shift::{feature_selectors, weighting_failure, FitArgs};
 use super::{commit_outputs, print_stdout, Failure, PhaseTimer, StepStatus};
@@ -373,7 +373,7 @@ pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable
     Ok((labeled, pool))
 }
 
-/// The run's weights (none, given or fitted; see [`crate::weighting`]), with errors mapped
+/// The run's weights (none, given or fitted; see [`crate::shift::weighting`]), with errors mapped
 /// to exit codes and messages naming the files.
 pub(crate) fn obtain_run_weights<'a>(
     config: &SelectConfig,

@@ -19,8 +19,8 @@ use crate::plots::{balance_svg, overlap_svg, weights_svg};
 use crate::report::{
     balance_csv, shift_report, shift_section, shift_text, weights_csv, ShiftInputs,
 };
+use crate::shift::weighting::{obtain_weights, WeightSource, Weighting, WeightingError};
 use crate::shift::{Expansion, FitRows, ShiftError, ShiftParams};
-use crate::weighting::{obtain_weights, WeightSource, Weighting, WeightingError};
 
 use super::select::DelimiterArg;
 use super::{commit_outputs, print_stdout, Failure, PhaseTimer, StepStatus};

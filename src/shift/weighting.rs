@@ -6,7 +6,7 @@
 //! * given weights: a column present in both files, already read into
 //!   [`UnitTable::weight`];
 //! * fitted weights: a domain classifier on the tables' feature columns
-//!   ([`crate::shift::assess_shift`]), `w(x) = (n / m) e(x) / (1 - e(x))` with
+//!   ([`super::assess_shift`]), `w(x) = (n / m) e(x) / (1 - e(x))` with
 //!   `e(x) = P(pool | x)`.
 //!
 //! With fitted weights in held-out mode ([`FitRows::HeldOut`]) the labeled rows that fit the
@@ -19,10 +19,10 @@ use std::borrow::Cow;
 
 use linfa::ParamGuard;
 
-use crate::io::{Role, UnitTable};
-use crate::shift::{
+use super::{
     assess_shift, FeatureView, FitRows, ShiftAssessment, ShiftError, ShiftOptions, ShiftParams,
 };
+use crate::io::{Role, UnitTable};
 
 /// How the weights of a run are obtained.
 #[derive(Clone, Debug, PartialEq)]
@@ -110,7 +110,7 @@ pub fn feature_view(table: &UnitTable) -> Result<FeatureView<'_>, ShiftError> {
 /// # Examples
 /// ```
 /// use weighbridge::io::{Role, UnitTable};
-/// use weighbridge::weighting::{obtain_weights, WeightSource};
+/// use weighbridge::shift::weighting::{obtain_weights, WeightSource};
 /// let table = |role, rows: usize| UnitTable {
 ///     path: "x.csv".into(),
 ///     role,

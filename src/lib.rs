@@ -1,18 +1,15 @@
 //! weighbridge: shortlists from screening predictions with a false discovery rate
 //! guarantee when the labeled set and the pool differ (covariate shift).
-pub mod audit;
-pub mod check;
 pub mod cli;
 pub mod conformal;
-pub mod demo;
 pub mod html_report;
 pub mod io;
 pub mod plots;
 pub mod random;
 pub mod report;
-pub mod rescreen;
 pub mod selection;
 pub mod shift;
+pub mod workflows;
 
 /// Old paths of [`conformal::score`] and [`conformal::pvalue`].
 pub use conformal::{pvalue, score};
@@ -30,3 +27,5 @@ pub mod fdr {
 }
 /// Old path of [`shift::weighting`].
 pub use shift::weighting;
+/// Old paths of the [`workflows`] modules.
+pub use workflows::{audit, check, demo, rescreen};

@@ -11,12 +11,12 @@ use std::path::PathBuf;
 use clap::Args;
 use serde::Serialize;
 
-use crate::audit::{audit_shortlist, AuditOutcome, POOL_PROBABILITY_LIMIT};
 use crate::html_report::{shift_part, Finding, Part, Report, Table};
 use crate::io::{read_id_list, OutputSet};
 use crate::report::shift_section;
 use crate::report::{tool_info, ToolInfo, CAUTIONS};
 use crate::shift::weighting::{Calibration, FittedWeights, Weighting};
+use crate::workflows::audit::{audit_shortlist, AuditOutcome, POOL_PROBABILITY_LIMIT};
 
 use super::select::{
     obtain_run_weights, read_inputs, report_pointer, selection_inputs, weighting_is_fitted,

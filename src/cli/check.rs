@@ -1,5 +1,5 @@
 //! `weighbridge check`: does the pipeline keep FDR <= q on data like mine? A simulation on
-//! the user's own labeled set (see `crate::check` for the method).
+//! the user's own labeled set (see `crate::workflows::check` for the method).
 
 use std::fmt::Write as _;
 use std::io::IsTerminal;
@@ -8,13 +8,15 @@ use std::path::PathBuf;
 use clap::{Args, ValueEnum};
 use serde::Serialize;
 
-use crate::check::{calibration_check, CheckOptions, CheckOutcome, CheckWeights, PI_MAX};
 use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::ScoreKind;
 use crate::io::{check_same_features, read_units, OutputSet, Role};
 use crate::report::{tool_info, ToolInfo};
 use crate::selection::pipeline::{Procedure, SelectOptions};
 use crate::shift::weighting::{obtain_weights, WeightSource};
+use crate::workflows::check::{
+    calibration_check, CheckOptions, CheckOutcome, CheckWeights, PI_MAX,
+};
 
 use super::select::{DelimiterArg, InputArgs, PValuesArg, ScoreArg};
 use super::shift::{weighting_failure, FitArgs};

@@ -1,5 +1,5 @@
 //! `weighbridge demo`: the whole job on an invented screening scenario (see
-//! `crate::demo`), with the truth known, so that the output can say how far the shortlist
+//! `crate::workflows::demo`), with the truth known, so that the output can say how far the shortlist
 //! can be trusted and what ignoring the shift would have done.
 
 use std::fmt::Write as _;
@@ -8,10 +8,6 @@ use std::path::PathBuf;
 use clap::Args;
 use linfa::ParamGuard;
 
-use crate::demo::{
-    compared_selections, false_discovery_proportion, fit_params, fit_weights, generate,
-    repeated_screens, spearman_correlation, DemoError, COMPARED, FEATURES, THRESHOLD,
-};
 use crate::html_report::{selection_report, shift_part, Part, Table, WeightsMethod};
 use crate::io::OutputSet;
 use crate::report::{
@@ -19,6 +15,10 @@ use crate::report::{
 };
 use crate::shift::weighting::{fit_rows_statement, FittedWeights};
 use crate::shift::FeatureBalance;
+use crate::workflows::demo::{
+    compared_selections, false_discovery_proportion, fit_params, fit_weights, generate,
+    repeated_screens, spearman_correlation, DemoError, COMPARED, FEATURES, THRESHOLD,
+};
 
 use super::{commit_outputs, print_stdout, Failure, StepStatus};
 

@@ -1,5 +1,5 @@
 //! `weighbridge rescreen`: run the selection on an expanded pool and report what changed
-//! against a previous run's output folder (see `crate::rescreen`).
+//! against a previous run's output folder (see `crate::workflows::rescreen`).
 
 use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
@@ -10,8 +10,8 @@ use serde_json::Value;
 
 use crate::io::OutputSet;
 use crate::report::{add_shift, candidates_csv, select_summary, shift_section, RunInputs};
-use crate::rescreen::{compare, ChangeCounts, CurrentUnit, PreviousUnit};
 use crate::selection::pipeline::run_selection;
+use crate::workflows::rescreen::{compare, ChangeCounts, CurrentUnit, PreviousUnit};
 
 use super::select::{
     obtain_run_weights, read_inputs, report_pointer, selection_inputs, selection_report_page,

@@ -142,110 +142,17 @@ pub fn compare(
     let mut rows = Vec::with_capacity(current.len());
     for unit in current {
         let poorly = unit.unreachable || unit.weight > largest_labeled_weight;
-        match before.get(unit.id) {
-            None => {
-                counts.new_units += 1;
-                let change = if unit.selected {
-                    counts.new_selected += 1;
-                    Change::NewSelected
-                } else {
-                    Change::NewNotSelected
-                };
-                if poorly {
-                    counts.new_poorly_covered += 1;
-                }
-                let why = if poorly {
-                    if unit.unreachable {
-                        format!(
-                            "new unit the labeled set cannot vouch for: its p-value floor \
-                             w/(W+w) is above {fdr}"
-                        )
-                    } else {
-                        "new unit the labeled set cannot vouch for: its weight exceeds every \
-                         labeled weight"
-                            .to_string()
-                    }
-                } else {
-                    String::new()
-                };
-                rows.push(UnitChange {
-                    id: unit.id.to_string(),
-                    change,
-                    why,
-                    previous_p_value: None,
-                    p_value: Some(unit.p_value),
-                    new_poorly_covered: poorly,
-                });
-            }
-            Some(old) => {
-                let change = match (old.selected, unit.selected) {
-                    (true, true) => Change::Kept,
-                    (false, true) => Change::NewlySelected,
-                    (true, false) => Change::Dropped,
-                    (false, false) => Change::NotSelected,
-                };
-                let mut reasons = Vec::new();
-                if matches!(change, Change::Dropped | Change::NewlySelected) {
-                    let weight_moved = moved(old.weight, unit.weight);
-                    let score_moved = moved(old.score, unit.score);
-                    let p_moved = moved(old.p_value, unit.p_value);
-                    if weight_moved {
-                        reasons.push(format!(
-                            "its weight moved from {:.4} to {:.4}",
-                            old.weight, unit.weight
-                        ));
-                    }
-                    if score_moved {
-                        reasons.push(format!(
-                            "its score moved from {:.4} to {:.4} (threshold or prediction \
-                             changed)",
-                            old.score, unit.score
-                        ));
-                    }
-                    if p_moved {
-                        reasons.push(format!(
-                            "its p-value moved from {:.4} to {:.4}",
-                            old.p_value, unit.p_value
-                        ));
-                    }
-                    if change == Change::Dropped {
-                        counts.dropped += 1;
-                        counts.dropped_weight_moved += usize::from(weight_moved);
-                        counts.dropped_score_moved += usize::from(score_moved);
-                        counts.dropped_p_value_moved += usize::from(p_moved);
-                        if !weight_moved && !score_moved && !p_moved {
-                            if grew {
-                                counts.dropped_pool_grew += 1;
-                                reasons.push(format!(
-                                    "its p-value did not move, but the pool grew from {} to {} \
-                                     units, so the BH line q k / m is stricter at every rank",
-                                    previous.len(),
-                                    current.len()
-                                ));
-                            } else {
-                                reasons.push(
-                                    "its p-value did not move; the other units' p-values \
-                                     changed the selection's cut-off"
-                                        .to_string(),
-                                );
-                            }
-                        }
-                    } else {
-                        counts.newly_selected += 1;
-                    }
-                } else if change == Change::Kept {
-                    counts.kept += 1;
-                }
-                rows.push(UnitChange {
-                    id: unit.id.to_string(),
-                    change,
-                    why: reasons.join("; "),
-                    previous_p_value: Some(old.p_value),
-                    p_value: Some(unit.p_value),
-                    new_poorly_covered: false,
-                });
-            }
-        }
+        let row = match before.get(unit.id) {
+            None => new_unit_change(unit, poorly, fdr, &mut counts),
+            Some(old) => known_unit_change(
+                old,
+                unit,
+                grew,
+                (previous.len(), current.len()),
+                &mut counts,
+            ),
+        };
+        rows.push(row);
     }
     for old in previous {
         if !now_ids.contains_key(old.id.as_str()) {
@@ -265,6 +172,123 @@ pub fn compare(
         }
     }
     (rows, counts)
+}
+
+/// The row of a unit new to the pool (`poorly`: the labeled set gives it little support).
+fn new_unit_change(
+    unit: &CurrentUnit<'_>,
+    poorly: bool,
+    fdr: f64,
+    counts: &mut ChangeCounts,
+) -> UnitChange {
+    counts.new_units += 1;
+    let change = if unit.selected {
+        counts.new_selected += 1;
+        Change::NewSelected
+    } else {
+        Change::NewNotSelected
+    };
+    if poorly {
+        counts.new_poorly_covered += 1;
+    }
+    let why = if poorly {
+        if unit.unreachable {
+            format!(
+                "new unit the labeled set cannot vouch for: its p-value floor \
+                 w/(W+w) is above {fdr}"
+            )
+        } else {
+            "new unit the labeled set cannot vouch for: its weight exceeds every \
+             labeled weight"
+                .to_string()
+        }
+    } else {
+        String::new()
+    };
+    UnitChange {
+        id: unit.id.to_string(),
+        change,
+        why,
+        previous_p_value: None,
+        p_value: Some(unit.p_value),
+        new_poorly_covered: poorly,
+    }
+}
+
+/// The row of a unit in both pools, with the reasons a changed decision gets;
+/// `pool_sizes` is (previous, current).
+fn known_unit_change(
+    old: &PreviousUnit,
+    unit: &CurrentUnit<'_>,
+    grew: bool,
+    pool_sizes: (usize, usize),
+    counts: &mut ChangeCounts,
+) -> UnitChange {
+    let change = match (old.selected, unit.selected) {
+        (true, true) => Change::Kept,
+        (false, true) => Change::NewlySelected,
+        (true, false) => Change::Dropped,
+        (false, false) => Change::NotSelected,
+    };
+    let mut reasons = Vec::new();
+    if matches!(change, Change::Dropped | Change::NewlySelected) {
+        let weight_moved = moved(old.weight, unit.weight);
+        let score_moved = moved(old.score, unit.score);
+        let p_moved = moved(old.p_value, unit.p_value);
+        if weight_moved {
+            reasons.push(format!(
+                "its weight moved from {:.4} to {:.4}",
+                old.weight, unit.weight
+            ));
+        }
+        if score_moved {
+            reasons.push(format!(
+                "its score moved from {:.4} to {:.4} (threshold or prediction \
+                 changed)",
+                old.score, unit.score
+            ));
+        }
+        if p_moved {
+            reasons.push(format!(
+                "its p-value moved from {:.4} to {:.4}",
+                old.p_value, unit.p_value
+            ));
+        }
+        if change == Change::Dropped {
+            counts.dropped += 1;
+            counts.dropped_weight_moved += usize::from(weight_moved);
+            counts.dropped_score_moved += usize::from(score_moved);
+            counts.dropped_p_value_moved += usize::from(p_moved);
+            if !weight_moved && !score_moved && !p_moved {
+                if grew {
+                    counts.dropped_pool_grew += 1;
+                    reasons.push(format!(
+                        "its p-value did not move, but the pool grew from {} to {} \
+                         units, so the BH line q k / m is stricter at every rank",
+                        pool_sizes.0, pool_sizes.1
+                    ));
+                } else {
+                    reasons.push(
+                        "its p-value did not move; the other units' p-values \
+                         changed the selection's cut-off"
+                            .to_string(),
+                    );
+                }
+            }
+        } else {
+            counts.newly_selected += 1;
+        }
+    } else if change == Change::Kept {
+        counts.kept += 1;
+    }
+    UnitChange {
+        id: unit.id.to_string(),
+        change,
+        why: reasons.join("; "),
+        previous_p_value: Some(old.p_value),
+        p_value: Some(unit.p_value),
+        new_poorly_covered: false,
+    }
 }
 
 #[cfg(test)]

@@ -261,7 +261,7 @@ pub fn fit_weights(
 ///
 /// # Examples
 /// ```
-/// use weighbridge::demo::spearman_correlation;
+/// use weighbridge::workflows::demo::spearman_correlation;
 /// // Any increasing transform keeps the ranks: rho = 1.
 /// let a = [0.1, 3.0, 0.5, 2.0];
 /// let b: Vec<f64> = a.iter().map(|x: &f64| x.exp()).collect();

@@ -30,7 +30,7 @@ use crate::conformal::score::Thresholds;
 use crate::io::{Role, UnitTable};
 use crate::random::{stream, Stream};
 use crate::selection::pipeline::{
-    run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
+    kish_ess, run_selection, LabeledInput, PoolInput, Procedure, SelectError, SelectOptions,
 };
 use crate::shift::weighting::{obtain_weights, WeightSource, WeightingError};
 use crate::shift::{ShiftError, ShiftParams};
@@ -219,6 +219,43 @@ pub fn calibration_check(
     options: &CheckOptions,
     progress: &(dyn Fn(usize) + Sync),
 ) -> Result<CheckOutcome, CheckError> {
+    check_settings(labeled, tilt, options)?;
+    let n = labeled.len();
+    let z = standardized(tilt);
+    let (pi, tilt_constant) = tilt_probabilities(&z, options.strength, options.pool_share);
+    let exact_ratio: Vec<f64> = pi.iter().map(|p| p / (1.0 - p)).collect();
+    let exact_ess_fraction = kish_ess(&exact_ratio) / n as f64;
+
+    let simulation = Simulation {
+        labeled,
+        pi: &pi,
+        exact_ratio: &exact_ratio,
+        constant_threshold,
+        options,
+    };
+    let finished = AtomicUsize::new(0);
+    let replicates: Vec<ReplicateResult> = (0..options.replicates)
+        .into_par_iter()
+        .map(|r| {
+            let result = simulation.replicate(r)?;
+            progress(finished.fetch_add(1, Ordering::Relaxed) + 1);
+            Ok(result)
+        })
+        .collect::<Result<Vec<_>, CheckError>>()?;
+    Ok(summarize(
+        &replicates,
+        options,
+        tilt_constant,
+        exact_ess_fraction,
+    ))
+}
+
+/// Reject settings and inputs a check cannot run on.
+fn check_settings(
+    labeled: &UnitTable,
+    tilt: &[f64],
+    options: &CheckOptions,
+) -> Result<(), CheckError> {
     if options.replicates < 2 {
         return Err(CheckError::TooFewReplicates(options.replicates));
     }
@@ -255,13 +292,18 @@ pub fn calibration_check(
             replicate: 0,
             source,
         })?;
+    Ok(())
+}
+
+/// The tilt scores standardized to mean 0 and standard deviation 1 (all 0 when constant).
+fn standardized(tilt: &[f64]) -> Vec<f64> {
+    let n = tilt.len();
     let (mean_tilt, sd_tilt) = {
         let mean = tilt.iter().sum::<f64>() / n as f64;
         let var = tilt.iter().map(|t| (t - mean) * (t - mean)).sum::<f64>() / n as f64;
         (mean, var.sqrt())
     };
-    let z: Vec<f64> = tilt
-        .iter()
+    tilt.iter()
         .map(|t| {
             if sd_tilt > 0.0 {
                 (t - mean_tilt) / sd_tilt
@@ -269,170 +311,234 @@ pub fn calibration_check(
                 0.0
             }
         })
-        .collect();
-    let (pi, tilt_constant) = tilt_probabilities(&z, options.strength, options.pool_share);
-    let exact_ratio: Vec<f64> = pi.iter().map(|p| p / (1.0 - p)).collect();
-    let exact_ess_fraction = crate::selection::pipeline::kish_ess(&exact_ratio) / n as f64;
+        .collect()
+}
 
-    let threshold_of = |table: &UnitTable, i: usize| match (&table.threshold, constant_threshold) {
-        (Some(c), _) => c[i],
-        (None, Some(c)) => c,
-        (None, None) => f64::INFINITY,
-    };
-    let finished = AtomicUsize::new(0);
-    let seed = options.select.seed;
-    let replicates: Vec<ReplicateResult> = (0..options.replicates)
-        .into_par_iter()
-        .map(|r| {
-            let mut rng = stream(seed.wrapping_add(r as u64), Stream::Simulation);
-            let mut pool_rows = Vec::new();
-            let mut labeled_rows = Vec::new();
-            for (i, &p) in pi.iter().enumerate() {
-                if rng.gen::<f64>() < p {
-                    pool_rows.push(i);
-                } else {
-                    labeled_rows.push(i);
-                }
+/// What every replicate shares: the labeled table, the split probabilities and exact ratios.
+struct Simulation<'a> {
+    labeled: &'a UnitTable,
+    /// `pi_i`, the probability that row `i` goes to the pseudo-pool.
+    pi: &'a [f64],
+    /// `pi_i / (1 - pi_i)`.
+    exact_ratio: &'a [f64],
+    constant_threshold: Option<f64>,
+    options: &'a CheckOptions,
+}
+
+/// One replicate's screen: the calibrating pseudo-labeled rows and the pseudo-pool (with
+/// the weights of the weighted runs), and the pseudo-pool's truth.
+struct Screen<'a> {
+    labeled: LabeledInput<'a>,
+    pool: PoolInput<'a>,
+    /// Outcome above threshold, per pseudo-pool unit.
+    interesting: &'a [bool],
+    interesting_count: usize,
+}
+
+impl ReplicateResult {
+    /// A split the pipeline cannot run on: an empty part, or no classifier fits.
+    fn degenerate(pseudo_labeled: usize, pseudo_pool: usize) -> Self {
+        ReplicateResult {
+            degenerate: true,
+            pseudo_labeled,
+            calibration_ess_fraction: 1.0,
+            pseudo_pool,
+            interesting_share: 0.0,
+            per_selection: [(0.0, 0.0, 0); 3],
+        }
+    }
+}
+
+impl Simulation<'_> {
+    fn threshold_of(&self, table: &UnitTable, i: usize) -> f64 {
+        match (&table.threshold, self.constant_threshold) {
+            (Some(c), _) => c[i],
+            (None, Some(c)) => c,
+            (None, None) => f64::INFINITY,
+        }
+    }
+
+    /// Replicate `r`: split, weigh, run the three selections on the split.
+    fn replicate(&self, r: usize) -> Result<ReplicateResult, CheckError> {
+        let (labeled, options, exact_ratio) = (self.labeled, self.options, self.exact_ratio);
+        let constant_threshold = self.constant_threshold;
+        let seed = options.select.seed;
+        let mut rng = stream(seed.wrapping_add(r as u64), Stream::Simulation);
+        let mut pool_rows = Vec::new();
+        let mut labeled_rows = Vec::new();
+        for (i, &p) in self.pi.iter().enumerate() {
+            if rng.gen::<f64>() < p {
+                pool_rows.push(i);
+            } else {
+                labeled_rows.push(i);
             }
-            // An empty part leaves nothing to calibrate or nothing to select from.
-            let degenerate = |pseudo_labeled: usize, pseudo_pool: usize| {
-                progress(finished.fetch_add(1, Ordering::Relaxed) + 1);
-                Ok(ReplicateResult {
-                    degenerate: true,
-                    pseudo_labeled,
-                    calibration_ess_fraction: 1.0,
-                    pseudo_pool,
-                    interesting_share: 0.0,
-                    per_selection: [(0.0, 0.0, 0); 3],
+        }
+        // An empty part leaves nothing to calibrate or nothing to select from.
+        if labeled_rows.is_empty() || pool_rows.is_empty() {
+            return Ok(ReplicateResult::degenerate(
+                labeled_rows.len(),
+                pool_rows.len(),
+            ));
+        }
+        let pseudo_labeled = subset(labeled, &labeled_rows, Role::Labeled);
+        let mut pseudo_pool = subset(labeled, &pool_rows, Role::Pool);
+        let truth = pseudo_pool.outcome.take().unwrap_or_default();
+        let interesting: Vec<bool> = (0..pseudo_pool.len())
+            .map(|j| truth[j] > self.threshold_of(&pseudo_pool, j))
+            .collect();
+        let interesting_count = interesting.iter().filter(|&&x| x).count();
+
+        let exact_labeled: Vec<f64> = labeled_rows.iter().map(|&i| exact_ratio[i]).collect();
+        let exact_pool: Vec<f64> = pool_rows.iter().map(|&i| exact_ratio[i]).collect();
+        let source = match &options.weights {
+            CheckWeights::Fitted(params) => WeightSource::Fitted {
+                params: params.clone().seed(seed.wrapping_add(r as u64)),
+            },
+            CheckWeights::Exact => WeightSource::None,
+        };
+        let weighting = match obtain_weights(&source, &pseudo_labeled, &pseudo_pool) {
+            Ok(w) => w,
+            // The split cannot carry a classifier: the real pipeline would stop here.
+            Err(WeightingError::Shift(
+                ShiftError::TooFewRows { .. }
+                | ShiftError::OneClass { .. }
+                | ShiftError::AllConstant { .. },
+            )) => {
+                return Ok(ReplicateResult::degenerate(
+                    labeled_rows.len(),
+                    pool_rows.len(),
+                ))
+            }
+            Err(source) => {
+                return Err(CheckError::Weighting {
+                    replicate: r,
+                    source,
                 })
-            };
-            if labeled_rows.is_empty() || pool_rows.is_empty() {
-                return degenerate(labeled_rows.len(), pool_rows.len());
             }
-            let pseudo_labeled = subset(labeled, &labeled_rows, Role::Labeled);
-            let mut pseudo_pool = subset(labeled, &pool_rows, Role::Pool);
-            let truth = pseudo_pool.outcome.take().unwrap_or_default();
-            let interesting: Vec<bool> = (0..pseudo_pool.len())
-                .map(|j| truth[j] > threshold_of(&pseudo_pool, j))
-                .collect();
-            let interesting_count = interesting.iter().filter(|&&x| x).count();
-
-            let exact_labeled: Vec<f64> = labeled_rows.iter().map(|&i| exact_ratio[i]).collect();
-            let exact_pool: Vec<f64> = pool_rows.iter().map(|&i| exact_ratio[i]).collect();
-            let source = match &options.weights {
-                CheckWeights::Fitted(params) => WeightSource::Fitted {
-                    params: params.clone().seed(seed.wrapping_add(r as u64)),
-                },
-                CheckWeights::Exact => WeightSource::None,
-            };
-            let weighting = match obtain_weights(&source, &pseudo_labeled, &pseudo_pool) {
-                Ok(w) => w,
-                // The split cannot carry a classifier: the real pipeline would stop here.
-                Err(WeightingError::Shift(
-                    ShiftError::TooFewRows { .. }
-                    | ShiftError::OneClass { .. }
-                    | ShiftError::AllConstant { .. },
-                )) => return degenerate(labeled_rows.len(), pool_rows.len()),
-                Err(source) => {
-                    return Err(CheckError::Weighting {
-                        replicate: r,
-                        source,
-                    })
-                }
-            };
-            let calibration = weighting.calibration(&pseudo_labeled);
-            // Exact ratios: every pseudo-labeled row calibrates (no fit), so they align.
-            let (labeled_weights, pool_weights): (Option<&[f64]>, Option<&[f64]>) =
-                match options.weights {
-                    CheckWeights::Exact => (Some(&exact_labeled), Some(&exact_pool)),
-                    CheckWeights::Fitted(_) => {
-                        (calibration.weights.as_deref(), weighting.pool_weights())
-                    }
-                };
-            let thresholds_labeled = match &calibration.threshold {
-                Some(c) => Thresholds::PerUnit(c),
-                None => Thresholds::Constant(constant_threshold.unwrap_or(f64::INFINITY)),
-            };
-            let thresholds_pool = match &pseudo_pool.threshold {
-                Some(c) => Thresholds::PerUnit(c),
-                None => Thresholds::Constant(constant_threshold.unwrap_or(f64::INFINITY)),
-            };
-            let calibration_ess_fraction = match labeled_weights {
-                Some(w) if !w.is_empty() => {
-                    crate::selection::pipeline::kish_ess(w) / w.len() as f64
-                }
-                _ => 1.0,
-            };
-            let calibration_outcome = &calibration.outcome;
-            let run = |procedure: Procedure, weighted: bool| {
-                let select = SelectOptions {
-                    procedure,
-                    pvalues: match procedure {
-                        Procedure::Conditional => Some(PValueKind::Conservative),
-                        _ => options.select.pvalues,
-                    },
-                    seed: seed.wrapping_add(r as u64),
-                    ..options.select.clone()
-                };
-                let o = run_selection(
-                    &select,
-                    LabeledInput {
-                        outcome: calibration_outcome,
-                        prediction: &calibration.prediction,
-                        thresholds: thresholds_labeled,
-                        weights: if weighted { labeled_weights } else { None },
-                    },
-                    PoolInput {
-                        prediction: &pseudo_pool.prediction,
-                        thresholds: thresholds_pool,
-                        weights: if weighted { pool_weights } else { None },
-                    },
-                );
-                let o = match o {
-                    Ok(o) => o,
-                    // A replicate whose labeled part cannot reach the level selects nothing.
-                    Err(SelectError::LabeledSetTooSmall { .. }) => return Ok((0.0, 0.0, 0)),
-                    Err(source) => {
-                        return Err(CheckError::Selection {
-                            replicate: r,
-                            source,
-                        })
-                    }
-                };
-                let chosen = o.selected_count;
-                let true_hits = (0..o.selected.len())
-                    .filter(|&j| o.selected[j] && interesting[j])
-                    .count();
-                let fdp = if chosen == 0 {
-                    0.0
-                } else {
-                    (chosen - true_hits) as f64 / chosen as f64
-                };
-                let power = if interesting_count == 0 {
-                    0.0
-                } else {
-                    true_hits as f64 / interesting_count as f64
-                };
-                Ok((fdp, power, chosen))
-            };
-            let per_selection = [
-                run(Procedure::Conditional, true)?,
-                run(Procedure::Bh, true)?,
-                run(Procedure::Bh, false)?,
-            ];
-            progress(finished.fetch_add(1, Ordering::Relaxed) + 1);
-            Ok(ReplicateResult {
-                degenerate: false,
-                pseudo_labeled: calibration.rows(),
-                calibration_ess_fraction,
-                pseudo_pool: pseudo_pool.len(),
-                interesting_share: interesting_count as f64 / pseudo_pool.len().max(1) as f64,
-                per_selection,
-            })
+        };
+        let calibration = weighting.calibration(&pseudo_labeled);
+        // Exact ratios: every pseudo-labeled row calibrates (no fit), so they align.
+        let (labeled_weights, pool_weights): (Option<&[f64]>, Option<&[f64]>) = match options
+            .weights
+        {
+            CheckWeights::Exact => (Some(&exact_labeled), Some(&exact_pool)),
+            CheckWeights::Fitted(_) => (calibration.weights.as_deref(), weighting.pool_weights()),
+        };
+        let thresholds_labeled = match &calibration.threshold {
+            Some(c) => Thresholds::PerUnit(c),
+            None => Thresholds::Constant(constant_threshold.unwrap_or(f64::INFINITY)),
+        };
+        let thresholds_pool = match &pseudo_pool.threshold {
+            Some(c) => Thresholds::PerUnit(c),
+            None => Thresholds::Constant(constant_threshold.unwrap_or(f64::INFINITY)),
+        };
+        let calibration_ess_fraction = match labeled_weights {
+            Some(w) if !w.is_empty() => kish_ess(w) / w.len() as f64,
+            _ => 1.0,
+        };
+        let screen = Screen {
+            labeled: LabeledInput {
+                outcome: &calibration.outcome,
+                prediction: &calibration.prediction,
+                thresholds: thresholds_labeled,
+                weights: labeled_weights,
+            },
+            pool: PoolInput {
+                prediction: &pseudo_pool.prediction,
+                thresholds: thresholds_pool,
+                weights: pool_weights,
+            },
+            interesting: &interesting,
+            interesting_count,
+        };
+        let per_selection = [
+            self.select_once(r, &screen, Procedure::Conditional, true)?,
+            self.select_once(r, &screen, Procedure::Bh, true)?,
+            self.select_once(r, &screen, Procedure::Bh, false)?,
+        ];
+        Ok(ReplicateResult {
+            degenerate: false,
+            pseudo_labeled: calibration.rows(),
+            calibration_ess_fraction,
+            pseudo_pool: pseudo_pool.len(),
+            interesting_share: interesting_count as f64 / pseudo_pool.len().max(1) as f64,
+            per_selection,
         })
-        .collect::<Result<Vec<_>, CheckError>>()?;
+    }
 
-    let summarize = |c: usize| {
+    /// One selection on replicate `r`'s screen (with its weights or every weight 1):
+    /// `(FDP, power, selected)`.
+    fn select_once(
+        &self,
+        r: usize,
+        screen: &Screen<'_>,
+        procedure: Procedure,
+        weighted: bool,
+    ) -> Result<(f64, f64, usize), CheckError> {
+        let options = self.options;
+        let seed = options.select.seed;
+        let (interesting, interesting_count) = (screen.interesting, screen.interesting_count);
+        let select = SelectOptions {
+            procedure,
+            pvalues: match procedure {
+                Procedure::Conditional => Some(PValueKind::Conservative),
+                _ => options.select.pvalues,
+            },
+            seed: seed.wrapping_add(r as u64),
+            ..options.select.clone()
+        };
+        let o = run_selection(
+            &select,
+            LabeledInput {
+                weights: if weighted {
+                    screen.labeled.weights
+                } else {
+                    None
+                },
+                ..screen.labeled
+            },
+            PoolInput {
+                weights: if weighted { screen.pool.weights } else { None },
+                ..screen.pool
+            },
+        );
+        let o = match o {
+            Ok(o) => o,
+            // A replicate whose labeled part cannot reach the level selects nothing.
+            Err(SelectError::LabeledSetTooSmall { .. }) => return Ok((0.0, 0.0, 0)),
+            Err(source) => {
+                return Err(CheckError::Selection {
+                    replicate: r,
+                    source,
+                })
+            }
+        };
+        let chosen = o.selected_count;
+        let true_hits = (0..o.selected.len())
+            .filter(|&j| o.selected[j] && interesting[j])
+            .count();
+        let fdp = if chosen == 0 {
+            0.0
+        } else {
+            (chosen - true_hits) as f64 / chosen as f64
+        };
+        let power = if interesting_count == 0 {
+            0.0
+        } else {
+            true_hits as f64 / interesting_count as f64
+        };
+        Ok((fdp, power, chosen))
+    }
+}
+
+/// Averages over the replicates.
+fn summarize(
+    replicates: &[ReplicateResult],
+    options: &CheckOptions,
+    tilt_constant: f64,
+    exact_ess_fraction: f64,
+) -> CheckOutcome {
+    let procedure_result = |c: usize| {
         let (fdr, fdr_se) = mean_and_se(replicates.iter().map(move |r| r.per_selection[c].0));
         let (power, power_se) = mean_and_se(replicates.iter().map(move |r| r.per_selection[c].1));
         let count = replicates.len() as f64;
@@ -454,7 +560,7 @@ pub fn calibration_check(
         }
     };
     let count = replicates.len() as f64;
-    Ok(CheckOutcome {
+    CheckOutcome {
         replicates: replicates.len(),
         strength: options.strength,
         pool_share: options.pool_share,
@@ -481,17 +587,17 @@ pub fn calibration_check(
         mean_interesting_share: replicates.iter().map(|r| r.interesting_share).sum::<f64>() / count,
         degenerate_share: replicates.iter().filter(|r| r.degenerate).count() as f64 / count,
         results: CheckResults {
-            conditional: summarize(0),
-            bh: summarize(1),
-            unweighted: summarize(2),
+            conditional: procedure_result(0),
+            bh: procedure_result(1),
+            unweighted: procedure_result(2),
         },
-    })
+    }
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::demo::{generate, FEATURES, LABELED_MEAN, THRESHOLD};
+    use crate::workflows::demo::{generate, FEATURES, LABELED_MEAN, THRESHOLD};
 
     /// The demo's labeled set as a table (invented data; here the reference is the FDR
     /// guarantee itself, Jin & Candes 2023, checked by simulation).

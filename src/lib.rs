@@ -2,9 +2,7 @@
 //! guarantee when the labeled set and the pool differ (covariate shift).
 pub mod cli;
 pub mod conformal;
-pub mod html_report;
 pub mod io;
-pub mod plots;
 pub mod random;
 pub mod report;
 pub mod selection;
@@ -25,6 +23,9 @@ pub mod fdr {
     pub use crate::selection::conditional::*;
     pub use crate::selection::pruning::*;
 }
+/// Old paths of [`report::html`] and [`report::plots`].
+pub use report::html as html_report;
+pub use report::plots;
 /// Old path of [`shift::weighting`].
 pub use shift::weighting;
 /// Old paths of the [`workflows`] modules.

@@ -11,8 +11,8 @@ use std::path::PathBuf;
 use clap::Args;
 use serde::Serialize;
 
-use crate::html_report::{shift_part, Finding, Part, Report, Table};
 use crate::io::{read_id_list, OutputSet};
+use crate::report::html::{shift_part, Finding, Part, Report, Table};
 use crate::report::shift_section;
 use crate::report::{tool_info, ToolInfo, CAUTIONS};
 use crate::shift::weighting::{Calibration, FittedWeights, Weighting};

@@ -8,8 +8,8 @@ use std::path::PathBuf;
 use clap::Args;
 use linfa::ParamGuard;
 
-use crate::html_report::{selection_report, shift_part, Part, Table, WeightsMethod};
 use crate::io::OutputSet;
+use crate::report::html::{selection_report, shift_part, Part, Table, WeightsMethod};
 use crate::report::{
     add_shift, candidates_csv, select_summary, warning_line, RunInputs, ShiftSection, CAUTIONS,
 };

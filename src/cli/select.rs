@@ -9,8 +9,8 @@ use clap::{Args, ValueEnum};
 
 use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::{ScoreKind, Thresholds};
-use crate::html_report::{selection_report, shift_part, WeightsMethod};
 use crate::io::{check_same_features, read_units, OutputSet, ReadOptions, Role, UnitTable};
+use crate::report::html::{selection_report, shift_part, WeightsMethod};
 use crate::report::{
     add_shift, candidates_csv, select_summary, shift_section, text_summary, RunInputs,
 };

@@ -10,12 +10,12 @@ use std::path::{Path, PathBuf};
 use clap::{Args, ValueEnum};
 use linfa::ParamGuard;
 
-use crate::html_report::{shift_report_html, ShiftPart};
 use crate::io::{
     check_same_features, delimiter_for, read_units, resolve_features, ColumnKind, InputError,
     OutputSet, ReadOptions, Role, UnitTable,
 };
-use crate::plots::{balance_svg, overlap_svg, weights_svg};
+use crate::report::html::{shift_report_html, ShiftPart};
+use crate::report::plots::{balance_svg, overlap_svg, weights_svg};
 use crate::report::{
     balance_csv, shift_report, shift_section, shift_text, weights_csv, ShiftInputs,
 };
@@ -456,7 +456,7 @@ pub fn run(args: ShiftArgs) -> Result<(), Failure> {
         },
     );
     let summary = &report.shift.summary;
-    let plot_failure = |e: crate::plots::PlotError| Failure::Internal(e.to_string());
+    let plot_failure = |e: crate::report::plots::PlotError| Failure::Internal(e.to_string());
     let calibration_weights = weighting
         .calibration(&labeled)
         .weights

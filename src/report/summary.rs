@@ -1,6 +1,6 @@
-//! What a run hands back to people: the per-candidate table, the JSON summaries and the
-//! short text summaries for the terminal, for a selection (`select`) and for a shift
-//! assessment (`shift`, and `select --fit-weights`).
+//! Summaries of a run: the per-candidate table, the JSON summaries and the short text
+//! summaries for the terminal, for a selection (`select`) and for a shift assessment
+//! (`shift`, and `select --fit-weights`), and the cautions every output carries.
 //!
 //! Everything here turns a [`SelectionOutcome`] or a [`FittedWeights`] into bytes or text;
 //! writing the bytes to disk (atomically) is the caller's job (`crate::io::OutputSet`).
@@ -508,10 +508,25 @@ pub fn warning_line(w: &ShiftWarning) -> String {
 /// The diagnostics as aligned lines, each prefixed by `indent`.
 pub fn shift_diagnostics_text(section: &ShiftSection, indent: &str) -> String {
     let s = &section.summary;
+    let mut lines = Vec::new();
+    discrimination_lines(s, &mut lines);
+    weight_reliability_lines(s, &mut lines);
+    balance_lines(s, &mut lines);
+    weight_lines(s, &mut lines);
+    classifier_lines(s, &mut lines);
     let mut out = String::new();
-    let mut line = |label: &str, text: String| {
+    for (label, text) in lines {
         let _ = writeln!(out, "{indent}{label:<26}{text}");
-    };
+    }
+    out
+}
+
+/// Lines of [`shift_diagnostics_text`]: (label, text).
+type DiagnosticLines = Vec<(String, String)>;
+
+/// How well the classifier tells the sets apart: AUC and the permutation test.
+fn discrimination_lines(s: &ShiftSummary, lines: &mut DiagnosticLines) {
+    let mut line = |label: &str, text: String| lines.push((label.to_string(), text));
     line(
         "domain-classifier AUC",
         format!(
@@ -531,6 +546,11 @@ pub fn shift_diagnostics_text(section: &ShiftSection, indent: &str) -> String {
             1.0 / (s.auc_details.permutations as f64 + 1.0)
         ),
     );
+}
+
+/// Whether weighted estimates can be trusted: effective sample size and k-hat.
+fn weight_reliability_lines(s: &ShiftSummary, lines: &mut DiagnosticLines) {
+    let mut line = |label: &str, text: String| lines.push((label.to_string(), text));
     line(
         "effective sample size",
         format!(
@@ -548,6 +568,11 @@ pub fn shift_diagnostics_text(section: &ShiftSection, indent: &str) -> String {
             shown(s.khat_threshold)
         ),
     );
+}
+
+/// Balance after weighting (features, their squares and products) and overlap.
+fn balance_lines(s: &ShiftSummary, lines: &mut DiagnosticLines) {
+    let mut line = |label: &str, text: String| lines.push((label.to_string(), text));
     let worst = |pick: fn(&FeatureBalance) -> f64| {
         s.balance
             .iter()
@@ -590,6 +615,11 @@ pub fn shift_diagnostics_text(section: &ShiftSection, indent: &str) -> String {
             100.0 * s.overlap.pool_share_above_0_95
         ),
     );
+}
+
+/// The weights: quantiles, capping, unreachable pool units.
+fn weight_lines(s: &ShiftSummary, lines: &mut DiagnosticLines) {
+    let mut line = |label: &str, text: String| lines.push((label.to_string(), text));
     let q = |values: &[f64], level: f64| {
         s.weights
             .quantile_levels
@@ -635,6 +665,11 @@ pub fn shift_diagnostics_text(section: &ShiftSection, indent: &str) -> String {
             s.unreachable_count, s.pool_rows
         ),
     );
+}
+
+/// The classifier fit: convergence, penalty, terms, rows, dropped columns.
+fn classifier_lines(s: &ShiftSummary, lines: &mut DiagnosticLines) {
+    let mut line = |label: &str, text: String| lines.push((label.to_string(), text));
     let fit = &s.fit;
     line(
         "classifier",
@@ -661,7 +696,6 @@ pub fn shift_diagnostics_text(section: &ShiftSection, indent: &str) -> String {
             fit.dropped_constant_columns.join(", "),
         );
     }
-    out
 }
 
 /// The `shift` command's stdout summary: worst problems first (the warnings), then every

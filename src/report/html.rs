@@ -1,5 +1,5 @@
 //! `report.html`: one self-contained page a reviewer can read without the tool — inline CSS,
-//! the shift plots as inline SVG (from `crate::plots`), no external assets, no JavaScript.
+//! the shift plots as inline SVG (from `crate::report::plots`), no external assets, no JavaScript.
 //!
 //! Sections, in this order: title and one-line verdict; warnings (worst first); settings;
 //! the shortlist (or, for an audit, the audited list); shift diagnostics with plots when
@@ -12,7 +12,7 @@
 
 use std::fmt::Write as _;
 
-use crate::plots::{balance_svg, overlap_svg, weights_svg, PlotError};
+use crate::report::plots::{balance_svg, overlap_svg, weights_svg, PlotError};
 use crate::report::{shift_diagnostics_text, ShiftReport, ShiftSection, CAUTIONS};
 use crate::report::{warning_line, SelectSummary};
 use crate::selection::pipeline::SelectionOutcome;
@@ -27,7 +27,7 @@ const WEIGHT_PLOT_BINS: usize = 40;
 ///
 /// # Examples
 /// ```
-/// use weighbridge::html_report::escape;
+/// use weighbridge::report::html::escape;
 /// assert_eq!(escape("<b>&\"'"), "&lt;b&gt;&amp;&quot;&#39;");
 /// ```
 pub fn escape(text: &str) -> String {
@@ -124,7 +124,7 @@ pub struct ShiftPart {
 /// Draw the three shift plots for a report.
 ///
 /// # Errors
-/// As the plot functions of `crate::plots`.
+/// As the plot functions of `crate::report::plots`.
 pub fn shift_part(
     section: &ShiftSection,
     calibration_weights: &[f64],

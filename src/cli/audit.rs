@@ -18,7 +18,7 @@ use crate::report::{tool_info, ToolInfo, CAUTIONS};
 use crate::shift::weighting::{Calibration, FittedWeights, Weighting};
 use crate::workflows::audit::{audit_shortlist, AuditOutcome, POOL_PROBABILITY_LIMIT};
 
-use super::select::{
+use super::common::{
     obtain_run_weights, read_inputs, report_pointer, selection_inputs, weighting_is_fitted,
     weights_method, SelectArgs, SelectConfig,
 };

@@ -18,8 +18,7 @@ use crate::workflows::check::{
     calibration_check, CheckOptions, CheckOutcome, CheckWeights, PI_MAX,
 };
 
-use super::select::{DelimiterArg, InputArgs, PValuesArg, ScoreArg};
-use super::shift::{weighting_failure, FitArgs};
+use super::common::{weighting_failure, DelimiterArg, FitArgs, InputArgs, PValuesArg, ScoreArg};
 use super::{commit_outputs, print_stdout, Failure};
 
 const CHECK_HELP: &str = "\

@@ -1,12 +1,14 @@
 //! Command-line interface: argument parsing and wiring only, no statistics.
 //!
-//! One file per subcommand. Each turns what the user typed into a checked configuration in
+//! One file per subcommand, plus `common` for the flags and helpers several commands share
+//! (command files import only `common` and this module, never each other). Each turns what the user typed into a checked configuration in
 //! one step, calls the library, writes outputs atomically and maps errors to exit codes:
 //! 0 success, 2 bad usage or input (nothing is written), 1 internal failure.
 //! A closed stdout pipe (e.g. `| head`) is not an error.
 
 pub mod audit;
 pub mod check;
+pub mod common;
 pub mod demo;
 pub mod rescreen;
 pub mod select;

@@ -13,7 +13,7 @@ use crate::report::{add_shift, candidates_csv, select_summary, shift_section, Ru
 use crate::selection::pipeline::run_selection;
 use crate::workflows::rescreen::{compare, ChangeCounts, CurrentUnit, PreviousUnit};
 
-use super::select::{
+use super::common::{
     obtain_run_weights, read_inputs, report_pointer, selection_inputs, selection_report_page,
     SelectArgs, SelectConfig,
 };

@@ -2,13 +2,12 @@
 //! turn it into density-ratio weights, and report the shift diagnostics (`shift.json`,
 //! `weights.csv`, `balance.csv`, three SVG plots and a text summary, worst problems first).
 //!
-//! Also holds what `select --fit-weights` (and later commands) share with it: the fit
-//! options ([`FitArgs`]) and the mapping of weighting errors to exit codes.
+//! The fit options it shares with `select --fit-weights` and `check` ([`FitArgs`]) and the
+//! mapping of weighting errors to exit codes are in [`super::common`].
 
 use std::path::{Path, PathBuf};
 
-use clap::{Args, ValueEnum};
-use linfa::ParamGuard;
+use clap::Args;
 
 use crate::io::{
     check_same_features, delimiter_for, read_units, resolve_features, ColumnKind, InputError,
@@ -19,22 +18,12 @@ use crate::report::plots::{balance_svg, overlap_svg, weights_svg};
 use crate::report::{
     balance_csv, shift_report, shift_section, shift_text, weights_csv, ShiftInputs,
 };
-use crate::shift::weighting::{obtain_weights, WeightSource, Weighting, WeightingError};
-use crate::shift::{Expansion, FitRows, ShiftError, ShiftParams};
+use crate::shift::weighting::{obtain_weights, WeightSource, Weighting};
+use crate::shift::ShiftParams;
 
-use super::select::DelimiterArg;
+use super::common::{feature_selectors, report_pointer, weighting_failure, DelimiterArg, FitArgs};
 use super::{commit_outputs, print_stdout, Failure, PhaseTimer, StepStatus};
 
-/// Default L2 penalty alpha (scikit-learn's default C = 1).
-pub const DEFAULT_PENALTY: f64 = 1.0;
-/// Default fraction of labeled (and pool) rows that fit the classifier in held-out mode
-/// (an even split, common practice).
-pub const DEFAULT_FIT_FRACTION: f64 = 0.5;
-/// Default number of cross-validation folds for the AUC (common practice).
-pub const DEFAULT_FOLDS: usize = 5;
-/// Default number of label permutations for the test of "no shift": p-values down to
-/// 1/1001 (common practice).
-pub const DEFAULT_PERMUTATIONS: usize = 1000;
 /// Bins of the weight histogram in weights.svg.
 const WEIGHT_PLOT_BINS: usize = 40;
 
@@ -77,195 +66,6 @@ Examples:
   # a variance shift a linear classifier cannot see: add squared features
   weighbridge shift --labeled labeled.csv --pool pool.csv --features logp,mass,tpsa \\
       --expand squares --out shift-report";
-
-/// `--expand`.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
-pub enum ExpandArg {
-    /// The standardized features only.
-    None,
-    /// Add squares (sees differences in spread).
-    Squares,
-    /// Add pairwise products (sees differences in correlation).
-    Pairwise,
-    /// Add squares and pairwise products.
-    Both,
-}
-
-/// `--fit-rows`.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
-pub enum FitRowsArg {
-    /// Fit on every labeled and pool row; every labeled row calibrates.
-    All,
-    /// Fit on a seeded fraction of the labeled rows and of the pool; those labeled rows do
-    /// not calibrate.
-    HeldOut,
-}
-
-/// Options of the domain-classifier fit, shared by `shift` and `select --fit-weights`.
-/// Every option is optional so that a command can tell whether it was given; the defaults
-/// are stated in the help and applied by [`FitArgs::params`].
-#[derive(Clone, Debug, Default, Args)]
-pub struct FitArgs {
-    /// L2 penalty alpha on the standardized classifier slopes (loss summed over rows,
-    /// intercept unpenalized; scikit-learn C = 1/alpha). Larger = smoother, less extreme
-    /// weights [default: 1.0, scikit-learn's default C = 1].
-    #[arg(long, value_name = "ALPHA", allow_negative_numbers = true)]
-    pub penalty: Option<f64>,
-    /// Extra classifier features: squares see differences in spread, pairwise products
-    /// differences in correlation [default: none].
-    #[arg(long, value_enum, value_name = "TERMS")]
-    pub expand: Option<ExpandArg>,
-    /// Rows the classifier is fit on [default: all; see the output for why].
-    #[arg(long, value_enum, value_name = "MODE")]
-    pub fit_rows: Option<FitRowsArg>,
-    /// With --fit-rows held-out: fraction of the labeled rows (and of the pool) that fit
-    /// the classifier, in (0, 1); those labeled rows do not calibrate [default: 0.5].
-    #[arg(long, value_name = "F", allow_negative_numbers = true)]
-    pub fit_fraction: Option<f64>,
-    /// Cap every weight at this quantile of the fitted weights, in (0, 1]; capping is
-    /// reported [default: no capping].
-    #[arg(long, value_name = "Q", allow_negative_numbers = true)]
-    pub cap_quantile: Option<f64>,
-    /// Fit on a seeded random sample of at most N pool rows (class ratio corrected), then
-    /// predict on every row; for very large pools [default: every pool row].
-    #[arg(long, value_name = "N")]
-    pub pool_sample: Option<usize>,
-    /// Cross-validation folds for the AUC [default: 5].
-    #[arg(long, value_name = "K")]
-    pub folds: Option<usize>,
-    /// Label permutations for the test of "no shift" [default: 1000].
-    #[arg(long, value_name = "B")]
-    pub permutations: Option<usize>,
-}
-
-impl FitArgs {
-    /// The first fit option that was given, as its flag, if any (for commands where the fit
-    /// options only apply together with another flag).
-    pub fn first_given(&self) -> Option<&'static str> {
-        [
-            (self.penalty.is_some(), "--penalty"),
-            (self.expand.is_some(), "--expand"),
-            (self.fit_rows.is_some(), "--fit-rows"),
-            (self.fit_fraction.is_some(), "--fit-fraction"),
-            (self.cap_quantile.is_some(), "--cap-quantile"),
-            (self.pool_sample.is_some(), "--pool-sample"),
-            (self.folds.is_some(), "--folds"),
-            (self.permutations.is_some(), "--permutations"),
-        ]
-        .into_iter()
-        .find_map(|(given, flag)| given.then_some(flag))
-    }
-
-    /// Checked shift parameters with the documented defaults, `seed` for every random
-    /// choice and `fdr` for the count of unreachable pool units.
-    ///
-    /// # Errors
-    /// [`Failure::Input`] naming the flag for an out-of-range value, or `--fit-fraction`
-    /// without `--fit-rows held-out`.
-    pub fn params(&self, seed: u64, fdr: f64) -> Result<ShiftParams, Failure> {
-        let fit_rows = match (self.fit_rows.unwrap_or(FitRowsArg::All), self.fit_fraction) {
-            (FitRowsArg::All, None) => FitRows::All,
-            (FitRowsArg::All, Some(_)) => {
-                return Err(Failure::Input(
-                    "--fit-fraction only applies to --fit-rows held-out (with the default \
-                     --fit-rows all every row fits the classifier). Hint: add --fit-rows \
-                     held-out or drop --fit-fraction."
-                        .to_string(),
-                ))
-            }
-            (FitRowsArg::HeldOut, fraction) => FitRows::HeldOut {
-                labeled_fraction: fraction.unwrap_or(DEFAULT_FIT_FRACTION),
-            },
-        };
-        let params = ShiftParams::new()
-            .alpha(self.penalty.unwrap_or(DEFAULT_PENALTY))
-            .expansion(match self.expand.unwrap_or(ExpandArg::None) {
-                ExpandArg::None => Expansion::None,
-                ExpandArg::Squares => Expansion::Squares,
-                ExpandArg::Pairwise => Expansion::Pairwise,
-                ExpandArg::Both => Expansion::SquaresAndPairwise,
-            })
-            .fit_rows(fit_rows)
-            .cap_quantile(self.cap_quantile)
-            .max_pool_sample(self.pool_sample)
-            .cv_folds(self.folds.unwrap_or(DEFAULT_FOLDS))
-            .permutations(self.permutations.unwrap_or(DEFAULT_PERMUTATIONS))
-            .seed(seed)
-            .fdr(fdr);
-        params.check_ref().map_err(option_failure)?;
-        Ok(params)
-    }
-}
-
-/// The flag behind a shift option name.
-fn flag_of(option: &str) -> &'static str {
-    match option {
-        "alpha" => "--penalty",
-        "labeled_fraction" => "--fit-fraction",
-        "cap_quantile" => "--cap-quantile",
-        "max_pool_sample" => "--pool-sample",
-        "cv_folds" => "--folds",
-        "cv_max_rows" => "--folds",
-        "permutations" => "--permutations",
-        "fdr" => "--fdr",
-        _ => "a fit option",
-    }
-}
-
-/// An invalid shift option as a usage error naming the flag.
-fn option_failure(e: ShiftError) -> Failure {
-    match e {
-        ShiftError::InvalidOption {
-            name,
-            expected,
-            value,
-        } => Failure::Input(format!(
-            "{} must be {expected}, got {value}. Hint: see `weighbridge shift --help` for \
-             the range and default of every fit option.",
-            flag_of(name)
-        )),
-        other => Failure::Internal(format!("unexpected error while checking options: {other}")),
-    }
-}
-
-/// Map a failure to obtain weights to an exit code and a message with a hint. `labeled` and
-/// `pool` name the files in messages.
-pub(crate) fn weighting_failure(e: WeightingError, labeled: &Path, pool: &Path) -> Failure {
-    let files = format!("{} and {}", labeled.display(), pool.display());
-    match e {
-        WeightingError::Shift(ShiftError::AllConstant { dropped }) => Failure::Input(format!(
-            "every selected feature is constant on the rows the classifier is fit on ({}) in \
-             {files}: there is nothing to tell the labeled set from the pool. Hint: choose \
-             feature columns that vary with --features.",
-            dropped.join(", ")
-        )),
-        WeightingError::Shift(e @ ShiftError::TooFewRows { .. }) => Failure::Input(format!(
-            "{files}: {e}. Hint: use fewer --folds (at least 2), a larger --fit-fraction, or \
-             more rows."
-        )),
-        WeightingError::Shift(e @ ShiftError::InvalidOption { .. }) => option_failure(e),
-        WeightingError::Shift(
-            e @ (ShiftError::FeatureMismatch { .. }
-            | ShiftError::NoFeatures
-            | ShiftError::NonFinite { .. }
-            | ShiftError::OneClass { .. }),
-        ) => Failure::Input(format!("{files}: {e}")),
-        WeightingError::Shift(other) => {
-            Failure::Internal(format!("the domain classifier failed on {files}: {other}"))
-        }
-        e @ (WeightingError::NoFeatures { .. }
-        | WeightingError::FeatureMismatch { .. }
-        | WeightingError::GivenColumnNotRead { .. }) => Failure::Input(e.to_string()),
-    }
-}
-
-/// Split `--features` selectors that were given as one comma list.
-pub(crate) fn feature_selectors(raw: &[String]) -> Vec<String> {
-    raw.iter()
-        .flat_map(|s| s.split(','))
-        .map(|s| s.trim().to_string())
-        .collect()
-}
 
 /// Command-line arguments of `shift`, as typed.
 #[derive(Debug, Args)]
@@ -504,105 +304,9 @@ pub fn run(args: ShiftArgs) -> Result<(), Failure> {
             config.out.display()
         ));
         if config.report {
-            text.push_str(&super::select::report_pointer(&config.out));
+            text.push_str(&report_pointer(&config.out));
         }
         print_stdout(&text);
     }
     Ok(())
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn defaults_are_the_documented_ones() {
-        let params = FitArgs::default().params(7, 0.1).unwrap().check().unwrap();
-        assert_eq!(params.classifier().alpha, DEFAULT_PENALTY);
-        assert_eq!(params.expansion(), Expansion::None);
-        assert_eq!(params.fit_rows(), FitRows::All);
-        assert_eq!(params.cap_quantile(), None);
-        assert_eq!(params.max_pool_sample(), None);
-        assert_eq!(params.cv_folds(), DEFAULT_FOLDS);
-        assert_eq!(params.permutations(), DEFAULT_PERMUTATIONS);
-        assert_eq!(params.seed(), 7);
-        assert!(FitArgs::default().first_given().is_none());
-    }
-
-    #[test]
-    fn held_out_fraction_defaults_and_needs_held_out_mode() {
-        let held_out = FitArgs {
-            fit_rows: Some(FitRowsArg::HeldOut),
-            ..FitArgs::default()
-        };
-        let params = held_out.params(1, 0.1).unwrap().check().unwrap();
-        assert_eq!(
-            params.fit_rows(),
-            FitRows::HeldOut {
-                labeled_fraction: DEFAULT_FIT_FRACTION
-            }
-        );
-        let stray = FitArgs {
-            fit_fraction: Some(0.3),
-            ..FitArgs::default()
-        };
-        assert!(
-            matches!(stray.params(1, 0.1), Err(Failure::Input(m)) if m.contains("--fit-fraction"))
-        );
-        assert_eq!(stray.first_given(), Some("--fit-fraction"));
-    }
-
-    #[test]
-    fn bad_values_name_their_flag() {
-        let cases = [
-            (
-                FitArgs {
-                    penalty: Some(0.0),
-                    ..FitArgs::default()
-                },
-                "--penalty",
-            ),
-            (
-                FitArgs {
-                    cap_quantile: Some(1.5),
-                    ..FitArgs::default()
-                },
-                "--cap-quantile",
-            ),
-            (
-                FitArgs {
-                    folds: Some(1),
-                    ..FitArgs::default()
-                },
-                "--folds",
-            ),
-            (
-                FitArgs {
-                    fit_rows: Some(FitRowsArg::HeldOut),
-                    fit_fraction: Some(1.0),
-                    ..FitArgs::default()
-                },
-                "--fit-fraction",
-            ),
-            (
-                FitArgs {
-                    pool_sample: Some(1),
-                    ..FitArgs::default()
-                },
-                "--pool-sample",
-            ),
-        ];
-        for (args, flag) in cases {
-            match args.params(1, 0.1) {
-                Err(Failure::Input(m)) => assert!(m.starts_with(flag), "{m}"),
-                other => panic!("{flag}: {other:?}"),
-            }
-        }
-    }
-
-    #[test]
-    fn feature_lists_split_on_commas() {
-        let raw = vec!["f1..f3, g".to_string(), "h".to_string()];
-        assert_eq!(feature_selectors(&raw), ["f1..f3", "g", "h"]);
-    }
 }

@@ -1,0 +1,725 @@
+//! What several commands share: the input flags ([`InputArgs`]), the flags of `select`
+//! ([`SelectArgs`], which `audit` and `rescreen` take whole) and its checked configuration
+//! ([`SelectConfig`]), the options of the domain-classifier fit ([`FitArgs`], used by
+//! `shift`, `select --fit-weights` and `check`), the value enums behind them, and the helpers
+//! that read the inputs, obtain the weights, map weighting errors to exit codes and build
+//! report.html of a selection.
+
+use std::path::{Path, PathBuf};
+
+use clap::{Args, ValueEnum};
+use linfa::ParamGuard;
+
+use crate::conformal::pvalue::PValueKind;
+use crate::conformal::score::{ScoreKind, Thresholds};
+use crate::io::{check_same_features, read_units, ReadOptions, Role, UnitTable};
+use crate::report::html::{selection_report, shift_part, WeightsMethod};
+use crate::selection::pipeline::{LabeledInput, PoolInput, Procedure, SelectOptions};
+use crate::selection::pruning::Pruning;
+use crate::shift::weighting::{
+    obtain_weights, Calibration, WeightSource, Weighting, WeightingError,
+};
+use crate::shift::{Expansion, FitRows, ShiftError, ShiftParams};
+
+use super::Failure;
+
+/// Default L2 penalty alpha (scikit-learn's default C = 1).
+pub const DEFAULT_PENALTY: f64 = 1.0;
+/// Default fraction of labeled (and pool) rows that fit the classifier in held-out mode
+/// (an even split, common practice).
+pub const DEFAULT_FIT_FRACTION: f64 = 0.5;
+/// Default number of cross-validation folds for the AUC (common practice).
+pub const DEFAULT_FOLDS: usize = 5;
+/// Default number of label permutations for the test of "no shift": p-values down to
+/// 1/1001 (common practice).
+pub const DEFAULT_PERMUTATIONS: usize = 1000;
+const SELECT_HELP: &str = "\
+Reads both files completely into memory (about 100 bytes per row plus 8 per feature).
+Cost: O((n + m) log n) for the p-values, O(m log m) for conditional calibration.
+
+Weights: none (every weight 1: no shift assumed), given in a column of both files
+(--weight-column), or fitted (--fit-weights --features LIST): a domain classifier tells
+labeled rows from pool rows and its odds become the density-ratio weights, with the fit
+options of `weighbridge shift` (--penalty, --expand, --fit-rows, --fit-fraction,
+--cap-quantile, --pool-sample, --folds, --permutations; same defaults; the fit uses
+--seed and counts unreachable units at --fdr). The fit costs about what `weighbridge shift`
+costs; its diagnostics and warnings go into summary.json (`shift`) and the summary below.
+With --fit-rows held-out the labeled rows that fit the classifier do not calibrate.
+
+Outputs in --out (written all at once; nothing is written when an input is bad):
+  candidates.csv  one row per pool unit in input order: id, score, weight, p_value,
+                  selected, [first_step, conditional_count,] never_selectable_because
+  summary.json    settings, counts, warnings, seed, tool version, and with --fit-weights
+                  the shift diagnostics (`shift`)
+  report.html     with --report: one self-contained page (no scripts, no external files)
+
+Exit codes: 0 success, 2 bad usage or input, 1 internal failure.
+
+Examples:
+  # weights given in column w, one threshold for every unit
+  weighbridge select --labeled fixtures/labeled.csv --pool fixtures/pool.csv \\
+      --threshold 6.5 --weight-column w --fdr 0.1 --out shortlist
+
+  # per-unit thresholds, plain BH on conservative p-values
+  weighbridge select --labeled labeled.csv --pool pool.csv --threshold-column c \\
+      --procedure bh --pvalues conservative --fdr 0.2
+
+  # weights fitted on the descriptors f1..f5
+  weighbridge select --labeled fixtures/labeled.csv --pool fixtures/pool.csv \\
+      --threshold 6.5 --fit-weights --features f1..f5 --fdr 0.1 --out shortlist";
+
+/// The input files and their columns, shared by `select` (and so `audit`, `rescreen`) and
+/// `check`.
+#[derive(Debug, Args)]
+// Exactly one of the two threshold flags; as a group, the error names both choices.
+#[command(group(
+    clap::ArgGroup::new("threshold_choice")
+        .args(["threshold", "threshold_column"])
+        .required(true)
+        .multiple(false)
+))]
+pub struct InputArgs {
+    /// Labeled file (CSV, or TSV by extension): units with measured outcome and prediction.
+    #[arg(long, value_name = "FILE")]
+    pub labeled: PathBuf,
+    /// Pool file: untested units with predictions.
+    #[arg(long, value_name = "FILE")]
+    pub pool: PathBuf,
+    /// Id column (both files).
+    #[arg(long, default_value = "id", value_name = "NAME")]
+    pub id: String,
+    /// Outcome column (labeled file only).
+    #[arg(long, default_value = "y", value_name = "NAME")]
+    pub outcome: String,
+    /// Prediction column (both files).
+    #[arg(long, default_value = "pred", value_name = "NAME")]
+    pub prediction: String,
+    /// One threshold for every unit: a unit is interesting when its outcome exceeds it.
+    #[arg(long, value_name = "VALUE", allow_negative_numbers = true)]
+    pub threshold: Option<f64>,
+    /// Per-unit thresholds, a column present in both files.
+    #[arg(long, value_name = "NAME")]
+    pub threshold_column: Option<String>,
+}
+
+impl InputArgs {
+    /// A constant threshold must be finite.
+    ///
+    /// # Errors
+    /// [`Failure::Input`] for NaN or infinite `--threshold`.
+    pub(crate) fn check_threshold(&self) -> Result<(), Failure> {
+        match self.threshold {
+            Some(c) if !c.is_finite() => Err(Failure::Input(format!(
+                "--threshold must be a finite number, got {c}"
+            ))),
+            _ => Ok(()),
+        }
+    }
+
+    /// How to read the labeled and the pool file with these columns.
+    pub(crate) fn read_options(
+        &self,
+        weight_column: Option<String>,
+        features: &[String],
+        delimiter: Option<DelimiterArg>,
+    ) -> (ReadOptions, ReadOptions) {
+        let pool = ReadOptions {
+            id: self.id.clone(),
+            outcome: None,
+            prediction: self.prediction.clone(),
+            threshold_column: self.threshold_column.clone(),
+            weight_column,
+            features: feature_selectors(features),
+            delimiter: delimiter.map(DelimiterArg::byte),
+        };
+        let labeled = ReadOptions {
+            outcome: Some(self.outcome.clone()),
+            ..pool.clone()
+        };
+        (labeled, pool)
+    }
+}
+
+/// Command-line arguments of `select`, as typed.
+#[derive(Debug, Args)]
+#[command(after_long_help = SELECT_HELP)]
+pub struct SelectArgs {
+    #[command(flatten)]
+    pub input: InputArgs,
+    /// Density-ratio weights (pool / labeled), a column in both files. Without it (and
+    /// without --fit-weights) every weight is 1, i.e. no shift is assumed.
+    #[arg(long, value_name = "NAME")]
+    pub weight_column: Option<String>,
+    /// Fit the weights with a domain classifier on the --features columns (see `weighbridge
+    /// shift --help` for the fit options, which apply here too).
+    #[arg(long, conflicts_with = "weight_column", requires = "features")]
+    pub fit_weights: bool,
+    /// With --fit-weights: feature columns in both files, a comma list of names and/or
+    /// ranges such as `f1..f32`.
+    #[arg(long, value_name = "LIST", requires = "fit_weights")]
+    pub features: Vec<String>,
+    #[command(flatten)]
+    pub fit: FitArgs,
+    /// Score function.
+    #[arg(long, value_enum, default_value_t = ScoreArg::Clipped)]
+    pub score: ScoreArg,
+    /// Selection procedure.
+    #[arg(long, value_enum, default_value_t = ProcedureArg::Conditional)]
+    pub procedure: ProcedureArg,
+    /// p-values [default: conservative for conditional, randomized for bh and by].
+    #[arg(long, value_enum)]
+    pub pvalues: Option<PValuesArg>,
+    /// Pruning of conditional calibration.
+    #[arg(long, value_enum, default_value_t = PruningArg::Homogeneous)]
+    pub pruning: PruningArg,
+    /// Target false discovery rate q, in (0, 1].
+    #[arg(
+        long,
+        default_value_t = 0.1,
+        value_name = "Q",
+        allow_negative_numbers = true
+    )]
+    pub fdr: f64,
+    /// Seed of the random draws (randomized p-values, pruning).
+    #[arg(long, default_value_t = crate::random::DEFAULT_SEED)]
+    pub seed: u64,
+    /// Output folder (created if missing).
+    #[arg(long, default_value = "weighbridge-out", value_name = "DIR")]
+    pub out: PathBuf,
+    /// Field delimiter [default: tab for .tsv/.tab files, else comma].
+    #[arg(long, value_enum)]
+    pub delimiter: Option<DelimiterArg>,
+    /// Do not print the summary.
+    #[arg(long)]
+    pub quiet: bool,
+    /// Also write report.html: a self-contained page (warnings, settings, shortlist,
+    /// shift diagnostics with plots, cautions, method).
+    #[arg(long)]
+    pub report: bool,
+}
+
+/// `--score`.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum ScoreArg {
+    /// +inf for outcomes above the threshold, else threshold - prediction (most powerful
+    /// for a fixed threshold; works for 0/1 outcomes with probabilities).
+    Clipped,
+    /// outcome - prediction.
+    Residual,
+}
+
+/// `--procedure`.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum ProcedureArg {
+    /// Conditional calibration: finite-sample FDR control under covariate shift.
+    Conditional,
+    /// Benjamini-Hochberg on the weighted p-values.
+    Bh,
+    /// Benjamini-Yekutieli: valid under any dependence, less powerful.
+    By,
+}
+
+/// `--pvalues`.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum PValuesArg {
+    /// Ties count against the unit; required by conditional calibration.
+    Conservative,
+    /// Ties broken by a seeded uniform draw.
+    Randomized,
+}
+
+/// `--pruning`.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum PruningArg {
+    /// One shared random draw (most powerful).
+    Homogeneous,
+    /// One random draw per unit.
+    Heterogeneous,
+    /// No randomness; nearly powerless when weights vary.
+    Deterministic,
+}
+
+/// `--delimiter`.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum DelimiterArg {
+    Comma,
+    Tab,
+    Semicolon,
+}
+
+impl DelimiterArg {
+    pub(crate) fn byte(self) -> u8 {
+        match self {
+            DelimiterArg::Comma => b',',
+            DelimiterArg::Tab => b'\t',
+            DelimiterArg::Semicolon => b';',
+        }
+    }
+}
+
+/// Checked configuration of one `select` run.
+#[derive(Debug, Clone)]
+pub struct SelectConfig {
+    pub labeled_path: PathBuf,
+    pub pool_path: PathBuf,
+    pub labeled_read: ReadOptions,
+    pub pool_read: ReadOptions,
+    pub threshold: Option<f64>,
+    pub options: SelectOptions,
+    /// Where the weights come from.
+    pub weights: WeightSource,
+    pub out: PathBuf,
+    pub quiet: bool,
+    /// Write report.html too.
+    pub report: bool,
+}
+
+impl TryFrom<SelectArgs> for SelectConfig {
+    type Error = Failure;
+
+    fn try_from(a: SelectArgs) -> Result<Self, Failure> {
+        a.input.check_threshold()?;
+        let options = SelectOptions {
+            fdr: a.fdr,
+            procedure: match a.procedure {
+                ProcedureArg::Conditional => Procedure::Conditional,
+                ProcedureArg::Bh => Procedure::Bh,
+                ProcedureArg::By => Procedure::By,
+            },
+            pruning: match a.pruning {
+                PruningArg::Homogeneous => Pruning::Homogeneous,
+                PruningArg::Heterogeneous => Pruning::Heterogeneous,
+                PruningArg::Deterministic => Pruning::Deterministic,
+            },
+            pvalues: a.pvalues.map(|p| match p {
+                PValuesArg::Conservative => PValueKind::Conservative,
+                PValuesArg::Randomized => PValueKind::Randomized,
+            }),
+            score: match a.score {
+                ScoreArg::Clipped => ScoreKind::Clipped,
+                ScoreArg::Residual => ScoreKind::Residual,
+            },
+            seed: a.seed,
+        };
+        // Usage errors (bad q, conditional + randomized, stray fit options) before any file
+        // is read.
+        options.check()?;
+        let weights = if a.fit_weights {
+            WeightSource::Fitted {
+                params: a.fit.params(a.seed, a.fdr)?,
+            }
+        } else if let Some(flag) = a.fit.first_given() {
+            return Err(Failure::Input(format!(
+                "{flag} is an option of the weight fit and needs --fit-weights. Hint: add \
+                 --fit-weights --features LIST, or drop {flag}."
+            )));
+        } else if let Some(column) = &a.weight_column {
+            WeightSource::Given {
+                column: column.clone(),
+            }
+        } else {
+            WeightSource::None
+        };
+        let (labeled_read, pool_read) =
+            a.input
+                .read_options(a.weight_column.clone(), &a.features, a.delimiter);
+        Ok(SelectConfig {
+            labeled_path: a.input.labeled,
+            pool_path: a.input.pool,
+            labeled_read,
+            pool_read,
+            threshold: a.input.threshold,
+            options,
+            weights,
+            out: a.out,
+            quiet: a.quiet,
+            report: a.report,
+        })
+    }
+}
+
+/// The selection's two sides: the calibrating labeled rows (held-out fitting drops the rows
+/// that fit the classifier) and the pool, with the run's weights and thresholds.
+pub(crate) fn selection_inputs<'a>(
+    config: &SelectConfig,
+    pool: &'a UnitTable,
+    calibration: &'a Calibration<'a>,
+    weighting: &'a Weighting<'a>,
+) -> (LabeledInput<'a>, PoolInput<'a>) {
+    (
+        LabeledInput {
+            outcome: &calibration.outcome,
+            prediction: &calibration.prediction,
+            thresholds: match (&calibration.threshold, config.threshold) {
+                (Some(column), _) => Thresholds::PerUnit(column),
+                (None, Some(c)) => Thresholds::Constant(c),
+                (None, None) => unreachable!("clap requires --threshold or --threshold-column"),
+            },
+            weights: calibration.weights.as_deref(),
+        },
+        PoolInput {
+            prediction: &pool.prediction,
+            thresholds: thresholds_of(pool, config.threshold),
+            weights: weighting.pool_weights(),
+        },
+    )
+}
+
+/// Thresholds of a table: the constant, or its threshold column.
+pub(crate) fn thresholds_of(table: &UnitTable, constant: Option<f64>) -> Thresholds<'_> {
+    match (&table.threshold, constant) {
+        (Some(column), _) => Thresholds::PerUnit(column),
+        (None, Some(c)) => Thresholds::Constant(c),
+        (None, None) => unreachable!("clap requires --threshold or --threshold-column"),
+    }
+}
+
+/// Read both files with the configured columns (and the same feature columns in both when
+/// weights are fitted).
+pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable), Failure> {
+    let labeled = read_units(&config.labeled_path, Role::Labeled, &config.labeled_read)?;
+    let pool = read_units(&config.pool_path, Role::Pool, &config.pool_read)?;
+    check_same_features(&labeled, &pool)?;
+    Ok((labeled, pool))
+}
+
+/// The run's weights (none, given or fitted; see [`crate::shift::weighting`]), with errors mapped
+/// to exit codes and messages naming the files.
+pub(crate) fn obtain_run_weights<'a>(
+    config: &SelectConfig,
+    labeled: &'a UnitTable,
+    pool: &'a UnitTable,
+) -> Result<Weighting<'a>, Failure> {
+    obtain_weights(&config.weights, labeled, pool)
+        .map_err(|e| weighting_failure(e, &config.labeled_path, &config.pool_path))
+}
+
+/// Are the weights fitted in this run (the step worth announcing)?
+pub(crate) fn weighting_is_fitted(config: &SelectConfig) -> bool {
+    matches!(config.weights, WeightSource::Fitted { .. })
+}
+
+/// How the method section of report.html describes the weights.
+pub(crate) fn weights_method(source: &WeightSource) -> WeightsMethod {
+    match source {
+        WeightSource::None => WeightsMethod::None,
+        WeightSource::Given { column } => WeightsMethod::Given(format!("column {column}")),
+        _ => WeightsMethod::Fitted,
+    }
+}
+
+/// report.html of a selection run (`select --report`, `rescreen --report`).
+pub(crate) fn selection_report_page(
+    source: WeightSource,
+    summary: &crate::report::SelectSummary,
+    ids: &[String],
+    outcome: &crate::selection::pipeline::SelectionOutcome,
+    weighting: &Weighting<'_>,
+    calibration: &Calibration<'_>,
+) -> Result<Vec<u8>, Failure> {
+    let part = match (weighting.fitted(), summary.shift.as_ref()) {
+        (Some(fitted), Some(section)) => Some(
+            shift_part(
+                section,
+                calibration.weights.as_deref().unwrap_or(&[]),
+                &fitted.assessment.pool.weight,
+            )
+            .map_err(|e| Failure::Internal(e.to_string()))?,
+        ),
+        _ => None,
+    };
+    let report = selection_report(summary, ids, outcome, part, weights_method(&source));
+    Ok(report.render().into_bytes())
+}
+
+/// "report: file:///abs/path/report.html" for the end of a summary.
+pub(crate) fn report_pointer(out: &std::path::Path) -> String {
+    let path = out.join("report.html");
+    let path = std::path::absolute(&path).unwrap_or(path);
+    format!("report: file://{}\n", path.display())
+}
+
+/// `--expand`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum ExpandArg {
+    /// The standardized features only.
+    None,
+    /// Add squares (sees differences in spread).
+    Squares,
+    /// Add pairwise products (sees differences in correlation).
+    Pairwise,
+    /// Add squares and pairwise products.
+    Both,
+}
+
+/// `--fit-rows`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum FitRowsArg {
+    /// Fit on every labeled and pool row; every labeled row calibrates.
+    All,
+    /// Fit on a seeded fraction of the labeled rows and of the pool; those labeled rows do
+    /// not calibrate.
+    HeldOut,
+}
+
+/// Options of the domain-classifier fit, shared by `shift` and `select --fit-weights`.
+/// Every option is optional so that a command can tell whether it was given; the defaults
+/// are stated in the help and applied by [`FitArgs::params`].
+#[derive(Clone, Debug, Default, Args)]
+pub struct FitArgs {
+    /// L2 penalty alpha on the standardized classifier slopes (loss summed over rows,
+    /// intercept unpenalized; scikit-learn C = 1/alpha). Larger = smoother, less extreme
+    /// weights [default: 1.0, scikit-learn's default C = 1].
+    #[arg(long, value_name = "ALPHA", allow_negative_numbers = true)]
+    pub penalty: Option<f64>,
+    /// Extra classifier features: squares see differences in spread, pairwise products
+    /// differences in correlation [default: none].
+    #[arg(long, value_enum, value_name = "TERMS")]
+    pub expand: Option<ExpandArg>,
+    /// Rows the classifier is fit on [default: all; see the output for why].
+    #[arg(long, value_enum, value_name = "MODE")]
+    pub fit_rows: Option<FitRowsArg>,
+    /// With --fit-rows held-out: fraction of the labeled rows (and of the pool) that fit
+    /// the classifier, in (0, 1); those labeled rows do not calibrate [default: 0.5].
+    #[arg(long, value_name = "F", allow_negative_numbers = true)]
+    pub fit_fraction: Option<f64>,
+    /// Cap every weight at this quantile of the fitted weights, in (0, 1]; capping is
+    /// reported [default: no capping].
+    #[arg(long, value_name = "Q", allow_negative_numbers = true)]
+    pub cap_quantile: Option<f64>,
+    /// Fit on a seeded random sample of at most N pool rows (class ratio corrected), then
+    /// predict on every row; for very large pools [default: every pool row].
+    #[arg(long, value_name = "N")]
+    pub pool_sample: Option<usize>,
+    /// Cross-validation folds for the AUC [default: 5].
+    #[arg(long, value_name = "K")]
+    pub folds: Option<usize>,
+    /// Label permutations for the test of "no shift" [default: 1000].
+    #[arg(long, value_name = "B")]
+    pub permutations: Option<usize>,
+}
+
+impl FitArgs {
+    /// The first fit option that was given, as its flag, if any (for commands where the fit
+    /// options only apply together with another flag).
+    pub fn first_given(&self) -> Option<&'static str> {
+        [
+            (self.penalty.is_some(), "--penalty"),
+            (self.expand.is_some(), "--expand"),
+            (self.fit_rows.is_some(), "--fit-rows"),
+            (self.fit_fraction.is_some(), "--fit-fraction"),
+            (self.cap_quantile.is_some(), "--cap-quantile"),
+            (self.pool_sample.is_some(), "--pool-sample"),
+            (self.folds.is_some(), "--folds"),
+            (self.permutations.is_some(), "--permutations"),
+        ]
+        .into_iter()
+        .find_map(|(given, flag)| given.then_some(flag))
+    }
+
+    /// Checked shift parameters with the documented defaults, `seed` for every random
+    /// choice and `fdr` for the count of unreachable pool units.
+    ///
+    /// # Errors
+    /// [`Failure::Input`] naming the flag for an out-of-range value, or `--fit-fraction`
+    /// without `--fit-rows held-out`.
+    pub fn params(&self, seed: u64, fdr: f64) -> Result<ShiftParams, Failure> {
+        let fit_rows = match (self.fit_rows.unwrap_or(FitRowsArg::All), self.fit_fraction) {
+            (FitRowsArg::All, None) => FitRows::All,
+            (FitRowsArg::All, Some(_)) => {
+                return Err(Failure::Input(
+                    "--fit-fraction only applies to --fit-rows held-out (with the default \
+                     --fit-rows all every row fits the classifier). Hint: add --fit-rows \
+                     held-out or drop --fit-fraction."
+                        .to_string(),
+                ))
+            }
+            (FitRowsArg::HeldOut, fraction) => FitRows::HeldOut {
+                labeled_fraction: fraction.unwrap_or(DEFAULT_FIT_FRACTION),
+            },
+        };
+        let params = ShiftParams::new()
+            .alpha(self.penalty.unwrap_or(DEFAULT_PENALTY))
+            .expansion(match self.expand.unwrap_or(ExpandArg::None) {
+                ExpandArg::None => Expansion::None,
+                ExpandArg::Squares => Expansion::Squares,
+                ExpandArg::Pairwise => Expansion::Pairwise,
+                ExpandArg::Both => Expansion::SquaresAndPairwise,
+            })
+            .fit_rows(fit_rows)
+            .cap_quantile(self.cap_quantile)
+            .max_pool_sample(self.pool_sample)
+            .cv_folds(self.folds.unwrap_or(DEFAULT_FOLDS))
+            .permutations(self.permutations.unwrap_or(DEFAULT_PERMUTATIONS))
+            .seed(seed)
+            .fdr(fdr);
+        params.check_ref().map_err(option_failure)?;
+        Ok(params)
+    }
+}
+
+/// The flag behind a shift option name.
+fn flag_of(option: &str) -> &'static str {
+    match option {
+        "alpha" => "--penalty",
+        "labeled_fraction" => "--fit-fraction",
+        "cap_quantile" => "--cap-quantile",
+        "max_pool_sample" => "--pool-sample",
+        "cv_folds" => "--folds",
+        "cv_max_rows" => "--folds",
+        "permutations" => "--permutations",
+        "fdr" => "--fdr",
+        _ => "a fit option",
+    }
+}
+
+/// An invalid shift option as a usage error naming the flag.
+fn option_failure(e: ShiftError) -> Failure {
+    match e {
+        ShiftError::InvalidOption {
+            name,
+            expected,
+            value,
+        } => Failure::Input(format!(
+            "{} must be {expected}, got {value}. Hint: see `weighbridge shift --help` for \
+             the range and default of every fit option.",
+            flag_of(name)
+        )),
+        other => Failure::Internal(format!("unexpected error while checking options: {other}")),
+    }
+}
+
+/// Map a failure to obtain weights to an exit code and a message with a hint. `labeled` and
+/// `pool` name the files in messages.
+pub(crate) fn weighting_failure(e: WeightingError, labeled: &Path, pool: &Path) -> Failure {
+    let files = format!("{} and {}", labeled.display(), pool.display());
+    match e {
+        WeightingError::Shift(ShiftError::AllConstant { dropped }) => Failure::Input(format!(
+            "every selected feature is constant on the rows the classifier is fit on ({}) in \
+             {files}: there is nothing to tell the labeled set from the pool. Hint: choose \
+             feature columns that vary with --features.",
+            dropped.join(", ")
+        )),
+        WeightingError::Shift(e @ ShiftError::TooFewRows { .. }) => Failure::Input(format!(
+            "{files}: {e}. Hint: use fewer --folds (at least 2), a larger --fit-fraction, or \
+             more rows."
+        )),
+        WeightingError::Shift(e @ ShiftError::InvalidOption { .. }) => option_failure(e),
+        WeightingError::Shift(
+            e @ (ShiftError::FeatureMismatch { .. }
+            | ShiftError::NoFeatures
+            | ShiftError::NonFinite { .. }
+            | ShiftError::OneClass { .. }),
+        ) => Failure::Input(format!("{files}: {e}")),
+        WeightingError::Shift(other) => {
+            Failure::Internal(format!("the domain classifier failed on {files}: {other}"))
+        }
+        e @ (WeightingError::NoFeatures { .. }
+        | WeightingError::FeatureMismatch { .. }
+        | WeightingError::GivenColumnNotRead { .. }) => Failure::Input(e.to_string()),
+    }
+}
+
+/// Split `--features` selectors that were given as one comma list.
+pub(crate) fn feature_selectors(raw: &[String]) -> Vec<String> {
+    raw.iter()
+        .flat_map(|s| s.split(','))
+        .map(|s| s.trim().to_string())
+        .collect()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn defaults_are_the_documented_ones() {
+        let params = FitArgs::default().params(7, 0.1).unwrap().check().unwrap();
+        assert_eq!(params.classifier().alpha, DEFAULT_PENALTY);
+        assert_eq!(params.expansion(), Expansion::None);
+        assert_eq!(params.fit_rows(), FitRows::All);
+        assert_eq!(params.cap_quantile(), None);
+        assert_eq!(params.max_pool_sample(), None);
+        assert_eq!(params.cv_folds(), DEFAULT_FOLDS);
+        assert_eq!(params.permutations(), DEFAULT_PERMUTATIONS);
+        assert_eq!(params.seed(), 7);
+        assert!(FitArgs::default().first_given().is_none());
+    }
+
+    #[test]
+    fn held_out_fraction_defaults_and_needs_held_out_mode() {
+        let held_out = FitArgs {
+            fit_rows: Some(FitRowsArg::HeldOut),
+            ..FitArgs::default()
+        };
+        let params = held_out.params(1, 0.1).unwrap().check().unwrap();
+        assert_eq!(
+            params.fit_rows(),
+            FitRows::HeldOut {
+                labeled_fraction: DEFAULT_FIT_FRACTION
+            }
+        );
+        let stray = FitArgs {
+            fit_fraction: Some(0.3),
+            ..FitArgs::default()
+        };
+        assert!(
+            matches!(stray.params(1, 0.1), Err(Failure::Input(m)) if m.contains("--fit-fraction"))
+        );
+        assert_eq!(stray.first_given(), Some("--fit-fraction"));
+    }
+
+    #[test]
+    fn bad_values_name_their_flag() {
+        let cases = [
+            (
+                FitArgs {
+                    penalty: Some(0.0),
+                    ..FitArgs::default()
+                },
+                "--penalty",
+            ),
+            (
+                FitArgs {
+                    cap_quantile: Some(1.5),
+                    ..FitArgs::default()
+                },
+                "--cap-quantile",
+            ),
+            (
+                FitArgs {
+                    folds: Some(1),
+                    ..FitArgs::default()
+                },
+                "--folds",
+            ),
+            (
+                FitArgs {
+                    fit_rows: Some(FitRowsArg::HeldOut),
+                    fit_fraction: Some(1.0),
+                    ..FitArgs::default()
+                },
+                "--fit-fraction",
+            ),
+            (
+                FitArgs {
+                    pool_sample: Some(1),
+                    ..FitArgs::default()
+                },
+                "--pool-sample",
+            ),
+        ];
+        for (args, flag) in cases {
+            match args.params(1, 0.1) {
+                Err(Failure::Input(m)) => assert!(m.starts_with(flag), "{m}"),
+                other => panic!("{flag}: {other:?}"),
+            }
+        }
+    }
+
+    #[test]
+    fn feature_lists_split_on_commas() {
+        let raw = vec!["f1..f3, g".to_string(), "h".to_string()];
+        assert_eq!(feature_selectors(&raw), ["f1..f3", "g", "h"]);
+    }
+}

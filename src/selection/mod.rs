@@ -5,10 +5,13 @@
 //! - [`conditional`]: conditional calibration (Jin & Candes 2023), its `K_j` in
 //!   `O(m log m)`;
 //! - [`pruning`]: the pruning of conditional calibration's first-step set;
+//! - [`draw`]: what the pruning draw does to the shortlist (size distribution, empty
+//!   probability, per-unit selection probability);
 //! - [`pipeline`]: one run from scores to the shortlist (checked options, scores ->
 //!   p-values -> procedure, counts, warnings).
 
 pub mod bh;
 pub mod conditional;
+pub mod draw;
 pub mod pipeline;
 pub mod pruning;

@@ -425,7 +425,7 @@ fn assert_pvalue_range(p: &[f64]) {
 // The good path on the README fixtures
 // ---------------------------------------------------------------------------------------
 
-const CONDITIONAL_COLUMNS: [&str; 8] = [
+const CONDITIONAL_COLUMNS: [&str; 11] = [
     "id",
     "score",
     "weight",
@@ -434,6 +434,9 @@ const CONDITIONAL_COLUMNS: [&str; 8] = [
     "first_step",
     "conditional_count",
     "never_selectable_because",
+    "selection_probability",
+    "q_value",
+    "q_value_by",
 ];
 
 const SUMMARY_KEYS: [&str; 15] = [
@@ -644,7 +647,10 @@ fn check_step_up_run(out: &Path, procedure: &str, pvalues: &str, q: f64) -> Cand
             "weight",
             "p_value",
             "selected",
-            "never_selectable_because"
+            "never_selectable_because",
+            "selection_probability",
+            "q_value",
+            "q_value_by"
         ],
         "{procedure}: no first_step / conditional_count columns"
     );

@@ -9,7 +9,9 @@ use std::fmt::Write as _;
 
 use serde::Serialize;
 
-use crate::selection::pipeline::SelectionOutcome;
+use crate::selection::draw::DrawSummary;
+use crate::selection::pipeline::{draw_sentence, draw_severity, SelectionOutcome};
+use crate::selection::resolution::Resolution;
 use crate::shift::weighting::{fit_rows_statement, FittedWeights};
 use crate::shift::{FeatureBalance, Severity, ShiftOptions, ShiftSummary, ShiftWarning};
 
@@ -67,6 +69,19 @@ pub struct SelectSummary {
     pub score: &'static str,
     pub seed: u64,
     pub pruning_draw: Option<f64>,
+    /// What the pruning draw does to the shortlist: `expected_selected_count`,
+    /// `empty_probability`, `sizes` [{`size`, `probability`}], the method, and Monte Carlo
+    /// errors where estimated.
+    pub draw: DrawSummary,
+    /// `severe` / `caution` when the shortlist depends on the draw (by its empty
+    /// probability), null otherwise.
+    pub draw_severity: Option<&'static str>,
+    /// The draw's consequences in one sentence, null when the shortlist is fixed.
+    pub draw_statement: Option<String>,
+    /// Pool units at the p-value floor, which the labeled set cannot rank: `floor_count`,
+    /// `first_step_floor_count`, `smallest_floor_pvalue`, `bh_needs_at_least`,
+    /// `stable_levels`, `reading`.
+    pub resolution: Resolution,
     pub selected_count: usize,
     pub first_step_count: Option<usize>,
     /// How many BH at level `fdr` selects on the same weighted p-values.
@@ -88,6 +103,7 @@ pub struct SelectSummary {
 /// Build the summary of a run.
 pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSummary {
     let s = &outcome.settings;
+    let draw_statement = draw_sentence(&outcome.draw, outcome.selected_count, s.seed);
     let bh_note = outcome.weights_vary.then(|| {
         format!(
             "BH on the weighted {} p-values would select {}; with varying weights BH has no \
@@ -108,6 +124,12 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         score: s.score.name(),
         seed: s.seed,
         pruning_draw: outcome.pruning_draw,
+        draw: outcome.draw.clone(),
+        draw_severity: draw_statement
+            .is_some()
+            .then(|| draw_severity(&outcome.draw)),
+        draw_statement,
+        resolution: outcome.resolution.clone(),
         selected_count: outcome.selected_count,
         first_step_count: outcome.first_step_count,
         bh_selected_count: outcome.bh_selected_count,
@@ -166,7 +188,10 @@ pub fn unselectable_reason(outcome: &SelectionOutcome, j: usize) -> String {
 /// `candidates.csv`: one row per pool unit, in input order.
 ///
 /// Columns: `id, score, weight, p_value, selected`, then for conditional calibration
-/// `first_step, conditional_count`, then `never_selectable_because`.
+/// `first_step, conditional_count`, then `never_selectable_because`, `selection_probability`
+/// (over the pruning draw, the run's p-values held fixed; 0 or 1 without a draw), `q_value`
+/// (BH-adjusted p-value of the run's own p-values) and `q_value_by` (BY-adjusted, filled for
+/// `--procedure by` runs only).
 /// Floats are written in their shortest round-trip form (ryu), so the same run gives the
 /// same bytes and reading them back gives the same numbers.
 ///
@@ -180,7 +205,12 @@ pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome) -> Vec<u8> {
     if conditional {
         header.extend(["first_step", "conditional_count"]);
     }
-    header.push("never_selectable_because");
+    header.extend([
+        "never_selectable_because",
+        "selection_probability",
+        "q_value",
+        "q_value_by",
+    ]);
     writer.write_record(&header).expect("write to memory");
     let mut floats = ryu::Buffer::new();
     let mut integers = itoa::Buffer::new();
@@ -200,6 +230,16 @@ pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome) -> Vec<u8> {
             record.push_field(unselectable_reason(outcome, j).as_bytes());
         } else {
             record.push_field(b"");
+        }
+        record.push_field(
+            floats
+                .format(outcome.draw.selection_probability[j])
+                .as_bytes(),
+        );
+        record.push_field(floats.format(outcome.q_values[j]).as_bytes());
+        match &outcome.q_values_by {
+            Some(by) => record.push_field(floats.format(by[j]).as_bytes()),
+            None => record.push_field(b""),
         }
         writer.write_byte_record(&record).expect("write to memory");
     }
@@ -250,6 +290,13 @@ pub fn text_summary(summary: &SelectSummary, ids: &[String], outcome: &Selection
                 severe.join(", ")
             );
         }
+    }
+    if let Some(statement) = &s.draw_statement {
+        let _ = writeln!(
+            out,
+            "  {}: the shortlist depends on a random draw: {statement}",
+            s.draw_severity.unwrap_or("caution").to_uppercase()
+        );
     }
     let _ = writeln!(
         out,

@@ -7,6 +7,7 @@
 //! - [`pruning`]: the pruning of conditional calibration's first-step set;
 //! - [`draw`]: what the pruning draw does to the shortlist (size distribution, empty
 //!   probability, per-unit selection probability);
+//! - [`resolution`]: pool units at the p-value floor, which the labeled set cannot rank;
 //! - [`pipeline`]: one run from scores to the shortlist (checked options, scores ->
 //!   p-values -> procedure, counts, warnings).
 
@@ -15,3 +16,4 @@ pub mod conditional;
 pub mod draw;
 pub mod pipeline;
 pub mod pruning;
+pub mod resolution;

@@ -15,7 +15,12 @@ use crate::selection::bh::{
     self, benjamini_hochberg, benjamini_yekutieli, check_fdr, SelectionError,
 };
 use crate::selection::conditional::conditional_calibration;
+use crate::selection::draw::{
+    fixed_selection, heterogeneous_draw, homogeneous_draw, monte_carlo_draws, DrawMethod,
+    DrawSummary,
+};
 use crate::selection::pruning::Pruning;
+use crate::selection::resolution::{self, Resolution};
 
 /// Which multiple-testing procedure makes the shortlist.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
@@ -214,6 +219,17 @@ pub struct SelectionOutcome {
     pub weights_vary: bool,
     /// Kish effective sample size of the labeled weights, `(sum w)^2 / sum w^2`.
     pub labeled_ess: f64,
+    /// What the pruning draw does to the shortlist (probabilities over the draw, the run's
+    /// p-values held fixed); every probability is 0 or 1 for BH, BY and deterministic
+    /// pruning.
+    pub draw: DrawSummary,
+    /// BH-adjusted p-values (q-values) of the run's own p-values:
+    /// `min over k' >= k of p_(k') m / k'`, capped at 1.
+    pub q_values: Vec<f64>,
+    /// BY-adjusted p-values, for `--procedure by` runs only.
+    pub q_values_by: Option<Vec<f64>>,
+    /// Why the shortlist can be a draw: pool units at the p-value floor.
+    pub resolution: Resolution,
     pub warnings: Vec<String>,
 }
 
@@ -342,6 +358,32 @@ pub fn run_selection(
     let weights: Vec<f64> = pool.weights.map_or_else(|| vec![1.0; m], <[f64]>::to_vec);
     let weights_vary = weights_vary(labeled.weights, pool.weights);
     let labeled_ess = labeled.weights.map_or(n as f64, kish_ess);
+    let draw = match (&first_step, &conditional_count, settings.pruning) {
+        (Some(first), Some(counts), Some(Pruning::Homogeneous)) => homogeneous_draw(first, counts),
+        (Some(first), Some(counts), Some(Pruning::Heterogeneous)) => {
+            let s = first_step_count.unwrap_or(0);
+            heterogeneous_draw(first, counts, monte_carlo_draws(m, s), settings.seed)
+        }
+        _ => fixed_selection(&selected),
+    };
+    let mut resolution = resolution::resolution(
+        &calibration,
+        &pool_v,
+        pool.weights,
+        first_step.as_deref(),
+        q,
+    );
+    let depends_on_draw = !draw.is_fixed();
+    if settings.procedure == Procedure::Conditional && !depends_on_draw {
+        resolution.stable_levels.push(q);
+    }
+    resolution.reading = resolution::reading(&resolution, m, q, depends_on_draw);
+    let q_values = bh::bh_adjusted(&p, 1.0)?;
+    let q_values_by = if settings.procedure == Procedure::By {
+        Some(bh::bh_adjusted(&p, bh::harmonic_number(m))?)
+    } else {
+        None
+    };
 
     let mut outcome = SelectionOutcome {
         settings,
@@ -362,6 +404,10 @@ pub fn run_selection(
         pruning_draw,
         weights_vary,
         labeled_ess,
+        draw,
+        q_values,
+        q_values_by,
+        resolution,
         warnings: vec![],
     };
     outcome.warnings = selection_warnings(&outcome);
@@ -436,15 +482,76 @@ fn selection_warnings(o: &SelectionOutcome) -> Vec<String> {
             o.bh_selected_count
         ));
     }
-    if o.settings.pruning == Some(Pruning::Homogeneous) && o.first_step_count.unwrap_or(0) > 0 {
-        warnings.push(format!(
-            "the shortlist depends on one random draw at its margin (homogeneous pruning, \
-             draw {:.6} from seed {}); the same seed reproduces it exactly.",
-            o.pruning_draw.unwrap_or(f64::NAN),
-            o.settings.seed
-        ));
+    if let Some(sentence) = draw_sentence(&o.draw, o.selected_count, o.settings.seed) {
+        // Severity follows the chance of an empty shortlist.
+        let severity = draw_severity(&o.draw);
+        warnings.insert(
+            0,
+            format!(
+                "shortlist decided by a random draw ({severity}): {sentence} Conditional \
+                 calibration keeps FDR <= q on average over the draw; a single screen gets one \
+                 draw. See `resolution` in summary.json for why and what would fix it."
+            ),
+        );
     }
     warnings
+}
+
+/// How serious a draw-dependent shortlist is: `severe` when it is empty with probability
+/// 0.5 or more, `caution` otherwise (common practice, our choice).
+pub fn draw_severity(draw: &DrawSummary) -> &'static str {
+    if draw.empty_probability >= 0.5 {
+        "severe"
+    } else {
+        "caution"
+    }
+}
+
+/// The draw's consequences in one plain sentence, or `None` when the shortlist does not
+/// depend on the draw.
+///
+/// # Examples
+/// "83 units with probability 0.29, otherwise none (expected 24.3); this run's draw
+/// (seed 5) gave 83."
+pub fn draw_sentence(draw: &DrawSummary, selected_count: usize, seed: u64) -> Option<String> {
+    if draw.method == DrawMethod::NoDraw || draw.is_fixed() {
+        return None;
+    }
+    let mut sizes: Vec<_> = draw.sizes.iter().filter(|s| s.size > 0).collect();
+    sizes.sort_by(|a, b| b.probability.total_cmp(&a.probability));
+    let shown: Vec<String> = sizes
+        .iter()
+        .take(3)
+        .map(|s| format!("{} units with probability {}", s.size, short(s.probability)))
+        .collect();
+    let mut text = shown.join(", ");
+    if sizes.len() > 3 {
+        text.push_str(&format!(", {} other sizes", sizes.len() - 3));
+    }
+    if draw.empty_probability > 0.0 {
+        text.push_str(&format!(
+            ", otherwise none (probability {})",
+            short(draw.empty_probability)
+        ));
+    }
+    let estimate = match draw.draws {
+        Some(n) => format!(", estimated from {n} simulated draws"),
+        None => String::new(),
+    };
+    Some(format!(
+        "{text} (expected {:.1}{estimate}); this run's draw (seed {seed}) gave {selected_count}.",
+        draw.expected_selected_count
+    ))
+}
+
+/// A probability with two significant digits.
+fn short(p: f64) -> String {
+    if p >= 0.995 || p == 0.0 {
+        format!("{p:.2}")
+    } else {
+        let digits = (2 - 1 - p.log10().floor() as i32).max(2) as usize;
+        format!("{p:.digits$}")
+    }
 }
 
 #[cfg(test)]

@@ -35,7 +35,12 @@ fn run_select(out: &Path, flags: &str) {
         .arg(fixture("pool.csv"))
         .arg("--out")
         .arg(out)
-        .args(["--threshold", "6.5", "--weight-column", "w", "--fdr", "0.1"])
+        .args(["--threshold", "6.5", "--weight-column", "w"])
+        .args(if flags.contains("--fdr") {
+            vec![]
+        } else {
+            vec!["--fdr", "0.1"]
+        })
         .args(flags.split_whitespace())
         .output()
         .expect("run the weighbridge binary");
@@ -271,4 +276,45 @@ fn q_values_match_statsmodels() {
     assert!(column(&header, &rows, "q_value_by")
         .iter()
         .all(String::is_empty));
+}
+
+#[test]
+fn level_curve_entries_equal_separate_runs() {
+    // Reference: the same binary run separately at each level (conditional calibration's
+    // own draw summary, and --procedure bh's selected count).
+    let dir = TempDir::new().unwrap();
+    let out = dir.path().join("curve");
+    run_select(&out, "");
+    let s = summary(&out);
+    let curve = s["level_curve"]
+        .as_array()
+        .expect("level_curve for a small pool");
+    let levels: Vec<f64> = curve.iter().map(|p| p["fdr"].as_f64().unwrap()).collect();
+    assert_eq!(levels, vec![0.05, 0.1, 0.2, 0.3, 0.5]);
+    for point in curve {
+        let q = point["fdr"].as_f64().unwrap();
+        let conditional = dir.path().join(format!("c{q}"));
+        run_select(&conditional, &format!("--fdr {q}"));
+        let c = summary(&conditional);
+        let expected = c["draw"]["expected_selected_count"].as_f64().unwrap();
+        assert!((point["conditional_expected_count"].as_f64().unwrap() - expected).abs() < 1e-9);
+        let empty = c["draw"]["empty_probability"].as_f64().unwrap();
+        assert!((point["conditional_empty_probability"].as_f64().unwrap() - empty).abs() < 1e-9);
+        let bh = dir.path().join(format!("b{q}"));
+        run_select(&bh, &format!("--fdr {q} --procedure bh"));
+        assert_eq!(point["bh_count"], summary(&bh)["selected_count"], "q = {q}");
+    }
+    // stable_levels lists exactly the levels whose shortlist does not depend on the draw.
+    let stable: Vec<f64> = curve
+        .iter()
+        .filter(|p| p["conditional_fixed"].as_bool().unwrap())
+        .map(|p| p["fdr"].as_f64().unwrap())
+        .collect();
+    let listed: Vec<f64> = s["resolution"]["stable_levels"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|v| v.as_f64().unwrap())
+        .collect();
+    assert_eq!(stable, listed);
 }

@@ -180,6 +180,11 @@ pub struct SelectArgs {
         allow_negative_numbers = true
     )]
     pub fdr: f64,
+    /// Compute the level curve (expected conditional shortlist and BH count at FDR 0.05,
+    /// 0.1, 0.2, 0.3, 0.5 and --fdr) also for pools above 10^5 units; smaller pools always
+    /// get it (summary.json `level_curve`).
+    #[arg(long)]
+    pub level_curve: bool,
     /// Seed of the random draws (randomized p-values, pruning).
     #[arg(long, default_value_t = crate::random::DEFAULT_SEED)]
     pub seed: u64,
@@ -300,6 +305,7 @@ impl TryFrom<SelectArgs> for SelectConfig {
                 ScoreArg::Residual => ScoreKind::Residual,
             },
             seed: a.seed,
+            level_curve: a.level_curve.then_some(true),
         };
         // Usage errors (bad q, conditional + randomized, stray fit options) before any file
         // is read.

@@ -10,6 +10,7 @@ use std::fmt::Write as _;
 use serde::Serialize;
 
 use crate::selection::draw::DrawSummary;
+use crate::selection::level_curve::LevelPoint;
 use crate::selection::pipeline::{draw_sentence, draw_severity, SelectionOutcome};
 use crate::selection::resolution::Resolution;
 use crate::shift::weighting::{fit_rows_statement, FittedWeights};
@@ -27,6 +28,12 @@ pub const CAUTIONS: [&str; 6] = [
      regulatory decision.",
     "Where units are people, decisions need a fairness review and must follow local law.",
 ];
+
+/// Stated beside every level curve.
+pub const LEVEL_CURVE_NOTE: &str = "The FDR guarantee holds for a level chosen before looking \
+     at the shortlist; choosing the level from this curve after seeing it voids the guarantee. \
+     bh_count is BH on the randomized weighted p-values (what --procedure bh selects with this \
+     seed); bh_selected_count is BH on this run's own p-values.";
 
 /// Name and version of this tool, for summaries.
 #[derive(Clone, Debug, Serialize)]
@@ -82,6 +89,13 @@ pub struct SelectSummary {
     /// `first_step_floor_count`, `smallest_floor_pvalue`, `bh_needs_at_least`,
     /// `stable_levels`, `reading`.
     pub resolution: Resolution,
+    /// Per FDR level: `fdr`, `conditional_expected_count`, `conditional_empty_probability`,
+    /// `conditional_fixed`, `bh_count` (what `--procedure bh` selects with the same seed:
+    /// BH on randomized weighted p-values). Null when not computed (pools above 10^5 units
+    /// without `--level-curve`).
+    pub level_curve: Option<Vec<LevelPoint>>,
+    /// What the level curve means and does not mean.
+    pub level_curve_note: Option<&'static str>,
     pub selected_count: usize,
     pub first_step_count: Option<usize>,
     /// How many BH at level `fdr` selects on the same weighted p-values.
@@ -130,6 +144,8 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
             .then(|| draw_severity(&outcome.draw)),
         draw_statement,
         resolution: outcome.resolution.clone(),
+        level_curve: outcome.level_curve.clone(),
+        level_curve_note: outcome.level_curve.as_ref().map(|_| LEVEL_CURVE_NOTE),
         selected_count: outcome.selected_count,
         first_step_count: outcome.first_step_count,
         bh_selected_count: outcome.bh_selected_count,

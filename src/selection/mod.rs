@@ -7,6 +7,7 @@
 //! - [`pruning`]: the pruning of conditional calibration's first-step set;
 //! - [`draw`]: what the pruning draw does to the shortlist (size distribution, empty
 //!   probability, per-unit selection probability);
+//! - [`level_curve`]: expected conditional shortlist and BH count over a grid of levels;
 //! - [`resolution`]: pool units at the p-value floor, which the labeled set cannot rank;
 //! - [`pipeline`]: one run from scores to the shortlist (checked options, scores ->
 //!   p-values -> procedure, counts, warnings).
@@ -14,6 +15,7 @@
 pub mod bh;
 pub mod conditional;
 pub mod draw;
+pub mod level_curve;
 pub mod pipeline;
 pub mod pruning;
 pub mod resolution;

@@ -9,16 +9,16 @@
 use serde::Serialize;
 use thiserror::Error;
 
-use crate::conformal::pvalue::{pool_pvalues, CalibrationSet, PValueError, PValueKind};
+use crate::conformal::pvalue::{
+    pool_pvalues, CalibrationSet, PValueError, PValueKind, PoolPValues,
+};
 use crate::conformal::score::{labeled_scores, pool_scores, ScoreKind, Thresholds};
 use crate::selection::bh::{
     self, benjamini_hochberg, benjamini_yekutieli, check_fdr, SelectionError,
 };
 use crate::selection::conditional::conditional_calibration;
-use crate::selection::draw::{
-    fixed_selection, heterogeneous_draw, homogeneous_draw, monte_carlo_draws, DrawMethod,
-    DrawSummary,
-};
+use crate::selection::draw::{fixed_selection, DrawMethod, DrawSummary};
+use crate::selection::level_curve::{curve_levels, draw_of, level_curve, LevelPoint};
 use crate::selection::pruning::Pruning;
 use crate::selection::resolution::{self, Resolution};
 
@@ -69,6 +69,11 @@ pub struct SelectOptions {
     pub score: ScoreKind,
     /// Seed of every random draw (randomized p-values, pruning).
     pub seed: u64,
+    /// Compute the level curve (`crate::selection::level_curve`): `Some(true)` always,
+    /// `Some(false)` never, `None` for pools up to 10^5 units. Defaults to `Some(false)` in
+    /// the library (repeated runs such as the calibration check pay nothing); the `select`
+    /// command passes `None` (or `Some(true)` with `--level-curve`).
+    pub level_curve: Option<bool>,
 }
 
 impl Default for SelectOptions {
@@ -80,6 +85,7 @@ impl Default for SelectOptions {
             pvalues: None,
             score: ScoreKind::Clipped,
             seed: crate::random::DEFAULT_SEED,
+            level_curve: Some(false),
         }
     }
 }
@@ -230,6 +236,8 @@ pub struct SelectionOutcome {
     pub q_values_by: Option<Vec<f64>>,
     /// Why the shortlist can be a draw: pool units at the p-value floor.
     pub resolution: Resolution,
+    /// The level curve, when asked for.
+    pub level_curve: Option<Vec<LevelPoint>>,
     pub warnings: Vec<String>,
 }
 
@@ -359,12 +367,25 @@ pub fn run_selection(
     let weights_vary = weights_vary(labeled.weights, pool.weights);
     let labeled_ess = labeled.weights.map_or(n as f64, kish_ess);
     let draw = match (&first_step, &conditional_count, settings.pruning) {
-        (Some(first), Some(counts), Some(Pruning::Homogeneous)) => homogeneous_draw(first, counts),
-        (Some(first), Some(counts), Some(Pruning::Heterogeneous)) => {
-            let s = first_step_count.unwrap_or(0);
-            heterogeneous_draw(first, counts, monte_carlo_draws(m, s), settings.seed)
+        (Some(first), Some(counts), Some(pruning)) => {
+            draw_of(first, counts, &selected, pruning, settings.seed)
         }
         _ => fixed_selection(&selected),
+    };
+    let wants_curve = options
+        .level_curve
+        .unwrap_or(m <= crate::selection::level_curve::DEFAULT_CURVE_MAX_POOL);
+    let level_curve = if wants_curve {
+        Some(run_level_curve(
+            &settings,
+            &calibration,
+            &pool_v,
+            pool.weights,
+            &pvalues,
+            &draw,
+        )?)
+    } else {
+        None
     };
     let mut resolution = resolution::resolution(
         &calibration,
@@ -374,8 +395,18 @@ pub fn run_selection(
         q,
     );
     let depends_on_draw = !draw.is_fixed();
-    if settings.procedure == Procedure::Conditional && !depends_on_draw {
-        resolution.stable_levels.push(q);
+    match &level_curve {
+        Some(curve) => {
+            resolution.stable_levels = curve
+                .iter()
+                .filter(|point| point.conditional_fixed)
+                .map(|point| point.fdr)
+                .collect()
+        }
+        None if settings.procedure == Procedure::Conditional && !depends_on_draw => {
+            resolution.stable_levels.push(q);
+        }
+        None => {}
     }
     resolution.reading = resolution::reading(&resolution, m, q, depends_on_draw);
     let q_values = bh::bh_adjusted(&p, 1.0)?;
@@ -408,10 +439,52 @@ pub fn run_selection(
         q_values,
         q_values_by,
         resolution,
+        level_curve,
         warnings: vec![],
     };
     outcome.warnings = selection_warnings(&outcome);
     Ok(outcome)
+}
+
+/// The level curve of a run: the run's own p-values where they serve (conservative for
+/// conditional calibration, randomized for BH), the other kind computed once.
+fn run_level_curve(
+    settings: &SelectSettings,
+    calibration: &CalibrationSet,
+    pool_v: &[f64],
+    pool_weights: Option<&[f64]>,
+    pvalues: &PoolPValues,
+    draw: &DrawSummary,
+) -> Result<Vec<LevelPoint>, SelectError> {
+    let other = |kind| pool_pvalues(kind, calibration, pool_v, pool_weights, settings.seed);
+    let (conservative, randomized) = match settings.pvalues {
+        PValueKind::Conservative => (pvalues.clone(), other(PValueKind::Randomized)?),
+        PValueKind::Randomized => (other(PValueKind::Conservative)?, pvalues.clone()),
+    };
+    let pruning = settings.pruning.unwrap_or(Pruning::Homogeneous);
+    let mut curve = level_curve(
+        calibration,
+        pool_v,
+        pool_weights,
+        &conservative,
+        &randomized.values(),
+        &curve_levels(settings.fdr),
+        pruning,
+        settings.seed,
+    )?;
+    // At the run's own level the curve is the run (same functions, same seed).
+    if settings.procedure == Procedure::Conditional {
+        for point in curve.iter_mut().filter(|p| p.fdr == settings.fdr) {
+            debug_assert_eq!(
+                point.conditional_expected_count,
+                draw.expected_selected_count
+            );
+            point.conditional_expected_count = draw.expected_selected_count;
+            point.conditional_empty_probability = draw.empty_probability;
+            point.conditional_fixed = draw.is_fixed();
+        }
+    }
+    Ok(curve)
 }
 
 fn weights_vary(labeled: Option<&[f64]>, pool: Option<&[f64]>) -> bool {

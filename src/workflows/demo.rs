@@ -325,6 +325,7 @@ pub fn select_in_scenario(
         }),
         score: ScoreKind::Clipped,
         seed,
+        level_curve: Some(false),
     };
     run_selection(
         &options,

@@ -72,7 +72,7 @@ fn every_command_writes_a_self_contained_report() {
         "--out",
         select.to_str().unwrap(),
     ]);
-    check_page(&select.join("report.html"), 3);
+    check_page(&select.join("report.html"), 4);
     let shift = out("shift");
     run_ok(&[
         "shift",
@@ -130,7 +130,7 @@ fn every_command_writes_a_self_contained_report() {
         "--out",
         rescreen.to_str().unwrap(),
     ]);
-    check_page(&rescreen.join("report.html"), 0);
+    check_page(&rescreen.join("report.html"), 1);
     // Without --report nothing extra is written.
     let plain = out("plain");
     run_ok(&[

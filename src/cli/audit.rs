@@ -211,6 +211,7 @@ fn audit_report(
         warnings,
         settings,
         main: Some(Part {
+            figures: Vec::new(),
             id: "shortlist".to_string(),
             heading: "Audited list".to_string(),
             paragraphs: vec![format!(

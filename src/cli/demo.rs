@@ -365,6 +365,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
     let mut tables = vec![this_screen];
     tables.extend(repeated_table);
     report.extra.push(Part {
+        figures: Vec::new(),
         id: "comparison".to_string(),
         heading: "Compared with the truth (demo only)".to_string(),
         paragraphs: vec![

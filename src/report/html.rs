@@ -110,6 +110,8 @@ pub struct Part {
     pub heading: String,
     pub paragraphs: Vec<String>,
     pub tables: Vec<Table>,
+    /// Inline SVG figures (from `crate::report::plots`), shown after the tables.
+    pub figures: Vec<String>,
 }
 
 /// The shift diagnostics with their three plots (SVG text).
@@ -281,6 +283,7 @@ pub fn shortlist_part(summary: &SelectSummary, ids: &[String], outcome: &Selecti
         })
         .collect();
     Part {
+        figures: Vec::new(),
         id: "shortlist".to_string(),
         heading: "Shortlist".to_string(),
         paragraphs,
@@ -311,6 +314,12 @@ pub fn selection_verdict(summary: &SelectSummary) -> String {
         summary.n_pool,
         number(summary.fdr)
     );
+    if let Some(statement) = &summary.draw_statement {
+        let _ = write!(
+            verdict,
+            ". The shortlist depends on a random draw: {statement}"
+        );
+    }
     if severe > 0 {
         let _ = write!(
             verdict,
@@ -324,6 +333,55 @@ pub fn selection_verdict(summary: &SelectSummary) -> String {
         verdict.push_str("; no warnings");
     }
     verdict
+}
+
+/// The draw, the resolution diagnostic and the level curve (table and plot), when the
+/// summary has a level curve.
+pub fn level_curve_part(summary: &SelectSummary) -> Option<Part> {
+    let curve = summary.level_curve.as_ref()?;
+    let mut paragraphs = Vec::new();
+    if let Some(statement) = &summary.draw_statement {
+        paragraphs.push(format!(
+            "The shortlist depends on a random draw: {statement}"
+        ));
+    }
+    paragraphs.push(summary.resolution.reading.clone());
+    if let Some(note) = summary.level_curve_note {
+        paragraphs.push(note.to_string());
+    }
+    let rows = curve
+        .iter()
+        .map(|p| {
+            vec![
+                number(p.fdr),
+                format!("{:.1}", p.conditional_expected_count),
+                format!("{:.2}", p.conditional_empty_probability),
+                if p.conditional_fixed { "no" } else { "yes" }.to_string(),
+                p.bh_count.to_string(),
+            ]
+        })
+        .collect();
+    let figures = crate::report::plots::level_curve_svg(curve)
+        .map(|svg| vec![svg])
+        .unwrap_or_default();
+    Some(Part {
+        id: "level-curve".to_string(),
+        heading: "The draw and the level curve".to_string(),
+        paragraphs,
+        tables: vec![Table {
+            header: vec![
+                "FDR level".to_string(),
+                "conditional: expected size".to_string(),
+                "conditional: empty probability".to_string(),
+                "depends on the draw".to_string(),
+                "BH (randomized p-values)".to_string(),
+            ],
+            rows,
+            note: None,
+            scroll: false,
+        }],
+        figures,
+    })
 }
 
 /// A report of a selection (`select`, the demo); `shift` when weights were fitted.
@@ -360,7 +418,7 @@ pub fn selection_report(
         settings: selection_settings(summary),
         main: Some(shortlist_part(summary, ids, outcome)),
         shift,
-        extra: Vec::new(),
+        extra: level_curve_part(summary).into_iter().collect(),
         weights_method,
         procedure: Some(summary.procedure.to_string()),
     }
@@ -483,6 +541,9 @@ fn part_html(out: &mut String, part: &Part) {
     }
     for t in &part.tables {
         table_html(out, t);
+    }
+    for svg in &part.figures {
+        let _ = writeln!(out, "<figure>{}</figure>", inline_svg(svg));
     }
     out.push_str("</section>\n");
 }

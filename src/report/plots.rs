@@ -209,6 +209,86 @@ pub fn weights_svg(labeled: &[f64], pool: &[f64], bins: usize) -> Result<String,
     })
 }
 
+/// A named line of points in one colour.
+type Series = (Vec<(f64, f64)>, RGBColor, &'static str);
+
+/// Level curve: conditional calibration's expected shortlist size and BH's count
+/// (randomized weighted p-values) against the FDR level.
+///
+/// # Errors
+/// [`PlotError::Empty`] for an empty curve.
+pub fn level_curve_svg(
+    curve: &[crate::selection::level_curve::LevelPoint],
+) -> Result<String, PlotError> {
+    const PLOT: &str = "level curve";
+    if curve.is_empty() {
+        return Err(PlotError::Empty {
+            plot: PLOT,
+            reason: "no levels",
+        });
+    }
+    let xmax = curve.iter().map(|p| p.fdr).fold(0.0f64, f64::max) * 1.05;
+    let ymax = curve
+        .iter()
+        .map(|p| p.conditional_expected_count.max(p.bh_count as f64))
+        .fold(1.0f64, f64::max)
+        * 1.1;
+    draw(PLOT, (720, 420), |root| {
+        let mut chart = ChartBuilder::on(root)
+            .caption("Shortlist size by FDR level", (FONT, 20))
+            .margin(12)
+            .x_label_area_size(40)
+            .y_label_area_size(64)
+            .build_cartesian_2d(0f64..xmax, 0f64..ymax)
+            .map_err(backend(PLOT))?;
+        chart
+            .configure_mesh()
+            .x_desc("FDR level q")
+            .y_desc("units selected")
+            .draw()
+            .map_err(backend(PLOT))?;
+        let series: [Series; 2] = [
+            (
+                curve
+                    .iter()
+                    .map(|p| (p.fdr, p.conditional_expected_count))
+                    .collect(),
+                POOL,
+                "conditional calibration (expected over the draw)",
+            ),
+            (
+                curve.iter().map(|p| (p.fdr, p.bh_count as f64)).collect(),
+                LABELED,
+                "BH on randomized weighted p-values",
+            ),
+        ];
+        for (points, colour, name) in series {
+            chart
+                .draw_series(LineSeries::new(points.clone(), colour.stroke_width(2)))
+                .map_err(backend(PLOT))?
+                .label(name)
+                .legend(move |(x, y)| {
+                    PathElement::new(vec![(x, y), (x + 16, y)], colour.stroke_width(2))
+                });
+            chart
+                .draw_series(
+                    points
+                        .iter()
+                        .map(|&(x, y)| Circle::new((x, y), 4, colour.filled())),
+                )
+                .map_err(backend(PLOT))?;
+        }
+        chart
+            .configure_series_labels()
+            .position(SeriesLabelPosition::UpperLeft)
+            .border_style(BLACK)
+            .background_style(WHITE.mix(0.8))
+            .draw()
+            .map_err(backend(PLOT))?;
+        Ok(())
+    })
+}
+
 /// Balance plot: |SMD| per feature before (open circle) and after (filled circle)
 /// weighting, with the 0.1 line of Austin (2009). Infinite SMDs are drawn at 0.
 ///

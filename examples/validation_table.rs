@@ -225,7 +225,8 @@ fn table() -> Result<String, String> {
         "{REPLICATES} replicates per row; pseudo-pool share {POOL_SHARE}; FDR and power are \
          means over replicates, +- 2 Monte Carlo SE. n / m: mean calibrating rows / \
          pseudo-pool rows per replicate. ESS: mean Kish ESS of the weights used over the \
-         calibrating rows, as a share of them. Conditional empty: share of replicates where conditional calibration \
+         calibrating rows, as a share of them. Conditional size: mean shortlist size of conditional calibration. \
+         Conditional empty: share of replicates where conditional calibration \
          selected nothing. **above q**: FDR - 2 SE > q.\n"
     ));
     for d in &DATASETS {
@@ -245,10 +246,10 @@ fn table() -> Result<String, String> {
         ));
         out.push_str(
             "| tilt | S | q | weights | pruning | n / m | ESS | conditional FDR | conditional \
-             power | conditional empty | BH FDR | BH power | unweighted FDR | unweighted power | \
+             power | conditional size | conditional empty | BH FDR | BH power | unweighted FDR | unweighted power | \
              bears on |\n",
         );
-        out.push_str("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|\n");
+        out.push_str("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|\n");
         for s in settings() {
             let o = run(&labeled, &tilts[s.tilt].1, d.threshold, &s)?;
             let r = &o.results;
@@ -267,7 +268,7 @@ fn table() -> Result<String, String> {
                 &tilts[s.tilt].0
             };
             out.push_str(&format!(
-                "| {tilt_name} | {} | {} | {} | {} | {:.0} / {:.0} | {:.2} | {} | {:.3} | {:.2} \
+                "| {tilt_name} | {} | {} | {} | {} | {:.0} / {:.0} | {:.2} | {} | {:.3} | {:.1} | {:.2} \
                  | {} | {:.3} | {} | {:.3} | {} |\n",
                 s.strength,
                 s.fdr,
@@ -278,6 +279,7 @@ fn table() -> Result<String, String> {
                 o.mean_calibration_ess_fraction,
                 fdr(&r.conditional),
                 r.conditional.power,
+                r.conditional.mean_selected,
                 r.conditional.empty_share,
                 fdr(&r.bh),
                 r.bh.power,

@@ -204,14 +204,15 @@ pub fn homogeneous_draw(first_step: &[bool], counts: &[usize]) -> DrawSummary {
 /// The number of Monte Carlo replicates for heterogeneous pruning on a pool of `m` units
 /// with `s` first-step units: about three unit-steps per pool unit (a replicate costs
 /// about `s` steps of a few nanoseconds, the run itself a few hundred nanoseconds per pool
-/// unit, so this keeps the estimate near 5% of the run), at least 200 and at most 10^4.
+/// unit, so this keeps the estimate near 5% of the run; small runs get at least 2*10^6
+/// steps, a few milliseconds), at least 200 and at most 10^4.
 pub fn monte_carlo_draws(m: usize, s: usize) -> usize {
     const MIN: usize = 200;
     const MAX: usize = 10_000;
     if s == 0 {
         return MIN;
     }
-    (3 * m / s).clamp(MIN, MAX)
+    ((3 * m).max(2_000_000) / s).clamp(MIN, MAX)
 }
 
 /// Replicates per independently seeded chunk, so results do not depend on the thread count.

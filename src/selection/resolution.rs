@@ -25,6 +25,12 @@ pub struct Resolution {
     /// `ceil(m * smallest_floor_pvalue / q)`, decided by the one comparison rule: no BH line
     /// on conservative p-values can be met by fewer units (above m: none can be met).
     pub bh_needs_at_least: usize,
+    /// How many floor units a uniform random sample must hold so that, with probability
+    /// 0.95, at least one of them is inactive (a labeled null score among the floor units,
+    /// the first thing the labeled set needs to rank them), taking a share q of them as
+    /// inactive as the planning value: `min(floor_count, ceil(ln 0.05 / ln(1 - q)))`
+    /// (binomial; 0 when there are no floor units or q = 1).
+    pub floor_sample_for_one_null: usize,
     /// Levels (of the level curve, or the run's own when no curve was computed) at which
     /// conditional calibration's shortlist does not depend on the draw.
     pub stable_levels: Vec<f64>,
@@ -73,8 +79,14 @@ pub fn resolution(
     while k <= m && !passes(k) {
         k += 1;
     }
+    let floor_sample_for_one_null = if floor_count == 0 || q >= 1.0 {
+        0
+    } else {
+        ((0.05f64.ln() / (1.0 - q).ln()).ceil() as usize).min(floor_count)
+    };
     Resolution {
         floor_count,
+        floor_sample_for_one_null,
         first_step_floor_count,
         smallest_floor_pvalue,
         bh_needs_at_least: k,
@@ -106,6 +118,14 @@ pub fn reading(r: &Resolution, m: usize, q: f64, depends_on_draw: bool) -> Strin
              so that inactive ones among them give the labeled set scores to rank the rest \
              against; a higher FDR level (see the level curve) can also give a fixed shortlist.",
         );
+        if r.floor_sample_for_one_null > 0 {
+            text.push_str(&format!(
+                " If a share {q} of the floor units is inactive (a planning value), a random \
+                 sample of {} of them holds at least one inactive with probability 0.95; \
+                 ranking them finely needs several such scores, so plan for a multiple of that.",
+                r.floor_sample_for_one_null
+            ));
+        }
     }
     text
 }
@@ -123,6 +143,17 @@ mod tests {
         // Floor 1/4; ceil(4 * 0.25 / 0.5) = 2, and 0.25 <= 0.5 * 2 / 4 is an exact tie.
         assert_eq!(r.smallest_floor_pvalue, 0.25);
         assert_eq!(r.bh_needs_at_least, 2);
+        // 1 - 0.5^k >= 0.95 first at k = 5, capped at the 2 floor units.
+        assert_eq!(r.floor_sample_for_one_null, 2);
+    }
+
+    #[test]
+    fn sample_for_one_null_score_by_hand() {
+        // 1 - 0.9^k >= 0.95: 0.9^28 = 0.0523, 0.9^29 = 0.0471, so k = 29 (binomial).
+        let cal = CalibrationSet::new(&[0.0], None).unwrap();
+        let pool = vec![-1.0; 100];
+        let r = resolution(&cal, &pool, None, None, 0.1);
+        assert_eq!(r.floor_sample_for_one_null, 29);
     }
 
     #[test]

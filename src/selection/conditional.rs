@@ -101,29 +101,61 @@ pub fn conditional_counts(
     q: f64,
 ) -> Result<Vec<usize>, SelectionError> {
     check_fdr(q)?;
-    let m = pool_scores.len();
-    if let Some(index) = pool_scores.iter().position(|v| v.is_nan()) {
-        return Err(SelectionError::NanPoolScore { index });
+    PreparedPool::new(calibration, pool_scores, pool_weights)?.counts(q)
+}
+
+/// The pool sorted once, with `A(k)` and `b_j`, so that `K_j` can be computed at several
+/// levels without sorting again (the level curve). Nothing here depends on q.
+pub struct PreparedPool<'a> {
+    /// `None` for an empty pool.
+    sorted: Option<SortedPool<'a>>,
+}
+
+impl<'a> PreparedPool<'a> {
+    /// Sort the pool scores and compute `A(k)` and `b_j`.
+    ///
+    /// # Errors
+    /// NaN pool scores, bad pool weights.
+    pub fn new(
+        calibration: &CalibrationSet,
+        pool_scores: &[f64],
+        pool_weights: Option<&'a [f64]>,
+    ) -> Result<Self, SelectionError> {
+        let m = pool_scores.len();
+        if let Some(index) = pool_scores.iter().position(|v| v.is_nan()) {
+            return Err(SelectionError::NanPoolScore { index });
+        }
+        if let Some(w) = pool_weights {
+            check_weights("pool", w, m)?;
+        }
+        let sorted = (m > 0).then(|| SortedPool::new(calibration, pool_scores, pool_weights, 1.0));
+        Ok(PreparedPool { sorted })
     }
-    if let Some(w) = pool_weights {
-        check_weights("pool", w, m)?;
+
+    /// `K_j` at level `q` for every pool unit, in input order.
+    ///
+    /// # Errors
+    /// `q` outside (0, 1].
+    pub fn counts(&mut self, q: f64) -> Result<Vec<usize>, SelectionError> {
+        check_fdr(q)?;
+        let Some(pool) = self.sorted.as_mut() else {
+            return Ok(vec![]);
+        };
+        pool.q = q;
+        let m = pool.m;
+        let (tau, sigma) = pool.weight_filters();
+        let mut per_position = pool.high_region(&tau);
+        pool.low_region(&sigma, &mut per_position);
+        // Neither region passes: K_j = 1 (p_j^(j) = 0 always passes).
+        for k in per_position.iter_mut().filter(|k| **k == 0) {
+            *k = 1;
+        }
+        let mut counts = vec![0usize; m];
+        for (pos, &j) in pool.order.iter().enumerate() {
+            counts[j] = per_position[pos];
+        }
+        Ok(counts)
     }
-    if m == 0 {
-        return Ok(vec![]);
-    }
-    let pool = SortedPool::new(calibration, pool_scores, pool_weights, q);
-    let (tau, sigma) = pool.weight_filters();
-    let mut per_position = pool.high_region(&tau);
-    pool.low_region(&sigma, &mut per_position);
-    // Neither region passes: K_j = 1 (p_j^(j) = 0 always passes).
-    for k in per_position.iter_mut().filter(|k| **k == 0) {
-        *k = 1;
-    }
-    let mut counts = vec![0usize; m];
-    for (pos, &j) in pool.order.iter().enumerate() {
-        counts[j] = per_position[pos];
-    }
-    Ok(counts)
 }
 
 /// The pool in sorted score order with what both regions of the `K_j` search read.
@@ -347,7 +379,19 @@ pub fn conditional_calibration(
     seed: u64,
 ) -> Result<ConditionalSelection, SelectionError> {
     let counts = conditional_counts(calibration, pool_scores, pool_weights, q)?;
-    let m = pool_scores.len();
+    Ok(select_with_counts(counts, pvalues, q, pruning, seed))
+}
+
+/// The first step and pruning of conditional calibration for counts `K_j` already
+/// computed at level `q` (e.g. by [`PreparedPool::counts`]).
+pub fn select_with_counts(
+    counts: Vec<usize>,
+    pvalues: &PoolPValues,
+    q: f64,
+    pruning: Pruning,
+    seed: u64,
+) -> ConditionalSelection {
+    let m = counts.len();
     let first_step: Vec<bool> = (0..m)
         .into_par_iter()
         .map(|j| {
@@ -360,14 +404,14 @@ pub fn conditional_calibration(
         .collect();
     let first_step_count = first_step.iter().filter(|&&x| x).count();
     let (selected, selected_count, pruning_draw) = prune_with(pruning, &first_step, &counts, seed);
-    Ok(ConditionalSelection {
+    ConditionalSelection {
         conditional_count: counts,
         first_step,
         selected,
         first_step_count,
         selected_count,
         pruning_draw,
-    })
+    }
 }
 
 #[cfg(test)]

@@ -11,7 +11,7 @@ use serde::Serialize;
 
 use crate::conformal::pvalue::{CalibrationSet, PoolPValues};
 use crate::selection::bh::{bh_count, SelectionError};
-use crate::selection::conditional::conditional_calibration;
+use crate::selection::conditional::{select_with_counts, PreparedPool};
 use crate::selection::draw::{
     fixed_selection, heterogeneous_draw, homogeneous_draw, monte_carlo_draws, DrawSummary,
 };
@@ -91,18 +91,12 @@ pub fn level_curve(
     pruning: Pruning,
     seed: u64,
 ) -> Result<Vec<LevelPoint>, SelectionError> {
+    // Sorted once; only the level-dependent thresholds are recomputed per level.
+    let mut prepared = PreparedPool::new(calibration, pool_scores, pool_weights)?;
     levels
         .iter()
         .map(|&q| {
-            let cc = conditional_calibration(
-                calibration,
-                pool_scores,
-                pool_weights,
-                conservative,
-                q,
-                pruning,
-                seed,
-            )?;
+            let cc = select_with_counts(prepared.counts(q)?, conservative, q, pruning, seed);
             let draw = draw_of(
                 &cc.first_step,
                 &cc.conditional_count,

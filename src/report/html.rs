@@ -171,23 +171,8 @@ pub struct Report {
     pub procedure: Option<String>,
 }
 
-/// A number for people: 3 decimals without trailing zeros, scientific when very large or
-/// small.
-fn number(v: f64) -> String {
-    if !v.is_finite() {
-        return v.to_string();
-    }
-    if v != 0.0 && (v.abs() >= 1e5 || v.abs() < 1e-3) {
-        return format!("{v:.3e}");
-    }
-    let text = format!("{v:.3}");
-    let text = text.trim_end_matches('0').trim_end_matches('.');
-    if text == "-0" {
-        "0".to_string()
-    } else {
-        text.to_string()
-    }
-}
+/// A number for people (the same form as the text summaries).
+use crate::report::summary::shown as number;
 
 /// A p-value for people: 4 significant digits.
 fn p_value_text(p: f64) -> String {

@@ -80,7 +80,7 @@ pub struct SelectSummary {
     /// `empty_probability`, `sizes` [{`size`, `probability`}], the method, and Monte Carlo
     /// errors where estimated.
     pub draw: DrawSummary,
-    /// `severe` / `caution` when the shortlist depends on the draw (by its empty
+    /// `severe` / `caution` / `note` when the shortlist depends on the draw (by its empty
     /// probability), null otherwise.
     pub draw_severity: Option<&'static str>,
     /// The draw's consequences in one sentence, null when the shortlist is fixed.
@@ -532,7 +532,7 @@ fn float_text(v: f64) -> String {
 
 /// A number for people: 3 decimals without trailing zeros, scientific when very large or
 /// very small, `inf` / `NaN` as such.
-fn shown(v: f64) -> String {
+pub(crate) fn shown(v: f64) -> String {
     if !v.is_finite() {
         return v.to_string();
     }

@@ -156,7 +156,8 @@ pub fn homogeneous_draw(first_step: &[bool], counts: &[usize]) -> DrawSummary {
         running = running.max(r as f64 / sorted[r - 1] as f64);
         at_least[r - 1] = running.min(1.0);
     }
-    let expected: f64 = at_least.iter().sum();
+    // `+ 0.0`: an empty sum is -0.0, which would print as "-0.0".
+    let expected: f64 = at_least.iter().sum::<f64>() + 0.0;
     let non_empty = at_least.first().copied().unwrap_or(0.0);
     let mut sizes = Vec::new();
     if non_empty < 1.0 {
@@ -521,6 +522,10 @@ mod tests {
         let d = homogeneous_draw(&[false, false], &[3, 3]);
         assert_eq!(d.empty_probability, 1.0);
         assert_eq!(d.expected_selected_count, 0.0);
+        assert!(
+            d.expected_selected_count.is_sign_positive(),
+            "prints as 0, not -0"
+        );
         let d = heterogeneous_draw(&[false], &[3], 200, 1);
         assert_eq!(d.empty_probability, 1.0);
     }

@@ -76,7 +76,9 @@ pub fn draw_of(
 /// The level curve.
 ///
 /// `conservative` are the conservative p-values (conditional calibration needs them);
-/// `randomized` the randomized p-values of the same seed (for `bh_count`).
+/// `randomized` the randomized p-values of the same seed (for `bh_count`). `known` is a
+/// level whose conditional-calibration draw the caller already has (the run's own), which
+/// is then not computed again.
 ///
 /// # Errors
 /// Bad levels, weights or scores (as the procedures themselves).
@@ -90,20 +92,29 @@ pub fn level_curve(
     levels: &[f64],
     pruning: Pruning,
     seed: u64,
+    known: Option<(f64, &DrawSummary)>,
 ) -> Result<Vec<LevelPoint>, SelectionError> {
     // Sorted once; only the level-dependent thresholds are recomputed per level.
     let mut prepared = PreparedPool::new(calibration, pool_scores, pool_weights)?;
     levels
         .iter()
         .map(|&q| {
-            let cc = select_with_counts(prepared.counts(q)?, conservative, q, pruning, seed);
-            let draw = draw_of(
-                &cc.first_step,
-                &cc.conditional_count,
-                &cc.selected,
-                pruning,
-                seed,
-            );
+            let computed;
+            let draw = match known {
+                Some((level, draw)) if level == q => draw,
+                _ => {
+                    let cc =
+                        select_with_counts(prepared.counts(q)?, conservative, q, pruning, seed);
+                    computed = draw_of(
+                        &cc.first_step,
+                        &cc.conditional_count,
+                        &cc.selected,
+                        pruning,
+                        seed,
+                    );
+                    &computed
+                }
+            };
             Ok(LevelPoint {
                 fdr: q,
                 conditional_expected_count: draw.expected_selected_count,

@@ -462,7 +462,9 @@ fn run_level_curve(
         PValueKind::Randomized => (other(PValueKind::Conservative)?, pvalues.clone()),
     };
     let pruning = settings.pruning.unwrap_or(Pruning::Homogeneous);
-    let mut curve = level_curve(
+    // At the run's own level the curve is the run: its draw is reused, not recomputed.
+    let known = (settings.procedure == Procedure::Conditional).then_some((settings.fdr, draw));
+    Ok(level_curve(
         calibration,
         pool_v,
         pool_weights,
@@ -471,20 +473,8 @@ fn run_level_curve(
         &curve_levels(settings.fdr),
         pruning,
         settings.seed,
-    )?;
-    // At the run's own level the curve is the run (same functions, same seed).
-    if settings.procedure == Procedure::Conditional {
-        for point in curve.iter_mut().filter(|p| p.fdr == settings.fdr) {
-            debug_assert_eq!(
-                point.conditional_expected_count,
-                draw.expected_selected_count
-            );
-            point.conditional_expected_count = draw.expected_selected_count;
-            point.conditional_empty_probability = draw.empty_probability;
-            point.conditional_fixed = draw.is_fixed();
-        }
-    }
-    Ok(curve)
+        known,
+    )?)
 }
 
 fn weights_vary(labeled: Option<&[f64]>, pool: Option<&[f64]>) -> bool {
@@ -570,13 +560,15 @@ fn selection_warnings(o: &SelectionOutcome) -> Vec<String> {
     warnings
 }
 
-/// How serious a draw-dependent shortlist is: `severe` when it is empty with probability
-/// 0.5 or more, `caution` otherwise (common practice, our choice).
+/// How serious a draw-dependent shortlist is, by its empty probability: `severe` at 0.5
+/// or more, `caution` at 0.05 or more, `note` below (common practice, our choice).
 pub fn draw_severity(draw: &DrawSummary) -> &'static str {
     if draw.empty_probability >= 0.5 {
         "severe"
-    } else {
+    } else if draw.empty_probability >= 0.05 {
         "caution"
+    } else {
+        "note"
     }
 }
 
@@ -617,14 +609,15 @@ pub fn draw_sentence(draw: &DrawSummary, selected_count: usize, seed: u64) -> Op
     ))
 }
 
-/// A probability with two significant digits.
+/// A probability for people: two significant digits of itself, or of its distance from 1
+/// when it is close to 1 (so 0.99942 reads "0.99942", not "1.00"); 0 and 1 exactly as such.
 fn short(p: f64) -> String {
-    if p >= 0.995 || p == 0.0 {
-        format!("{p:.2}")
-    } else {
-        let digits = (2 - 1 - p.log10().floor() as i32).max(2) as usize;
-        format!("{p:.digits$}")
+    if p <= 0.0 || p >= 1.0 {
+        return format!("{}", p.clamp(0.0, 1.0));
     }
+    let small = p.min(1.0 - p);
+    let digits = (1 - small.log10().floor() as i32).max(2) as usize;
+    format!("{p:.digits$}")
 }
 
 #[cfg(test)]
@@ -637,6 +630,16 @@ mod tests {
         let mu: Vec<f64> = (1..=19).map(|i| i as f64 / 20.0).collect();
         let pool = vec![0.99, 0.98, 0.2, 0.1];
         (y, mu, pool)
+    }
+
+    #[test]
+    fn probabilities_read_with_two_significant_digits() {
+        assert_eq!(short(0.2912), "0.29");
+        assert_eq!(short(0.00058), "0.00058");
+        assert_eq!(short(0.99942), "0.99942");
+        assert_eq!(short(0.5), "0.50");
+        assert_eq!(short(1.0), "1");
+        assert_eq!(short(0.0), "0");
     }
 
     #[test]

@@ -40,7 +40,12 @@ pub struct Resolution {
 
 /// Is pool score `v` below every labeled score (p-value at its floor)?
 pub fn at_floor(calibration: &CalibrationSet, v: f64) -> bool {
-    calibration.weight_at_or_below(v) == 0.0
+    // Labeled weights are positive, so "no labeled weight at or below v" is "v below the
+    // smallest labeled score".
+    calibration
+        .sorted_scores()
+        .first()
+        .map_or(true, |&lowest| v < lowest)
 }
 
 /// Compute the resolution diagnostic (`stable_levels` and `reading` are filled by the

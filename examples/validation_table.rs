@@ -12,16 +12,23 @@
 //! Per dataset and setting: realized FDR (+- 2 Monte Carlo SE) and power of conditional
 //! calibration, BH on weighted randomized p-values and BH ignoring the shift, over
 //! `REPLICATES` simulated screens. The induced shift sends labeled row i to the pseudo-pool
-//! with probability min(0.95, c exp(S z_i)); z is the standardized tilt:
-//! * `classifier`: the log-odds of the domain classifier fit on the real labeled vs real
+//! with probability sigmoid(a + S t_i) (the check's logistic tilt, well specified for the
+//! linear classifier), where t is:
+//! * `classifier`: the log-weight of the domain classifier fit on the real labeled vs real
 //!   pool files (`ShiftParams::new()` defaults), as `weighbridge check` does;
-//! * a named feature: minus that feature (the pseudo-pool leans toward its small values).
+//! * a named feature: minus that feature, standardized (the pseudo-pool leans toward its
+//!   small values).
+//!
+//! Rows marked `stress: capped` use the misspecified capped tilt min(0.95, c exp(S z)) of
+//! earlier versions instead (a stress test, not a verdict). "flagged" is the share of
+//! replicates whose fitted weights raised a severe weight warning or would be refused by
+//! `select`; "cond. FDR unflagged" the conditional calibration FDR over the others.
 
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 
 use weighbridge::check::{
-    calibration_check, CheckOptions, CheckOutcome, CheckWeights, ProcedureResult,
+    calibration_check, CheckOptions, CheckOutcome, CheckWeights, ProcedureResult, Tilt,
 };
 use weighbridge::fdr::Pruning;
 use weighbridge::select::SelectOptions;
@@ -87,6 +94,8 @@ impl Weights {
 struct Setting {
     /// 0 = classifier tilt, 1 = feature tilt.
     tilt: usize,
+    /// Logistic (the verdict) or a stress-test form.
+    form: Tilt,
     strength: f64,
     fdr: f64,
     weights: Weights,
@@ -98,15 +107,27 @@ struct Setting {
 fn settings() -> Vec<Setting> {
     let all = [Weights::Exact, Weights::FittedAll, Weights::FittedHeldOut];
     let mut rows = Vec::new();
-    let mut add = |tilt, strength, fdr, weights, pruning, bears_on| {
+    let mut add_form = |tilt, form, strength, fdr, weights, pruning, bears_on| {
         rows.push(Setting {
             tilt,
+            form,
             strength,
             fdr,
             weights,
             pruning,
             bears_on,
         })
+    };
+    let mut add = |tilt, strength, fdr, weights, pruning, bears_on| {
+        add_form(
+            tilt,
+            Tilt::Logistic,
+            strength,
+            fdr,
+            weights,
+            pruning,
+            bears_on,
+        )
     };
     for fdr in [0.1, 0.2] {
         for weights in all {
@@ -133,6 +154,17 @@ fn settings() -> Vec<Setting> {
         for weights in [Weights::Exact, Weights::FittedAll] {
             add(0, 1.0, 0.2, weights, pruning, "pruning");
         }
+    }
+    for weights in [Weights::Exact, Weights::FittedAll] {
+        add_form(
+            0,
+            Tilt::Capped,
+            2.0,
+            0.2,
+            weights,
+            Pruning::Homogeneous,
+            "stress test",
+        );
     }
     rows
 }
@@ -177,7 +209,7 @@ fn classifier_tilt(labeled: &UnitTable, pool: &UnitTable) -> Result<Vec<f64>, St
     Ok(weights.iter().map(|w| w.ln()).collect())
 }
 
-/// Minus the named feature: the pseudo-pool leans toward its small values.
+/// Minus the named feature, standardized: the pseudo-pool leans toward its small values.
 fn feature_tilt(labeled: &UnitTable, name: &str) -> Result<Vec<f64>, String> {
     let f = labeled
         .feature_names
@@ -185,10 +217,10 @@ fn feature_tilt(labeled: &UnitTable, name: &str) -> Result<Vec<f64>, String> {
         .position(|n| n == name)
         .ok_or_else(|| format!("no feature {name}"))?;
     let n = labeled.len();
-    Ok(labeled.features[f * n..(f + 1) * n]
-        .iter()
-        .map(|x| -x)
-        .collect())
+    let column = &labeled.features[f * n..(f + 1) * n];
+    let mean = column.iter().sum::<f64>() / n as f64;
+    let sd = (column.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / n as f64).sqrt();
+    Ok(column.iter().map(|x| -(x - mean) / sd).collect())
 }
 
 fn run(
@@ -203,6 +235,7 @@ fn run(
         replicates: REPLICATES,
         strength: s.strength,
         pool_share: POOL_SHARE,
+        tilt: s.form,
         select: SelectOptions {
             fdr: s.fdr,
             pruning: s.pruning,
@@ -227,7 +260,9 @@ fn table() -> Result<String, String> {
          pseudo-pool rows per replicate. ESS: mean Kish ESS of the weights used over the \
          calibrating rows, as a share of them. Conditional size: mean shortlist size of conditional calibration. \
          Conditional empty: share of replicates where conditional calibration \
-         selected nothing. **above q**: FDR - 2 SE > q.\n"
+         selected nothing. Flagged: share of replicates whose fitted weights raised a severe \
+         weight warning or would be refused by `select`; cond. FDR unflagged: conditional \
+         calibration FDR over the others. **above q**: FDR - 2 SE > q.\n"
     ));
     for d in &DATASETS {
         let (labeled, pool) = load(d)?;
@@ -247,9 +282,9 @@ fn table() -> Result<String, String> {
         out.push_str(
             "| tilt | S | q | weights | pruning | n / m | ESS | conditional FDR | conditional \
              power | conditional size | conditional empty | BH FDR | BH power | unweighted FDR | unweighted power | \
-             bears on |\n",
+             flagged | cond. FDR unflagged | bears on |\n",
         );
-        out.push_str("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|\n");
+        out.push_str("|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|---|\n");
         for s in settings() {
             let o = run(&labeled, &tilts[s.tilt].1, d.threshold, &s)?;
             let r = &o.results;
@@ -263,13 +298,19 @@ fn table() -> Result<String, String> {
                 format!("{:.3} +- {:.3}{flag}", p.fdr, 2.0 * p.fdr_se)
             };
             let tilt_name = if s.strength == 0.0 {
-                "none"
+                "none".to_string()
+            } else if s.form.is_stress_test() {
+                format!("{} (stress: capped)", tilts[s.tilt].0)
             } else {
-                &tilts[s.tilt].0
+                tilts[s.tilt].0.clone()
+            };
+            let unflagged = match r.conditional.fdr_unflagged {
+                Some(f) => format!("{f:.3}"),
+                None => "-".to_string(),
             };
             out.push_str(&format!(
                 "| {tilt_name} | {} | {} | {} | {} | {:.0} / {:.0} | {:.2} | {} | {:.3} | {:.1} | {:.2} \
-                 | {} | {:.3} | {} | {:.3} | {} |\n",
+                 | {} | {:.3} | {} | {:.3} | {:.2} | {} | {} |\n",
                 s.strength,
                 s.fdr,
                 s.weights.name(),
@@ -285,6 +326,8 @@ fn table() -> Result<String, String> {
                 r.bh.power,
                 fdr(&r.unweighted),
                 r.unweighted.power,
+                r.conditional.flagged_share,
+                unflagged,
                 s.bears_on,
             ));
         }

@@ -48,9 +48,20 @@ fn check_writes_results_per_procedure_and_is_reproducible() {
         "same seed, same bytes"
     );
     let report: Value = serde_json::from_slice(&bytes).unwrap();
-    for procedure in ["conditional", "bh", "unweighted"] {
-        let r = &report["results"][procedure];
-        for field in ["fdr", "fdr_se", "power", "power_se", "mean_selected"] {
+    for (results, procedure) in ["results", "results_exact_weights"]
+        .iter()
+        .flat_map(|r| ["conditional", "bh", "unweighted"].map(|p| (*r, p)))
+    {
+        let r = &report[results][procedure];
+        for field in [
+            "fdr",
+            "fdr_se",
+            "power",
+            "power_se",
+            "mean_selected",
+            "flagged_share",
+            "refused_share",
+        ] {
             let value = r[field]
                 .as_f64()
                 .unwrap_or_else(|| panic!("{procedure}.{field}"));
@@ -59,6 +70,9 @@ fn check_writes_results_per_procedure_and_is_reproducible() {
         assert!(r["fdr"].as_f64().unwrap() <= 1.0);
     }
     assert_eq!(report["replicates"].as_u64(), Some(12));
+    assert_eq!(report["tilt"].as_str(), Some("logistic"));
+    assert_eq!(report["stress_test"].as_bool(), Some(false));
+    assert!(report["flags"].is_array());
     assert_eq!(report["fdr"].as_f64(), Some(0.2));
     assert!(report["reading"].as_array().unwrap().len() >= 3);
     // Rows are split between the two parts (the fixture has 300 labeled rows).
@@ -111,4 +125,33 @@ fn bad_settings_are_input_errors_and_write_nothing() {
         assert!(stderr.contains(expected), "{args:?}: {stderr}");
         assert!(!out.exists(), "{args:?} wrote output");
     }
+}
+
+#[test]
+fn stress_tests_are_labelled_and_ess_never_reads_zero_percent() {
+    let dir = TempDir::new().unwrap();
+    let out = dir.path().join("stress");
+    let labeled = fixture("labeled.csv");
+    let pool = fixture("pool.csv");
+    let output = Command::new(env!("CARGO_BIN_EXE_weighbridge"))
+        .args(["check", "--labeled", labeled.to_str().unwrap()])
+        .args(["--pool", pool.to_str().unwrap(), "--threshold", "6.5"])
+        .args(["--out", out.to_str().unwrap(), "--features", "f1..f5"])
+        .args([
+            "--replicates",
+            "6",
+            "--stress-test",
+            "capped",
+            "--strength",
+            "3",
+        ])
+        .output()
+        .unwrap();
+    assert!(output.status.success());
+    let stdout = String::from_utf8_lossy(&output.stdout);
+    assert!(stdout.contains("STRESS TEST"), "{stdout}");
+    assert!(!stdout.contains(" 0% of the calibrating"), "{stdout}");
+    let report: Value = serde_json::from_slice(&fs::read(out.join("check.json")).unwrap()).unwrap();
+    assert_eq!(report["tilt"].as_str(), Some("capped"));
+    assert_eq!(report["stress_test"].as_bool(), Some(true));
 }

@@ -425,7 +425,7 @@ fn assert_pvalue_range(p: &[f64]) {
 // The good path on the README fixtures
 // ---------------------------------------------------------------------------------------
 
-const CONDITIONAL_COLUMNS: [&str; 11] = [
+const CONDITIONAL_COLUMNS: [&str; 12] = [
     "id",
     "score",
     "weight",
@@ -437,6 +437,7 @@ const CONDITIONAL_COLUMNS: [&str; 11] = [
     "selection_probability",
     "q_value",
     "q_value_by",
+    "unreliable_weights",
 ];
 
 const SUMMARY_KEYS: [&str; 15] = [
@@ -650,7 +651,8 @@ fn check_step_up_run(out: &Path, procedure: &str, pvalues: &str, q: f64) -> Cand
             "never_selectable_because",
             "selection_probability",
             "q_value",
-            "q_value_by"
+            "q_value_by",
+            "unreliable_weights"
         ],
         "{procedure}: no first_step / conditional_count columns"
     );
@@ -1688,10 +1690,12 @@ fn shift_warnings_come_first_in_the_summary() {
         &fixture("labeled.csv"),
         &far,
         &out,
-        "--threshold 6.5 --fit-weights --features f1..f5",
+        "--threshold 6.5 --fit-weights --features f1..f5 --allow-unreliable-weights",
     );
     assert_success(&output);
     let summary = read_summary(&out);
+    // So far from the labeled set the weights are refused without the flag (exit 3).
+    assert!(summary["unreliable_weights"].is_object());
     let shift_warnings: Vec<&str> = summary["shift"]["warnings"]
         .as_array()
         .unwrap()
@@ -1722,10 +1726,19 @@ fn shift_warnings_come_first_in_the_summary() {
     );
     let stdout = text(&output.stdout);
     assert!(stdout.contains("warnings (most serious first)"), "{stdout}");
-    // Severe shift warnings are announced on the second line, before any count.
-    let second = stdout.lines().nth(1).unwrap_or_default();
+    // The run's mark comes on the second line, then the severe shift warnings, before
+    // any count.
+    let mut lines = stdout.lines().skip(1);
     assert!(
-        second.contains("WARNING") && second.contains("ess_fraction"),
+        lines
+            .next()
+            .unwrap_or_default()
+            .starts_with("UNRELIABLE WEIGHTS"),
+        "{stdout}"
+    );
+    let third = lines.next().unwrap_or_default();
+    assert!(
+        third.contains("WARNING") && third.contains("ess_fraction"),
         "{stdout}"
     );
 }

@@ -106,7 +106,7 @@ fn load(d: &Dataset) -> (UnitTable, UnitTable) {
 enum Tilt {
     /// Log-odds of the domain classifier fit on the real labeled vs pool files.
     Classifier,
-    /// Minus the dataset's tilt feature.
+    /// Minus the dataset's tilt feature, standardized.
     Feature,
 }
 
@@ -131,10 +131,11 @@ fn tilt(d: &Dataset, labeled: &UnitTable, pool: &UnitTable, kind: Tilt) -> Vec<f
                 .position(|n| n == d.tilt_feature)
                 .unwrap();
             let n = labeled.len();
-            labeled.features[f * n..(f + 1) * n]
-                .iter()
-                .map(|x| -x)
-                .collect()
+            let column = &labeled.features[f * n..(f + 1) * n];
+            let mean = column.iter().sum::<f64>() / n as f64;
+            let sd =
+                (column.iter().map(|x| (x - mean) * (x - mean)).sum::<f64>() / n as f64).sqrt();
+            column.iter().map(|x| -(x - mean) / sd).collect()
         }
     }
 }
@@ -161,6 +162,7 @@ fn check(
         replicates: REPLICATES,
         strength,
         pool_share: 0.5,
+        tilt: weighbridge::check::Tilt::Logistic,
         select: SelectOptions {
             fdr,
             pruning,

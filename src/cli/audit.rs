@@ -58,6 +58,9 @@ pub struct AuditArgs {
 #[derive(Debug, Serialize)]
 struct AuditSummary<'a> {
     tool: ToolInfo,
+    /// Why `select` would refuse the fitted weights (empty when it would not, or without
+    /// fitted weights). An audit does not refuse: this is its first finding.
+    unreliable_weights: Vec<crate::shift::Unreliable>,
     shortlist_file: String,
     labeled_file: String,
     pool_file: String,
@@ -348,8 +351,28 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         })
         .unwrap_or_default();
     warnings.extend(outcome.warnings.iter().cloned());
+    // Unreliable fitted weights are the first finding: `select` would refuse them.
+    let unreliable = weighting
+        .fitted()
+        .map(|f| f.assessment.summary.refusal_reasons.clone())
+        .unwrap_or_default();
+    if !unreliable.is_empty() {
+        let detail: Vec<String> = unreliable
+            .iter()
+            .map(|u| format!("{}: {}", u.diagnostic, u.message))
+            .collect();
+        warnings.insert(
+            0,
+            format!(
+                "unreliable fitted weights: `select` would refuse them (exit code 3), so \
+                 every weighted figure of this audit rests on weights that extrapolate; {}",
+                detail.join("; ")
+            ),
+        );
+    }
     let summary = AuditSummary {
         tool: tool_info(),
+        unreliable_weights: unreliable,
         shortlist_file: shortlist_path.display().to_string(),
         labeled_file: config.labeled_path.display().to_string(),
         pool_file: config.pool_path.display().to_string(),

@@ -13,9 +13,11 @@ use crate::conformal::score::ScoreKind;
 use crate::io::{check_same_features, read_units, OutputSet, Role};
 use crate::report::{tool_info, ToolInfo};
 use crate::selection::pipeline::{Procedure, SelectOptions};
+use crate::shift::reliability::percent_two_significant;
 use crate::shift::weighting::{obtain_weights, WeightSource};
+use crate::shift::{unreliable_weights, Unreliable};
 use crate::workflows::check::{
-    calibration_check, CheckOptions, CheckOutcome, CheckWeights, PI_MAX,
+    calibration_check, CheckOptions, CheckOutcome, CheckWeights, ProcedureResult, Tilt, PI_MAX,
 };
 
 use super::common::{weighting_failure, DelimiterArg, FitArgs, InputArgs, PValuesArg, ScoreArg};
@@ -24,23 +26,56 @@ use super::{commit_outputs, print_stdout, Failure};
 const CHECK_HELP: &str = "\
 Uses only the labeled set, where outcomes are known. Each replicate splits it at random into
 a pseudo-labeled part and a pseudo-pool, sending row i to the pseudo-pool with probability
-min(0.95, c exp(S z_i)): z_i is how much the row resembles the real pool (the standardized
-log-odds of a domain classifier fit on the real labeled and pool files), S is --strength,
-and c makes the pseudo-pool hold --pool-share of the rows on average. The exact density
-ratio of that split is known. The whole pipeline then runs on each replicate (weights fitted
-as `select --fit-weights` would, or the exact ratio with --weights exact), and the realized
-false discovery proportion and power of three selections are averaged: conditional
+sigmoid(a + S t_i): t_i is row i's log-weight from a domain classifier fit on the real labeled
+and pool files (how much the row resembles the real pool), S is --strength, and a makes the
+pseudo-pool hold --pool-share of the rows on average. The exact density ratio of that split,
+exp(a + S t_i), has the classifier's own form, so the weight model is well specified and
+--strength 1 reproduces your own shift. The whole pipeline then runs on each replicate
+(weights fitted as `select --fit-weights` would), and once more with the exact ratio; the
+realized false discovery proportion and power of three selections are averaged: conditional
 calibration with the weights, BH on weighted p-values, and BH ignoring the shift.
 
-Cost: one classifier fit per replicate (diagnostics skipped) plus three selections;
-replicates run in parallel. A few seconds for 200 replicates of a few thousand rows.
+Each replicate also records whether its fitted weights raised a severe warning or would have
+been refused by `select` (exit 3); the results count every replicate, and beside them stand
+the share of flagged replicates and the FDR among the others.
 
-Writes check.json (settings, split, results.{conditional,bh,unweighted}.{fdr, fdr_se,
-power, power_se, mean_selected, empty_share}) and prints a table.
+--stress-test TILT replaces the tilt by a shift the weight model is not built to describe
+(capped, quadratic, variance, prediction); its verdict is labelled a stress test.
+
+Cost: one classifier fit per replicate plus six selections; replicates run in parallel. A few
+seconds for 200 replicates of a few thousand rows.
+
+Writes check.json (settings, split, results and results_exact_weights, each with
+{conditional,bh,unweighted}.{fdr, fdr_se, power, power_se, mean_selected, empty_share,
+flagged_share, refused_share, fdr_unflagged, ...}) and prints a table.
 
 Example:
   weighbridge check --labeled fixtures/labeled.csv --pool fixtures/pool.csv \\
       --threshold 6.5 --features f1..f5 --replicates 200 --strength 1 --fdr 0.2";
+
+/// `--stress-test` of `check`.
+#[derive(Clone, Copy, Debug, ValueEnum)]
+pub enum StressTestArg {
+    /// pi = min(0.95, c exp(S z)): a flat top the classifier cannot describe.
+    Capped,
+    /// A tilt quadratic in the real fitted log-weight.
+    Quadratic,
+    /// Pseudo-pool rows concentrated near the feature centre (a variance shift).
+    Variance,
+    /// A tilt along the model's prediction, outside the classifier's features.
+    Prediction,
+}
+
+impl From<StressTestArg> for Tilt {
+    fn from(a: StressTestArg) -> Tilt {
+        match a {
+            StressTestArg::Capped => Tilt::Capped,
+            StressTestArg::Quadratic => Tilt::Quadratic,
+            StressTestArg::Variance => Tilt::Variance,
+            StressTestArg::Prediction => Tilt::Prediction,
+        }
+    }
+}
 
 /// `--weights` of `check`.
 #[derive(Clone, Copy, Debug, ValueEnum)]
@@ -62,14 +97,19 @@ pub struct CheckArgs {
     pub features: Vec<String>,
     #[command(flatten)]
     pub fit: FitArgs,
-    /// Weights used inside each replicate.
+    /// Weights used inside each replicate for `results` (results_exact_weights always uses
+    /// the exact ratio).
     #[arg(long, value_enum, default_value_t = CheckWeightsArg::Fitted)]
     pub weights: CheckWeightsArg,
+    /// Replace the logistic tilt by a misspecified one (a stress test, never the headline
+    /// verdict).
+    #[arg(long, value_enum, value_name = "TILT")]
+    pub stress_test: Option<StressTestArg>,
     /// Number of simulated screens.
     #[arg(long, default_value_t = 200)]
     pub replicates: usize,
-    /// Strength S of the induced shift (0 = none; 1 = rows one standard deviation more
-    /// pool-like are e times as likely to go to the pseudo-pool).
+    /// Strength S of the induced shift (0 = none; 1 = the real shift: the pseudo-pool's
+    /// density ratio is proportional to the real fitted weights).
     #[arg(long, default_value_t = 1.0, allow_negative_numbers = true)]
     pub strength: f64,
     /// Mean share of the labeled rows sent to the pseudo-pool, in (0, 0.9].
@@ -113,16 +153,26 @@ struct CheckReport<'a> {
     seed: u64,
     pi_max: f64,
     real_shift_auc: f64,
+    /// Why the real fit's weights would be refused by `select` (empty when they would not).
+    real_fit_unreliable: Vec<Unreliable>,
     #[serde(flatten)]
     outcome: &'a CheckOutcome,
     reading: Vec<String>,
 }
 
 /// How to read the results, in plain words.
-fn reading(outcome: &CheckOutcome, q: f64) -> Vec<String> {
+fn reading(outcome: &CheckOutcome, q: f64, fitted: bool) -> Vec<String> {
     let mut lines = Vec::new();
+    if outcome.stress_test {
+        lines.push(format!(
+            "STRESS TEST ({}): this is not the verdict on data like yours; it shows how the \
+             pipeline behaves when the shift has a form the weight model cannot describe.",
+            outcome.tilt_description
+        ));
+    }
     let r = &outcome.results;
-    let verdict = |name: &str, fdr: f64, se: f64| {
+    let verdict = |name: &str, p: &ProcedureResult| {
+        let (fdr, se) = (p.fdr, p.fdr_se);
         if fdr - 2.0 * se > q {
             format!(
                 "{name}: realized FDR {fdr:.3} +- {:.3} (2 SE) is above q = {q}: on data like \
@@ -136,17 +186,39 @@ fn reading(outcome: &CheckOutcome, q: f64) -> Vec<String> {
             )
         }
     };
-    lines.push(verdict(
-        "conditional calibration",
-        r.conditional.fdr,
-        r.conditional.fdr_se,
-    ));
-    lines.push(verdict("BH on weighted p-values", r.bh.fdr, r.bh.fdr_se));
-    lines.push(verdict(
-        "BH ignoring the shift",
-        r.unweighted.fdr,
-        r.unweighted.fdr_se,
-    ));
+    lines.push(verdict("conditional calibration", &r.conditional));
+    lines.push(verdict("BH on weighted p-values", &r.bh));
+    lines.push(verdict("BH ignoring the shift", &r.unweighted));
+    if fitted {
+        let e = &outcome.results_exact_weights;
+        lines.push(format!(
+            "with the exact density ratio instead of fitted weights: conditional calibration \
+             FDR {:.3} +- {:.3}, BH on weighted p-values {:.3} +- {:.3}; a gap to the fitted \
+             rows above is the cost of estimating the weights.",
+            e.conditional.fdr,
+            2.0 * e.conditional.fdr_se,
+            e.bh.fdr,
+            2.0 * e.bh.fdr_se
+        ));
+        let c = &r.conditional;
+        if c.flagged_share > 0.0 {
+            let others = match (c.fdr_unflagged, c.fdr_unflagged_se) {
+                (Some(f), Some(se)) => format!(
+                    "conditional calibration FDR among the other {} replicates {f:.3} +- {:.3}",
+                    c.unflagged_replicates,
+                    2.0 * se
+                ),
+                _ => "no replicate was free of them".to_string(),
+            };
+            lines.push(format!(
+                "{} of replicates raised a severe weight warning and {} would have been \
+                 refused by `select` (exit 3); {others}. The results above count every \
+                 replicate, as if run with --allow-unreliable-weights.",
+                percent_two_significant(c.flagged_share),
+                percent_two_significant(c.refused_share),
+            ));
+        }
+    }
     if r.conditional.empty_share > 0.5 {
         lines.push(format!(
             "conditional calibration selected nothing in {:.0}% of replicates: at this level \
@@ -194,8 +266,8 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
     let pool = read_units(&a.input.pool, Role::Pool, &pool_read)?;
     check_same_features(&labeled, &pool)?;
 
-    // The direction of the real shift: the classifier's log-odds at the labeled rows
-    // (log w differs from it by a constant, which the standardization removes).
+    // The real shift: the classifier's fitted log-weight at the labeled rows (it differs
+    // from the log-odds by the constant log(n / m), which the tilt's offset absorbs).
     let real = obtain_weights(
         &WeightSource::Fitted {
             params: params.clone(),
@@ -205,7 +277,7 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
     )
     .map_err(|e| weighting_failure(e, &a.input.labeled, &a.input.pool))?;
     let real_fit = real.fitted().expect("fitted weights were asked for");
-    let tilt: Vec<f64> = real_fit
+    let log_weight: Vec<f64> = real_fit
         .assessment
         .labeled
         .weight
@@ -213,11 +285,13 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
         .map(|w| w.ln())
         .collect();
     let real_shift_auc = real_fit.assessment.summary.auc;
+    let real_fit_unreliable = unreliable_weights(&real_fit.assessment.summary);
 
     let options = CheckOptions {
         replicates: a.replicates,
         strength: a.strength,
         pool_share: a.pool_share,
+        tilt: a.stress_test.map_or(Tilt::Logistic, Tilt::from),
         select: select.clone(),
         weights: match a.weights {
             // Diagnostics are not needed inside replicates: the cheapest valid settings.
@@ -237,8 +311,14 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
             }
         }
     };
-    let outcome = calibration_check(&labeled, &tilt, a.input.threshold, &options, &progress)
-        .map_err(|e| Failure::Input(format!("calibration check: {e}")))?;
+    let outcome = calibration_check(
+        &labeled,
+        &log_weight,
+        a.input.threshold,
+        &options,
+        &progress,
+    )
+    .map_err(|e| Failure::Input(format!("calibration check: {e}")))?;
 
     let report = CheckReport {
         tool: tool_info(),
@@ -255,8 +335,13 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
         seed: a.seed,
         pi_max: PI_MAX,
         real_shift_auc,
+        real_fit_unreliable,
         outcome: &outcome,
-        reading: reading(&outcome, a.fdr),
+        reading: reading(
+            &outcome,
+            a.fdr,
+            matches!(a.weights, CheckWeightsArg::Fitted),
+        ),
     };
     let mut files = OutputSet::new();
     let json = serde_json::to_vec_pretty(&report)
@@ -271,20 +356,21 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
             "weighbridge {} calibration check: {} replicates, strength {}, FDR {} ({})",
             report.tool.version, outcome.replicates, outcome.strength, a.fdr, report.weights
         );
+        let _ = writeln!(text, "  shift: {}", outcome.tilt_description);
         let _ = writeln!(
             text,
             "  each replicate: {:.0} pseudo-labeled and {:.0} pseudo-pool rows on average, {:.1}% \
-             of pool rows above threshold; the weights' effective sample size is {:.0}% of the \
+             of pool rows above threshold; the weights' effective sample size is {} of the \
              calibrating rows",
             outcome.mean_pseudo_labeled,
             outcome.mean_pseudo_pool,
             100.0 * outcome.mean_interesting_share,
-            100.0 * outcome.mean_calibration_ess_fraction
+            percent_two_significant(outcome.mean_calibration_ess_fraction)
         );
         let _ = writeln!(
             text,
-            "{:<36} {:>16} {:>16} {:>9}",
-            "selection", "FDR +- 2 SE", "power +- 2 SE", "selected"
+            "{:<36} {:>16} {:>16} {:>9} {:>8}",
+            "selection", "FDR +- 2 SE", "power +- 2 SE", "selected", "flagged"
         );
         let r = &outcome.results;
         for (name, p) in [
@@ -294,12 +380,26 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
         ] {
             let _ = writeln!(
                 text,
-                "{name:<36} {:>8.3} +- {:.3} {:>8.3} +- {:.3} {:>9.1}",
+                "{name:<36} {:>8.3} +- {:.3} {:>8.3} +- {:.3} {:>9.1} {:>8}",
                 p.fdr,
                 2.0 * p.fdr_se,
                 p.power,
                 2.0 * p.power_se,
-                p.mean_selected
+                p.mean_selected,
+                percent_two_significant(p.flagged_share)
+            );
+        }
+        if !report.real_fit_unreliable.is_empty() {
+            let _ = writeln!(
+                text,
+                "  note: `select --fit-weights` would refuse the weights fitted on your real files \
+                 ({}); this check tells what the pipeline does with such weights.",
+                report
+                    .real_fit_unreliable
+                    .iter()
+                    .map(|u| u.diagnostic.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", ")
             );
         }
         for line in &report.reading {

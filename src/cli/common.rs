@@ -5,6 +5,7 @@
 //! that read the inputs, obtain the weights, map weighting errors to exit codes and build
 //! report.html of a selection.
 
+use std::fmt::Write as _;
 use std::path::{Path, PathBuf};
 
 use clap::{Args, ValueEnum};
@@ -14,12 +15,13 @@ use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::{ScoreKind, Thresholds};
 use crate::io::{check_same_features, read_units, ReadOptions, Role, UnitTable};
 use crate::report::html::{selection_report, shift_part, WeightsMethod};
+use crate::report::UnreliableMark;
 use crate::selection::pipeline::{LabeledInput, PoolInput, Procedure, SelectOptions};
 use crate::selection::pruning::Pruning;
 use crate::shift::weighting::{
     obtain_weights, Calibration, WeightSource, Weighting, WeightingError,
 };
-use crate::shift::{Expansion, FitRows, ShiftError, ShiftParams};
+use crate::shift::{unreliable_weights, Expansion, FitRows, ShiftError, ShiftParams, Unreliable};
 
 use super::Failure;
 
@@ -160,6 +162,12 @@ pub struct SelectArgs {
     pub features: Vec<String>,
     #[command(flatten)]
     pub fit: FitArgs,
+    /// With --fit-weights: run even when the fitted weights are unreliable (Pareto k-hat
+    /// above its threshold, effective sample size below 2% of the labeled rows, or
+    /// domain-classifier AUC above 0.99), which otherwise stops the run with exit code 3.
+    /// Every output is then marked as such.
+    #[arg(long, requires = "fit_weights")]
+    pub allow_unreliable_weights: bool,
     /// Score function.
     #[arg(long, value_enum, default_value_t = ScoreArg::Clipped)]
     pub score: ScoreArg,
@@ -277,6 +285,8 @@ pub struct SelectConfig {
     pub quiet: bool,
     /// Write report.html too.
     pub report: bool,
+    /// Go ahead on unreliable fitted weights (`--allow-unreliable-weights`).
+    pub allow_unreliable_weights: bool,
 }
 
 impl TryFrom<SelectArgs> for SelectConfig {
@@ -306,6 +316,7 @@ impl TryFrom<SelectArgs> for SelectConfig {
             },
             seed: a.seed,
             level_curve: a.level_curve.then_some(true),
+            empty_when_unreachable: a.allow_unreliable_weights,
         };
         // Usage errors (bad q, conditional + randomized, stray fit options) before any file
         // is read.
@@ -340,6 +351,7 @@ impl TryFrom<SelectArgs> for SelectConfig {
             out: a.out,
             quiet: a.quiet,
             report: a.report,
+            allow_unreliable_weights: a.allow_unreliable_weights,
         })
     }
 }
@@ -398,6 +410,51 @@ pub(crate) fn obtain_run_weights<'a>(
 ) -> Result<Weighting<'a>, Failure> {
     obtain_weights(&config.weights, labeled, pool)
         .map_err(|e| weighting_failure(e, &config.labeled_path, &config.pool_path))
+}
+
+/// Stop a run on unreliable fitted weights (design.md 2.9): exit code 3 with each
+/// diagnostic, its value and threshold, and what to try; with `--allow-unreliable-weights`
+/// go ahead and return the mark every output carries. Given weights and no weights are
+/// never refused.
+pub(crate) fn reliability_gate(
+    config: &SelectConfig,
+    weighting: &Weighting<'_>,
+) -> Result<Option<UnreliableMark>, Failure> {
+    let Some(fitted) = weighting.fitted() else {
+        return Ok(None);
+    };
+    let reasons = unreliable_weights(&fitted.assessment.summary);
+    if reasons.is_empty() {
+        return Ok(None);
+    }
+    if config.allow_unreliable_weights {
+        return Ok(Some(UnreliableMark::new(reasons)));
+    }
+    Err(Failure::Refused(refusal_message(
+        &reasons,
+        &config.labeled_path,
+        &config.pool_path,
+    )))
+}
+
+/// The message of a refusal: which diagnostics, values, thresholds, what to try.
+pub(crate) fn refusal_message(reasons: &[Unreliable], labeled: &Path, pool: &Path) -> String {
+    let mut text = format!(
+        "the weights fitted on {} and {} are unreliable, so no shortlist was written (exit \
+         code 3):",
+        labeled.display(),
+        pool.display()
+    );
+    for r in reasons {
+        let _ = write!(text, "\n  - {}: {}", r.diagnostic, r.message);
+    }
+    let _ = write!(
+        text,
+        "\nIn simulation, runs past these thresholds had realized FDR well above q \
+         (docs/validation.md). What to try: {}.",
+        crate::shift::reliability::REMEDIES
+    );
+    text
 }
 
 /// Are the weights fitted in this run (the step worth announcing)?

@@ -207,7 +207,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
     files.add("pool_truth.csv", truth.into_bytes());
     files.add(
         "candidates.csv",
-        candidates_csv(&scenario.pool.ids, weighted),
+        candidates_csv(&scenario.pool.ids, weighted, false),
     );
     files.add(
         "weights.csv",

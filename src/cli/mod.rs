@@ -64,6 +64,8 @@ pub enum Failure {
     Input(String),
     /// A bug or an environment failure: exit code 1.
     Internal(String),
+    /// Refused: the fitted weights are unreliable (exit code 3); nothing was written.
+    Refused(String),
 }
 
 impl From<crate::io::InputError> for Failure {
@@ -204,6 +206,10 @@ pub fn main_entry() -> ExitCode {
         Err(Failure::Internal(message)) => {
             eprintln!("internal error: {message}");
             ExitCode::from(1)
+        }
+        Err(Failure::Refused(message)) => {
+            eprintln!("refused: {message}");
+            ExitCode::from(3)
         }
     }
 }

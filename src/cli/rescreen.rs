@@ -14,8 +14,8 @@ use crate::selection::pipeline::run_selection;
 use crate::workflows::rescreen::{compare, ChangeCounts, CurrentUnit, PreviousUnit};
 
 use super::common::{
-    obtain_run_weights, read_inputs, report_pointer, selection_inputs, selection_report_page,
-    SelectArgs, SelectConfig,
+    obtain_run_weights, read_inputs, reliability_gate, report_pointer, selection_inputs,
+    selection_report_page, SelectArgs, SelectConfig,
 };
 use super::{commit_outputs, print_stdout, Failure};
 
@@ -137,6 +137,7 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     let (previous, previous_summary) = read_previous(&previous_dir)?;
     let (labeled, pool) = read_inputs(&config)?;
     let weighting = obtain_run_weights(&config, &labeled, &pool)?;
+    let unreliable = reliability_gate(&config, &weighting)?;
     let calibration = weighting.calibration(&labeled);
     let (labeled_input, pool_input) = selection_inputs(&config, &pool, &calibration, &weighting);
     let outcome = run_selection(&config.options, labeled_input, pool_input)?;
@@ -156,6 +157,7 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     if let Some(fitted) = weighting.fitted() {
         add_shift(&mut summary, shift_section(fitted, &labeled.feature_names));
     }
+    summary.unreliable_weights = unreliable;
 
     let current: Vec<CurrentUnit<'_>> = (0..pool.len())
         .map(|j| CurrentUnit {
@@ -248,7 +250,10 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
             .expect("write to memory");
     }
     let mut files = OutputSet::new();
-    files.add("candidates.csv", candidates_csv(&pool.ids, &outcome));
+    files.add(
+        "candidates.csv",
+        candidates_csv(&pool.ids, &outcome, summary.unreliable_weights.is_some()),
+    );
     files.add(
         "summary.json",
         serde_json::to_vec_pretty(&summary)

@@ -11,8 +11,8 @@ use crate::selection::pipeline::{run_selection, LabeledInput, PoolInput, SelectE
 use crate::shift::weighting::WeightSource;
 
 use super::common::{
-    obtain_run_weights, read_inputs, report_pointer, selection_inputs, selection_report_page,
-    weighting_is_fitted,
+    obtain_run_weights, read_inputs, reliability_gate, report_pointer, selection_inputs,
+    selection_report_page, weighting_is_fitted,
 };
 pub use super::common::{SelectArgs, SelectConfig};
 use super::{commit_outputs, print_stdout, Failure, PhaseTimer, StepStatus};
@@ -23,7 +23,24 @@ fn select_or_explain(
     labeled: LabeledInput<'_>,
     pool: PoolInput<'_>,
 ) -> Result<crate::selection::pipeline::SelectionOutcome, Failure> {
+    let weighted = labeled.weights.is_some() || pool.weights.is_some();
     run_selection(&config.options, labeled, pool).map_err(|e| match e {
+        SelectError::LabeledSetTooSmall {
+            fdr,
+            n_labeled,
+            smallest_floor,
+        } if weighted => Failure::Input(format!(
+            "no pool unit can ever be selected at FDR level {fdr}: with the weights of {}, \
+             the smallest possible p-value w_j / (W + w_j) is {smallest_floor:.4} (W = total \
+             weight of the {n_labeled} labeled rows). The pool's weights are large compared \
+             with the labeled set's: the pool lies where the labeled set has little weight \
+             (little overlap), so more labeled rows like the current ones will not help; \
+             labeled rows like the pool, or a higher --fdr, will.",
+            match &config.weights {
+                WeightSource::Given { column } => format!("column {column}"),
+                _ => "the fit".to_string(),
+            }
+        )),
         SelectError::LabeledSetTooSmall { .. } => Failure::Input(format!(
             "labeled file {}: {e}{}",
             config.labeled_path.display(),
@@ -53,6 +70,8 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     if weighting.fitted().is_some() {
         timer.mark("fit weights and diagnostics");
     }
+    // Unreliable fitted weights stop the run here (exit 3) unless allowed.
+    let unreliable = reliability_gate(&config, &weighting)?;
     // Held-out fitting: the rows that fit the classifier do not calibrate.
     let calibration = weighting.calibration(&labeled);
     status.step("scores, p-values and selection");
@@ -73,8 +92,12 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     if let Some(fitted) = weighting.fitted() {
         add_shift(&mut summary, shift_section(fitted, &labeled.feature_names));
     }
+    summary.unreliable_weights = unreliable;
     let mut files = OutputSet::new();
-    files.add("candidates.csv", candidates_csv(&pool.ids, &outcome));
+    files.add(
+        "candidates.csv",
+        candidates_csv(&pool.ids, &outcome, summary.unreliable_weights.is_some()),
+    );
     let json = serde_json::to_vec_pretty(&summary)
         .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?;
     files.add("summary.json", json);

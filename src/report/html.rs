@@ -294,7 +294,12 @@ pub fn selection_verdict(summary: &SelectSummary) -> String {
             .count()
     });
     let mut verdict = format!(
-        "{} of {} pool units selected at FDR {}",
+        "{}{} of {} pool units selected at FDR {}",
+        summary
+            .unreliable_weights
+            .as_ref()
+            .map(|m| format!("{} ", m.statement))
+            .unwrap_or_default(),
         summary.selected_count,
         summary.n_pool,
         number(summary.fdr)

@@ -14,5 +14,5 @@ pub use summary::{
     add_shift, balance_csv, candidates_csv, select_summary, shift_diagnostics_text, shift_report,
     shift_section, shift_text, text_summary, tool_info, unselectable_reason, warning_line,
     weights_csv, RunInputs, SelectSummary, ShiftInputs, ShiftReport, ShiftSection, ToolInfo,
-    CAUTIONS,
+    UnreliableMark, CAUTIONS,
 };

@@ -110,8 +110,45 @@ pub struct SelectSummary {
     pub labeled_ess_fraction: f64,
     /// Shift diagnostics when weights were fitted; otherwise null.
     pub shift: Option<ShiftSection>,
+    /// Set when the fitted weights were unreliable and the run went ahead only because of
+    /// `--allow-unreliable-weights`: which diagnostics, and what that means. Null otherwise.
+    pub unreliable_weights: Option<UnreliableMark>,
     pub warnings: Vec<String>,
     pub cautions: Vec<&'static str>,
+}
+
+/// The mark of a run allowed through on unreliable fitted weights.
+#[derive(Clone, Debug, Serialize)]
+pub struct UnreliableMark {
+    /// The flag that allowed the run.
+    pub allowed_by: &'static str,
+    /// The diagnostics past their thresholds.
+    pub reasons: Vec<crate::shift::Unreliable>,
+    /// What this means for the shortlist, in plain words.
+    pub statement: String,
+}
+
+impl UnreliableMark {
+    /// The mark for these reasons (non-empty).
+    pub fn new(reasons: Vec<crate::shift::Unreliable>) -> Self {
+        let names: Vec<&str> = reasons.iter().map(|r| r.diagnostic.as_str()).collect();
+        UnreliableMark {
+            allowed_by: "--allow-unreliable-weights",
+            statement: format!(
+                "UNRELIABLE WEIGHTS: the fitted weights fail {} ({}); this run went ahead \
+                 only because of --allow-unreliable-weights. In simulation such runs had \
+                 realized FDR well above q (docs/validation.md): do not read this shortlist \
+                 as FDR-controlled.",
+                if names.len() == 1 {
+                    "one reliability check"
+                } else {
+                    "several reliability checks"
+                },
+                names.join(", ")
+            ),
+            reasons,
+        }
+    }
 }
 
 /// Build the summary of a run.
@@ -157,6 +194,7 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         labeled_ess: outcome.labeled_ess,
         labeled_ess_fraction: outcome.labeled_ess / outcome.n_labeled as f64,
         shift: None,
+        unreliable_weights: None,
         warnings: outcome.warnings.clone(),
         cautions: CAUTIONS.to_vec(),
     }
@@ -213,7 +251,10 @@ pub fn unselectable_reason(outcome: &SelectionOutcome, j: usize) -> String {
 ///
 /// # Panics
 /// If `ids` and the outcome differ in length.
-pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome) -> Vec<u8> {
+///
+/// The last column, `unreliable_weights`, is `true` on every row of a run allowed through
+/// on unreliable fitted weights (`--allow-unreliable-weights`), `false` otherwise.
+pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome, unreliable: bool) -> Vec<u8> {
     assert_eq!(ids.len(), outcome.scores.len(), "ids / outcome length");
     let mut writer = csv::Writer::from_writer(Vec::with_capacity(ids.len() * 64));
     let conditional = outcome.conditional_count.is_some();
@@ -226,6 +267,7 @@ pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome) -> Vec<u8> {
         "selection_probability",
         "q_value",
         "q_value_by",
+        "unreliable_weights",
     ]);
     writer.write_record(&header).expect("write to memory");
     let mut floats = ryu::Buffer::new();
@@ -257,6 +299,7 @@ pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome) -> Vec<u8> {
             Some(by) => record.push_field(floats.format(by[j]).as_bytes()),
             None => record.push_field(b""),
         }
+        record.push_field(bool_text(unreliable));
         writer.write_byte_record(&record).expect("write to memory");
     }
     writer.into_inner().expect("flush to memory")
@@ -288,6 +331,9 @@ pub fn text_summary(summary: &SelectSummary, ids: &[String], outcome: &Selection
         s.pvalues,
         s.score
     );
+    if let Some(mark) = &s.unreliable_weights {
+        let _ = writeln!(out, "{}", mark.statement);
+    }
     if let Some(shift) = &s.shift {
         let severe: Vec<&str> = shift
             .summary
@@ -778,6 +824,19 @@ pub fn shift_text(report: &ShiftReport) -> String {
         section.features.len(),
         if section.features.len() == 1 { "" } else { "s" }
     );
+    if !s.refusal_reasons.is_empty() {
+        let names: Vec<&str> = s
+            .refusal_reasons
+            .iter()
+            .map(|r| r.diagnostic.as_str())
+            .collect();
+        let _ = writeln!(
+            out,
+            "UNRELIABLE: `select --fit-weights` would refuse these weights (exit code 3) because \
+             of {}; see the warnings below",
+            names.join(", ")
+        );
+    }
     if s.warnings.is_empty() {
         let _ = writeln!(
             out,

@@ -74,6 +74,11 @@ pub struct SelectOptions {
     /// the library (repeated runs such as the calibration check pay nothing); the `select`
     /// command passes `None` (or `Some(true)` with `--level-curve`).
     pub level_curve: Option<bool>,
+    /// When every pool unit is unreachable at level q, return an empty selection (with
+    /// every unit marked unreachable) instead of [`SelectError::LabeledSetTooSmall`].
+    /// Defaults to `false`; `select --allow-unreliable-weights` sets it, so that a run
+    /// allowed through on degenerate weights still writes its (empty) shortlist.
+    pub empty_when_unreachable: bool,
 }
 
 impl Default for SelectOptions {
@@ -86,6 +91,7 @@ impl Default for SelectOptions {
             score: ScoreKind::Clipped,
             seed: crate::random::DEFAULT_SEED,
             level_curve: Some(false),
+            empty_when_unreachable: false,
         }
     }
 }
@@ -307,7 +313,7 @@ pub fn run_selection(
 
     let unreachable = bh::unreachable(total, pool.weights, m, q);
     let unreachable_count = unreachable.iter().filter(|&&u| u).count();
-    if unreachable_count == m {
+    if unreachable_count == m && !options.empty_when_unreachable {
         let smallest_floor = (0..m)
             .map(|j| {
                 let w = pool.weights.map_or(1.0, |w| w[j]);
@@ -537,7 +543,22 @@ fn selection_warnings(o: &SelectionOutcome) -> Vec<String> {
             o.selected_count
         ));
     }
-    if o.selected_count == 0 {
+    if o.selected_count == 0 && o.unreachable_count == m {
+        warnings.push(format!(
+            "empty shortlist: no pool unit can be selected at FDR {q} whatever its outcome: \
+             every unit's weight alone keeps its p-value above q (the smallest possible \
+             p-value is {:.4}). {}",
+            o.resolution.smallest_floor_pvalue,
+            if o.weights_vary {
+                "With these weights the pool lies where the labeled set has almost no weight \
+                 (little overlap); more labeled rows alone will not fix it, labeled rows like \
+                 the pool will."
+            } else {
+                "The labeled set is too small for this level: use more labeled rows or a \
+                 higher --fdr."
+            }
+        ));
+    } else if o.selected_count == 0 {
         warnings.push(format!(
             "empty shortlist: no pool unit was selected at FDR {q}. BH on the weighted {} \
              p-values would select {}.",

@@ -87,6 +87,9 @@ pub struct ShiftSummary {
     pub iterations: usize,
     /// Warnings, worst first.
     pub warnings: Vec<ShiftWarning>,
+    /// Why `select` and `rescreen` would refuse these weights if fitted for a selection
+    /// (design.md 2.9; empty when they would not): diagnostic, value, threshold, message.
+    pub refusal_reasons: Vec<super::Unreliable>,
     /// Labeled rows used for calibration (not used for fitting only).
     pub calibration_rows: usize,
     /// Pool rows.
@@ -402,6 +405,7 @@ fn shift_summary(
         converged: fit.report.converged,
         iterations: fit.report.iterations,
         warnings: Vec::new(),
+        refusal_reasons: Vec::new(),
         calibration_rows: n_cal,
         pool_rows: m,
         fit,
@@ -413,6 +417,7 @@ fn shift_summary(
         adequacy,
     };
     summary.warnings = warnings::collect(&summary);
+    summary.refusal_reasons = super::unreliable_weights(&summary);
     Ok(summary)
 }
 

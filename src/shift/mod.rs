@@ -29,6 +29,7 @@ pub mod features;
 pub mod logistic;
 pub mod options;
 pub mod psis;
+pub mod reliability;
 pub mod warnings;
 pub mod weighting;
 pub mod weights;
@@ -43,6 +44,7 @@ pub use features::{Design, Expansion};
 pub use logistic::{fit_logistic, FitReport, LogisticModel, LogisticParams, LogisticValidParams};
 pub use options::{FitRows, ShiftOptions, ShiftParams};
 pub use psis::pareto_khat;
+pub use reliability::{unreliable_weights, Unreliable};
 pub use warnings::{Severity, ShiftWarning};
 pub use weights::CapReport;
 

@@ -326,6 +326,7 @@ pub fn select_in_scenario(
         score: ScoreKind::Clipped,
         seed,
         level_curve: Some(false),
+        empty_when_unreachable: false,
     };
     run_selection(
         &options,

@@ -105,7 +105,7 @@ fn main() {
     println!("| group | replicates | conditional FDR | weighted BH FDR |");
     println!("|---|---|---|---|");
     type Pred = Box<dyn Fn(&ReplicateDiagnostics) -> bool>;
-    let khat_over = |r: &ReplicateDiagnostics| !(r.khat <= r.khat_threshold);
+    let khat_over = |r: &ReplicateDiagnostics| r.khat.is_nan() || r.khat > r.khat_threshold;
     let groups: Vec<(String, Pred)> = vec![
         ("all".into(), Box::new(|_| true)),
         (

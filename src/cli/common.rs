@@ -21,7 +21,9 @@ use crate::selection::pruning::Pruning;
 use crate::shift::weighting::{
     obtain_weights, Calibration, WeightSource, Weighting, WeightingError,
 };
-use crate::shift::{unreliable_weights, Expansion, FitRows, ShiftError, ShiftParams, Unreliable};
+use crate::shift::{
+    unreliable_weights, Expansion, FeatureTransform, FitRows, ShiftError, ShiftParams, Unreliable,
+};
 
 use super::Failure;
 
@@ -560,6 +562,23 @@ pub struct FitArgs {
     /// Label permutations for the test of "no shift" [default: 1000].
     #[arg(long, value_name = "B")]
     pub permutations: Option<usize>,
+    /// How features are made robust before the fit and the balance diagnostics: `clip`
+    /// sets values beyond wide outer fences (1%/99% order statistics +- 2 spans) to the
+    /// fences and names them; `rank` uses normal scores of the ranks (for heavy tails,
+    /// and with --expand squares); `none` the raw values [default: clip].
+    #[arg(long, value_enum, value_name = "HOW")]
+    pub feature_transform: Option<FeatureTransformArg>,
+}
+
+/// `--feature-transform`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum FeatureTransformArg {
+    /// Winsorize values beyond wide outer fences and name them.
+    Clip,
+    /// Normal-scores rank (quantile) transform.
+    Rank,
+    /// Raw values.
+    None,
 }
 
 impl FitArgs {
@@ -575,6 +594,7 @@ impl FitArgs {
             (self.pool_sample.is_some(), "--pool-sample"),
             (self.folds.is_some(), "--folds"),
             (self.permutations.is_some(), "--permutations"),
+            (self.feature_transform.is_some(), "--feature-transform"),
         ]
         .into_iter()
         .find_map(|(given, flag)| given.then_some(flag))
@@ -610,6 +630,11 @@ impl FitArgs {
                 ExpandArg::Both => Expansion::SquaresAndPairwise,
             })
             .fit_rows(fit_rows)
+            .feature_transform(match self.feature_transform {
+                None | Some(FeatureTransformArg::Clip) => FeatureTransform::Clip,
+                Some(FeatureTransformArg::Rank) => FeatureTransform::Rank,
+                Some(FeatureTransformArg::None) => FeatureTransform::None,
+            })
             .cap_quantile(self.cap_quantile)
             .max_pool_sample(self.pool_sample)
             .cv_folds(self.folds.unwrap_or(DEFAULT_FOLDS))

@@ -805,6 +805,57 @@ fn classifier_lines(s: &ShiftSummary, lines: &mut DiagnosticLines) {
             fit.dropped_constant_columns.join(", "),
         );
     }
+    let clipped: Vec<String> = fit
+        .clipped_features
+        .iter()
+        .map(|c| {
+            format!(
+                "{} ({} value{}, most extreme {} in {} row {})",
+                c.feature,
+                c.clipped_labeled + c.clipped_pool,
+                if c.clipped_labeled + c.clipped_pool == 1 {
+                    ""
+                } else {
+                    "s"
+                },
+                shown(c.most_extreme.value),
+                c.most_extreme.set,
+                c.most_extreme.row + 1
+            )
+        })
+        .collect();
+    line(
+        "feature transform",
+        match fit.feature_transform {
+            crate::shift::FeatureTransform::Clip if clipped.is_empty() => {
+                "clip at outer fences (1%/99% order statistics +- 2 spans); no value beyond them"
+                    .to_string()
+            }
+            crate::shift::FeatureTransform::Clip => format!(
+                "clip at outer fences (1%/99% order statistics +- 2 spans); clipped: {}",
+                clipped.join("; ")
+            ),
+            crate::shift::FeatureTransform::Rank => {
+                "rank (normal scores of the ranks on the fitting rows)".to_string()
+            }
+            crate::shift::FeatureTransform::None => "none (raw values)".to_string(),
+        },
+    );
+    line(
+        "usable for selection",
+        if s.refusal_reasons.is_empty() {
+            "yes: no reliability check failed (k-hat, ESS >= 2%, AUC <= 0.99)".to_string()
+        } else {
+            format!(
+                "NO: `select --fit-weights` would refuse these weights (exit code 3): {}",
+                s.refusal_reasons
+                    .iter()
+                    .map(|r| r.diagnostic.as_str())
+                    .collect::<Vec<_>>()
+                    .join(", ")
+            )
+        },
+    );
 }
 
 /// The `shift` command's stdout summary: worst problems first (the warnings), then every

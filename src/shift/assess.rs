@@ -12,6 +12,7 @@ use super::diagnostics::{self, kish_effective_sample_size};
 use super::features::{Design, Expansion};
 use super::logistic::{fit_logistic, FitReport, LogisticModel};
 use super::psis::{khat_threshold, pareto_khat};
+use super::robust::{self, ClipReport, FeatureTransform};
 use super::warnings::{self, ShiftWarning};
 use super::weights::{self, CapReport, FitRowChoice};
 use super::{FeatureBalance, FeatureView, FitRows, ShiftError, ShiftOptions, ShiftParams};
@@ -57,6 +58,14 @@ pub struct FitSummary {
     pub tolerance: f64,
     /// Rows whose log-weight was clamped to +-[`weights::LOG_WEIGHT_LIMIT`] to stay finite.
     pub clamped_weights: usize,
+    /// How the features were made robust before the fit and the diagnostics.
+    pub feature_transform: FeatureTransform,
+    /// Features with values beyond the clipping fences, which were set to the fences
+    /// (clip transform): the fences, counts and the most extreme cell.
+    pub clipped_features: Vec<ClipReport>,
+    /// Features whose excess kurtosis (after the transform, on the fitting rows) exceeds
+    /// [`robust::HEAVY_TAIL_KURTOSIS`]: (name, excess kurtosis).
+    pub heavy_tailed_features: Vec<(String, f64)>,
 }
 
 /// Every number [`assess_shift`] reports; serialized as shift.json's body.
@@ -175,6 +184,30 @@ pub fn assess_shift(
     let (n, m) = check_sizes(labeled, pool, options)?;
     let mut rng = ChaCha8Rng::seed_from_u64(options.seed);
     let rows = weights::choose_fit_rows(n, m, options, &mut rng);
+    // Robust features first: the fit and every diagnostic see the transformed values.
+    let prepared = robust::prepare(
+        labeled,
+        pool,
+        &rows.labeled,
+        &rows.pool,
+        options.feature_transform,
+    );
+    let labeled = FeatureView {
+        values: &prepared.labeled,
+        ..labeled
+    };
+    let pool = FeatureView {
+        values: &prepared.pool,
+        ..pool
+    };
+    let kurtosis = robust::heavy_tails(labeled, pool, &rows.labeled, &rows.pool);
+    let heavy_tailed_features: Vec<(String, f64)> = labeled
+        .names()
+        .iter()
+        .zip(&kurtosis)
+        .filter(|(_, k)| **k > robust::HEAVY_TAIL_KURTOSIS)
+        .map(|(name, k)| (name.clone(), *k))
+        .collect();
     let design = Design::build(labeled, pool, &rows.labeled, &rows.pool, options.expansion)?;
     let (labels, model) = fit_domain_classifier(&design, &rows, options)?;
     let weighted = weigh_rows(labeled, pool, &design, &model, &rows, options);
@@ -188,7 +221,9 @@ pub fn assess_shift(
         options,
         &mut rng,
     )?;
-    let fit = fit_summary(&model, &design, &rows, options, weighted.fitted.clamped);
+    let mut fit = fit_summary(&model, &design, &rows, options, weighted.fitted.clamped);
+    fit.clipped_features = prepared.clipped.clone();
+    fit.heavy_tailed_features = heavy_tailed_features;
     let summary = shift_summary(labeled, pool, &design, &weighted, fit, auc_details, options)?;
 
     let Weighted {
@@ -347,6 +382,9 @@ fn fit_summary(
         terms: design.term_names(),
         coefficients: model.coefficients().to_vec(),
         clamped_weights,
+        feature_transform: options.feature_transform,
+        clipped_features: Vec::new(),
+        heavy_tailed_features: Vec::new(),
     }
 }
 
@@ -599,6 +637,92 @@ mod tests {
             "{:#?}",
             squares.summary.warnings
         );
+    }
+
+    #[test]
+    fn one_absurd_cell_neither_hides_the_shift_nor_passes_silently() {
+        // A mean shift of -0.5 in x1 (true log ratio -0.5 x1 + const). One pool cell of
+        // x1 = 1e12 (a unit slip): with the default clip transform the weights stay what the
+        // clean data give (labeled log-weights within 0.05 of the clean fit's at the median
+        // and 0.25 at worst: our tolerance, a few percent of the weights' own spread) and a
+        // warning names the feature and the row; without it the fit bends to the cell and the
+        // shift disappears (AUC near 0.5).
+        let nm = names(3);
+        let lab = normal_table(1000, &[0.0; 3], &[1.0; 3], 101);
+        let clean = normal_table(3000, &[0.0, -0.5, 0.0], &[1.0; 3], 102);
+        let mut bad = clean.clone();
+        bad[3000 + 17] = 1e12;
+        let fit = |pool: &[f64], transform| {
+            run(
+                &lab,
+                1000,
+                pool,
+                3000,
+                &nm,
+                ShiftParams::new()
+                    .permutations(19)
+                    .feature_transform(transform),
+            )
+        };
+        let reference = fit(&clean, FeatureTransform::Clip);
+        let robust = fit(&bad, FeatureTransform::Clip);
+        let raw = fit(&bad, FeatureTransform::None);
+        let mut diffs: Vec<f64> = reference
+            .labeled
+            .weight
+            .iter()
+            .zip(&robust.labeled.weight)
+            .map(|(a, b)| (a.ln() - b.ln()).abs())
+            .collect();
+        diffs.sort_by(f64::total_cmp);
+        assert!(diffs[500] < 0.05, "median |log ratio| {}", diffs[500]);
+        assert!(diffs[999] < 0.25, "largest |log ratio| {}", diffs[999]);
+        assert!(reference.summary.fit.clipped_features.is_empty());
+        let c = &robust.summary.fit.clipped_features;
+        assert_eq!(c.len(), 1);
+        assert_eq!((c[0].feature.as_str(), c[0].most_extreme.row), ("x1", 17));
+        let w = robust
+            .summary
+            .warnings
+            .iter()
+            .find(|w| w.diagnostic == "far_out_values")
+            .expect("far-out warning");
+        assert!(
+            w.message.contains("`x1`") && w.message.contains("pool row 18"),
+            "{}",
+            w.message
+        );
+        assert!(robust.summary.auc > 0.6, "{}", robust.summary.auc);
+        assert!(raw.summary.auc < 0.55, "{}", raw.summary.auc);
+    }
+
+    #[test]
+    fn squares_of_heavy_tails_are_flagged_unless_ranked() {
+        let nm = names(2);
+        let mut lab = normal_table(2000, &[0.0, 0.0], &[1.0, 1.0], 111);
+        let mut pool = normal_table(2000, &[0.2, 0.0], &[1.0, 1.0], 112);
+        for x in lab[2000..].iter_mut().chain(pool[2000..].iter_mut()) {
+            *x = (1.5 * *x).exp(); // lognormal: heavy right tail
+        }
+        let squares = |transform| {
+            run(
+                &lab,
+                2000,
+                &pool,
+                2000,
+                &nm,
+                ShiftParams::new()
+                    .permutations(9)
+                    .expansion(Expansion::Squares)
+                    .feature_transform(transform),
+            )
+        };
+        let clipped = squares(FeatureTransform::Clip);
+        assert!(diagnostics_named(&clipped).contains(&"squares_heavy_tail"));
+        assert_eq!(clipped.summary.fit.heavy_tailed_features[0].0, "x1");
+        let ranked = squares(FeatureTransform::Rank);
+        assert!(!diagnostics_named(&ranked).contains(&"squares_heavy_tail"));
+        assert!(ranked.summary.fit.heavy_tailed_features.is_empty());
     }
 
     #[test]

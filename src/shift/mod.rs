@@ -30,6 +30,7 @@ pub mod logistic;
 pub mod options;
 pub mod psis;
 pub mod reliability;
+pub mod robust;
 pub mod warnings;
 pub mod weighting;
 pub mod weights;
@@ -45,6 +46,7 @@ pub use logistic::{fit_logistic, FitReport, LogisticModel, LogisticParams, Logis
 pub use options::{FitRows, ShiftOptions, ShiftParams};
 pub use psis::pareto_khat;
 pub use reliability::{unreliable_weights, Unreliable};
+pub use robust::{ClipReport, FeatureTransform};
 pub use warnings::{Severity, ShiftWarning};
 pub use weights::CapReport;
 

@@ -32,6 +32,7 @@ pub struct ShiftParams(ShiftOptions);
 pub struct ShiftOptions {
     pub(super) classifier: LogisticValidParams,
     pub(super) expansion: Expansion,
+    pub(super) feature_transform: super::FeatureTransform,
     pub(super) fit_rows: FitRows,
     pub(super) cap_quantile: Option<f64>,
     pub(super) max_pool_sample: Option<usize>,
@@ -48,6 +49,7 @@ impl Default for ShiftParams {
         Self(ShiftOptions {
             classifier: LogisticParams::default().check_unwrap(),
             expansion: Expansion::None,
+            feature_transform: super::FeatureTransform::Clip,
             fit_rows: FitRows::All,
             cap_quantile: None,
             max_pool_sample: None,
@@ -89,6 +91,12 @@ impl ShiftParams {
     /// Extra classifier features. Defaults to [`Expansion::None`].
     pub fn expansion(mut self, expansion: Expansion) -> Self {
         self.0.expansion = expansion;
+        self
+    }
+    /// How features are made robust before the fit and the balance diagnostics
+    /// ([`super::robust`]). Defaults to [`super::FeatureTransform::Clip`].
+    pub fn feature_transform(mut self, transform: super::FeatureTransform) -> Self {
+        self.0.feature_transform = transform;
         self
     }
     /// Rows the classifier is fit on. Defaults to [`FitRows::All`].
@@ -205,6 +213,10 @@ impl ShiftOptions {
     /// Feature expansion.
     pub fn expansion(&self) -> Expansion {
         self.expansion
+    }
+    /// Feature transform.
+    pub fn feature_transform(&self) -> super::FeatureTransform {
+        self.feature_transform
     }
     /// Fitting rows.
     pub fn fit_rows(&self) -> FitRows {

@@ -74,8 +74,9 @@ pub struct ShiftWarning {
 /// Order of warnings, worst first: problems that make the weights wrong (solver,
 /// clamping, a weight model that misses part of the shift) before those that make them
 /// unreliable (k-hat, ESS, AUC near 1), before lost power (unreachable units), before
-/// cautions (remaining mean imbalance, pool outside the overlap).
-pub const ORDER: [&str; 9] = [
+/// cautions (absurd cells that were clipped, squares of heavy-tailed features, remaining
+/// mean imbalance, pool outside the overlap).
+pub const ORDER: [&str; 11] = [
     "converged",
     "clamped_weights",
     "adequacy_smd",
@@ -83,6 +84,8 @@ pub const ORDER: [&str; 9] = [
     "ess_fraction",
     "auc",
     "unreachable_share",
+    "far_out_values",
+    "squares_heavy_tail",
     "smd_weighted",
     "pool_share_above_0_9",
 ];
@@ -210,6 +213,72 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             ),
         ));
     }
+    for c in &s.fit.clipped_features {
+        let e = &c.most_extreme;
+        let fence = if e.value > c.upper_fence {
+            c.upper_fence
+        } else {
+            c.lower_fence
+        };
+        let count = c.clipped_labeled + c.clipped_pool;
+        out.push(warn(
+            "far_out_values",
+            e.value,
+            fence,
+            Severity::Caution,
+            format!(
+                "feature `{}`: {} row {}{} has the value {}, far outside the range of the \
+                 other values (1% to 99%: {} to {}); {} value{} of `{}` beyond the fences {} \
+                 and {} ({} labeled, {} pool) {} set to the fences before the fit and the \
+                 balance diagnostics, so they neither drive nor hide the shift. Check the \
+                 cell: a unit slip or a missing-value code?",
+                c.feature,
+                e.set,
+                e.row + 1,
+                e.id.as_ref()
+                    .map(|id| format!(" (id {id})"))
+                    .unwrap_or_default(),
+                short_number(e.value),
+                short_number(c.low_quantile),
+                short_number(c.high_quantile),
+                count,
+                if count == 1 { "" } else { "s" },
+                c.feature,
+                short_number(c.lower_fence),
+                short_number(c.upper_fence),
+                c.clipped_labeled,
+                c.clipped_pool,
+                if count == 1 { "was" } else { "were" }
+            ),
+        ));
+    }
+    if matches!(
+        s.fit.expansion,
+        super::Expansion::Squares | super::Expansion::SquaresAndPairwise
+    ) && s.fit.feature_transform != super::FeatureTransform::Rank
+    {
+        if let Some((name, k)) = s
+            .fit
+            .heavy_tailed_features
+            .iter()
+            .max_by(|a, b| a.1.total_cmp(&b.1))
+        {
+            out.push(warn(
+                "squares_heavy_tail",
+                *k,
+                super::robust::HEAVY_TAIL_KURTOSIS,
+                Severity::Caution,
+                format!(
+                    "`{name}` is heavy-tailed (excess kurtosis {k:.1}, threshold {}; {} \
+                     feature(s) in all) and --expand squares squares it: a few rows get \
+                     extreme leverage and extreme weights. Prefer --feature-transform rank \
+                     with squares, or check the weights with `weighbridge check`.",
+                    super::robust::HEAVY_TAIL_KURTOSIS,
+                    s.fit.heavy_tailed_features.len()
+                ),
+            ));
+        }
+    }
     let worst_balance = s
         .balance
         .iter()
@@ -257,6 +326,15 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
     };
     out.sort_by_key(rank);
     out
+}
+
+/// A number for a message: 4 significant digits, scientific when very large or small.
+fn short_number(v: f64) -> String {
+    if v != 0.0 && (v.abs() >= 1e6 || v.abs() < 1e-3) {
+        format!("{v:.3e}")
+    } else {
+        format!("{}", (v * 1e4).round() / 1e4)
+    }
 }
 
 #[cfg(test)]

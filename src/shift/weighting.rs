@@ -163,13 +163,33 @@ pub fn obtain_weights<'a>(
                 });
             }
             let options = params.clone().check()?;
-            let assessment = assess_shift(feature_view(labeled)?, feature_view(pool)?, &options)?;
+            let mut assessment =
+                assess_shift(feature_view(labeled)?, feature_view(pool)?, &options)?;
+            name_far_out_cells(&mut assessment, labeled, pool);
             Ok(Weighting::Fitted(Box::new(FittedWeights {
                 options,
                 assessment,
             })))
         }
     }
+}
+
+/// Give each clipped cell the id of its row, and rebuild the warnings so that they name it.
+fn name_far_out_cells(assessment: &mut ShiftAssessment, labeled: &UnitTable, pool: &UnitTable) {
+    let summary = &mut assessment.summary;
+    if summary.fit.clipped_features.is_empty() {
+        return;
+    }
+    for c in &mut summary.fit.clipped_features {
+        let e = &mut c.most_extreme;
+        let ids = if e.set == "pool" {
+            &pool.ids
+        } else {
+            &labeled.ids
+        };
+        e.id = ids.get(e.row).cloned();
+    }
+    summary.warnings = super::warnings::collect(summary);
 }
 
 /// The labeled rows that calibrate, with their weights: what the selection's labeled side

@@ -56,10 +56,12 @@ use super::ShiftError;
 
 /// Rows per chunk for parallel row loops and ordered partial sums.
 const CHUNK: usize = 4096;
+/// Rows per block of [`BoostedFit::predict_log_odds`].
+const PREDICT_BLOCK: usize = 128;
 /// Smallest hessian sum of a child (scikit-learn's `min_hessian_to_split` default).
 const MIN_HESSIAN: f64 = 1e-3;
-/// Marks a leaf in [`Node::feature`].
-const LEAF: u32 = u32::MAX;
+/// Rows walked in lockstep through one tree by [`BoostedFit::predict_log_odds`].
+const LANES: usize = 8;
 /// Stream of the fold assignment; fold k's validation split uses stream `VALIDATION_STREAM + k`.
 const FOLD_STREAM: u64 = 1;
 const VALIDATION_STREAM: u64 = 100;
@@ -202,23 +204,46 @@ pub struct BoostedReport {
     pub out_of_fold_clipped_high: usize,
 }
 
-/// One tree node. Children of a split are stored next to each other (`left`, `left + 1`).
+/// One tree node; indices are into the fold model's node vector. A leaf is its own left and
+/// right child (feature 0), so a walk may take more steps than the leaf's depth and stay put.
 #[derive(Debug, Clone, Copy)]
 struct Node {
-    /// Split feature, or [`LEAF`].
+    /// Split feature (0 for a leaf).
     feature: u32,
-    /// Index of the left child (the right one is `left + 1`); unused for a leaf.
+    /// Child for x <= cut and for not (x <= cut) (a NaN goes right).
     left: u32,
-    /// Raw cut point (go left when x <= value) for a split; the leaf value for a leaf.
+    right: u32,
+    /// Raw cut point for a split; the leaf value for a leaf.
     value: f64,
 }
 
-/// One fold's model: initial score and trees (nodes of all trees in one vector).
+impl Node {
+    fn leaf(index: usize) -> Self {
+        Self {
+            feature: 0,
+            left: index as u32,
+            right: index as u32,
+            value: 0.0,
+        }
+    }
+
+    #[inline]
+    fn child(&self, x: f64) -> usize {
+        // Branch-free choice: neighbouring rows' walks overlap instead of waiting on
+        // mispredicted branches.
+        let left = x <= self.value; // false for a NaN: it goes right
+        [self.right, self.left][usize::from(left)] as usize
+    }
+}
+
+/// One fold's model: initial score and trees (nodes of all trees in one vector), each tree's
+/// root and depth (most splits from root to a leaf).
 #[derive(Debug, Clone)]
 struct FoldModel {
     init: f64,
     nodes: Vec<Node>,
     roots: Vec<u32>,
+    depths: Vec<u32>,
 }
 
 impl FoldModel {
@@ -238,14 +263,10 @@ fn tree_value(nodes: &[Node], root: u32, value: &impl Fn(usize) -> f64) -> f64 {
     let mut i = root as usize;
     loop {
         let node = nodes[i];
-        if node.feature == LEAF {
+        if node.left as usize == i {
             return node.value;
         }
-        i = if value(node.feature as usize) <= node.value {
-            node.left as usize
-        } else {
-            node.left as usize + 1
-        };
+        i = node.child(value(node.feature as usize));
     }
 }
 
@@ -286,14 +307,30 @@ impl BoostedFit {
         let mut out = vec![0.0; n_rows];
         let folds = self.models.len() as f64;
         let [lo, hi] = self.bounds;
-        out.par_chunks_mut(256)
+        // Blocks of rows; inside a block, tree by tree over the rows, so one tree's nodes
+        // stay in cache and the block's walks are independent of each other.
+        out.par_chunks_mut(PREDICT_BLOCK)
             .enumerate()
             .for_each(|(chunk, block)| {
-                let start = chunk * 256;
+                let start = chunk * PREDICT_BLOCK;
                 for model in &self.models {
-                    for (i, o) in block.iter_mut().enumerate() {
-                        let r = start + i;
-                        *o += model.raw(|f| x[f * n_rows + r]);
+                    for o in block.iter_mut() {
+                        *o += model.init;
+                    }
+                    for (&root, &depth) in model.roots.iter().zip(&model.depths) {
+                        for (lane, outs) in block.chunks_mut(LANES).enumerate() {
+                            let first = start + lane * LANES;
+                            let mut at = [root as usize; LANES];
+                            for _ in 0..depth {
+                                for (k, i) in at.iter_mut().enumerate().take(outs.len()) {
+                                    let node = &model.nodes[*i];
+                                    *i = node.child(x[node.feature as usize * n_rows + first + k]);
+                                }
+                            }
+                            for (o, &i) in outs.iter_mut().zip(&at) {
+                                *o += model.nodes[i].value;
+                            }
+                        }
                     }
                 }
                 for o in block.iter_mut() {
@@ -459,7 +496,8 @@ pub fn cross_fit(
                 .model
                 .nodes
                 .iter()
-                .filter(|node| node.feature == LEAF)
+                .enumerate()
+                .filter(|(i, node)| node.left as usize == *i)
                 .count(),
         );
         report.initial_log_odds_per_fold.push(fitted.model.init);
@@ -575,6 +613,8 @@ struct Leaf {
     total: Cell,
     hist: Option<Vec<Cell>>,
     split: Option<Split>,
+    /// Splits from the root.
+    depth: u32,
 }
 
 /// Binned training rows and the grower's settings.
@@ -660,8 +700,8 @@ impl Grower<'_> {
     }
 
     /// Grow one tree on the gradients `g`, `h` of the training rows; appends its nodes to
-    /// `nodes` and adds each row's leaf value to `score`.
-    fn grow(&self, g: &[f64], h: &[f64], nodes: &mut Vec<Node>, score: &mut [f64]) {
+    /// `nodes` (root first), adds each row's leaf value to `score` and returns the depth.
+    fn grow(&self, g: &[f64], h: &[f64], nodes: &mut Vec<Node>, score: &mut [f64]) -> u32 {
         let params = self.params;
         let base = nodes.len();
         let mut order: Vec<u32> = (0..self.m as u32).collect();
@@ -673,11 +713,7 @@ impl Grower<'_> {
             h: ordered_sum(h),
             c: self.m as u32,
         };
-        nodes.push(Node {
-            feature: LEAF,
-            left: 0,
-            value: 0.0,
-        });
+        nodes.push(Node::leaf(base));
         let mut leaves = vec![self.open_leaf(base, 0, self.m, total, None, &order, g, h)];
         let mut finished: Vec<Leaf> = Vec::new();
         while leaves.len() + finished.len() < params.max_leaf_nodes {
@@ -710,16 +746,12 @@ impl Grower<'_> {
             let left_node = nodes.len();
             nodes[leaf.node] = Node {
                 feature: split.feature as u32,
-                left: (left_node - base) as u32,
+                left: left_node as u32,
+                right: left_node as u32 + 1,
                 value: self.cuts[split.feature][split.bin],
             };
-            for _ in 0..2 {
-                nodes.push(Node {
-                    feature: LEAF,
-                    left: 0,
-                    value: 0.0,
-                });
-            }
+            nodes.push(Node::leaf(left_node));
+            nodes.push(Node::leaf(left_node + 1));
             let left_total = split.left;
             let right_total = Cell {
                 g: leaf.total.g - left_total.g,
@@ -766,7 +798,8 @@ impl Grower<'_> {
                 (small_node, small, small_total, small_hist),
                 (large_node, large, large_total, large_hist),
             ] {
-                let child = self.open_leaf(node, range.0, range.1, t, hist, &order, g, h);
+                let mut child = self.open_leaf(node, range.0, range.1, t, hist, &order, g, h);
+                child.depth = leaf.depth + 1;
                 if child.split.is_some() {
                     leaves.push(child);
                 } else {
@@ -774,6 +807,7 @@ impl Grower<'_> {
                 }
             }
         }
+        let mut depth = 0;
         for leaf in leaves.iter().chain(&finished) {
             let value = -params.learning_rate * leaf.total.g
                 / (leaf.total.h + params.l2_regularization + 1e-15);
@@ -781,7 +815,9 @@ impl Grower<'_> {
             for &r in &order[leaf.start..leaf.end] {
                 score[r as usize] += value;
             }
+            depth = depth.max(leaf.depth);
         }
+        depth
     }
 
     /// A leaf with its best split when it may be split (`hist` given or built here).
@@ -804,6 +840,7 @@ impl Grower<'_> {
             total,
             hist: None,
             split: None,
+            depth: 0,
         };
         if (total.c as usize) < 2 * self.params.min_samples_leaf {
             return leaf;
@@ -890,6 +927,7 @@ fn fit_one(data: &Data, train: &[usize], valid: &[usize], params: &BoostedParams
         init,
         nodes: Vec::new(),
         roots: Vec::new(),
+        depths: Vec::new(),
     };
     let mut score = vec![init; m];
     let mut g = vec![0.0; m];
@@ -932,14 +970,9 @@ fn fit_one(data: &Data, train: &[usize], valid: &[usize], params: &BoostedParams
                 }
             });
         let root = model.nodes.len();
-        grower.grow(&g, &h, &mut model.nodes, &mut score);
-        // Child indices were stored relative to the tree's root; make them absolute.
-        for node in &mut model.nodes[root..] {
-            if node.feature != LEAF {
-                node.left += root as u32;
-            }
-        }
+        let depth = grower.grow(&g, &h, &mut model.nodes, &mut score);
         model.roots.push(root as u32);
+        model.depths.push(depth);
         if early {
             let nodes = &model.nodes;
             val_score
@@ -964,5 +997,358 @@ fn fit_one(data: &Data, train: &[usize], valid: &[usize], params: &BoostedParams
         model,
         losses,
         stopped_early,
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::shift::test_support::normal_table;
+    use rand::Rng;
+
+    /// Labels: the first `labeled` rows false, the rest true.
+    fn labels(labeled: usize, pool: usize) -> Vec<bool> {
+        (0..labeled + pool).map(|r| r >= labeled).collect()
+    }
+
+    /// Two tables stacked row-wise (column-major both).
+    fn stack(a: &[f64], na: usize, b: &[f64], nb: usize, p: usize) -> Vec<f64> {
+        let mut out = Vec::with_capacity((na + nb) * p);
+        for f in 0..p {
+            out.extend_from_slice(&a[f * na..(f + 1) * na]);
+            out.extend_from_slice(&b[f * nb..(f + 1) * nb]);
+        }
+        out
+    }
+
+    fn variance_shift(n: usize, seed: u64) -> (Vec<f64>, Vec<bool>) {
+        let a = normal_table(n, &[0.0; 3], &[1.0; 3], seed);
+        let b = normal_table(n, &[0.0; 3], &[0.6, 1.0, 1.0], seed + 1);
+        (stack(&a, n, &b, n, 3), labels(n, n))
+    }
+
+    #[test]
+    fn same_seed_same_output_whatever_the_thread_count() {
+        let (x, y) = variance_shift(800, 3);
+        let w = vec![1.0; y.len()];
+        let params = BoostedParams::default();
+        let run = |threads: usize| {
+            let pool = rayon::ThreadPoolBuilder::new()
+                .num_threads(threads)
+                .build()
+                .expect("pool");
+            pool.install(|| cross_fit(&x, y.len(), &y, &w, &params).expect("fit"))
+        };
+        let (one, two) = (run(1), run(2));
+        assert_eq!(one.out_of_fold_log_odds(), two.out_of_fold_log_odds());
+        assert_eq!(one.report(), two.report());
+        let again = run(2);
+        assert_eq!(two.out_of_fold_log_odds(), again.out_of_fold_log_odds());
+        let new = normal_table(300, &[0.0; 3], &[1.0; 3], 99);
+        assert_eq!(
+            one.predict_log_odds(&new, 300),
+            two.predict_log_odds(&new, 300)
+        );
+        // A different seed gives other folds, hence other out-of-fold values.
+        let other =
+            cross_fit(&x, y.len(), &y, &w, &BoostedParams { seed: 1, ..params }).expect("fit");
+        assert_ne!(one.out_of_fold_log_odds(), other.out_of_fold_log_odds());
+    }
+
+    #[test]
+    fn early_stopping_stops_on_pure_noise() {
+        // Both classes from the same distribution: beyond chance the validation loss only
+        // gets worse after the initial score, so boosting stops `patience` trees after the
+        // last (chance) improvement of the 300-row validation loss (scikit-learn's rule, which
+        // keeps those trees). Bound: 3 x patience = 30 trees, against max_trees = 200.
+        let x = normal_table(3000, &[0.0; 4], &[1.0; 4], 11);
+        let y = labels(1500, 1500);
+        let w = vec![1.0; y.len()];
+        let params = BoostedParams {
+            max_trees: 200,
+            ..BoostedParams::default()
+        };
+        let fit = cross_fit(&x, y.len(), &y, &w, &params).expect("fit");
+        let report = fit.report();
+        for (&trees, &early) in report.trees_per_fold.iter().zip(&report.stopped_early) {
+            assert!(early, "{report:?}");
+            assert!(trees <= 3 * params.patience, "{:?}", report.trees_per_fold);
+        }
+        // Without a signal the out-of-fold log-odds stay near 0 (equal classes).
+        let oof = fit.out_of_fold_log_odds();
+        let mean = oof.iter().sum::<f64>() / oof.len() as f64;
+        assert!(mean.abs() < 0.05, "{mean}");
+    }
+
+    #[test]
+    fn recovers_a_threshold_shift() {
+        // Labeled x0 ~ U(0, 1); pool x0 > 0.5 with probability 0.8. True log ratio
+        // log(0.8 / 0.5) above 0.5 and log(0.2 / 0.5) below: a step of log 4 = 1.386.
+        let n = 2000;
+        let mut rng = ChaCha8Rng::seed_from_u64(5);
+        let mut x = vec![0.0; 2 * n * 2];
+        for r in 0..2 * n {
+            let u: f64 = rng.gen();
+            x[r] = if r < n {
+                u
+            } else if rng.gen::<f64>() < 0.8 {
+                0.5 + 0.5 * u
+            } else {
+                0.5 * u
+            };
+            x[2 * n + r] = rng.gen(); // noise feature
+        }
+        let y = labels(n, n);
+        let w = vec![1.0; 2 * n];
+        let fit = cross_fit(&x, 2 * n, &y, &w, &BoostedParams::default()).expect("fit");
+        let oof = fit.out_of_fold_log_odds();
+        let mean = |above: bool| {
+            let v: Vec<f64> = (0..2 * n)
+                .filter(|&r| (x[r] > 0.5) == above)
+                .map(|r| oof[r])
+                .collect();
+            v.iter().sum::<f64>() / v.len() as f64
+        };
+        let step = mean(true) - mean(false);
+        // Tolerance 0.3 (about 20%): boosting with shrinkage and early stopping shrinks the
+        // step; each side's mean has a standard error near 0.05 (2000 rows).
+        assert!((step - 4f64.ln()).abs() < 0.3, "step {step}");
+        // New rows far from the cut get the right side.
+        let new = vec![0.1, 0.9, 0.5, 0.5];
+        let pred = fit.predict_log_odds(&new, 2);
+        assert!(pred[1] - pred[0] > 1.0, "{pred:?}");
+    }
+
+    #[test]
+    fn clipping_is_counted() {
+        // Separable classes: labeled x0 in {0, ..., 49}, pool x0 in {100, ..., 149}. With at
+        // most 255 distinct values every value is its own bin, so the gap is a cut point (with
+        // quantile bins a bin may straddle the gap and mix a few rows of both classes). The
+        // log-odds run far past logit(0.05) = -2.94 on both sides: every value is clipped.
+        let n = 500;
+        let mut rng = ChaCha8Rng::seed_from_u64(8);
+        let x: Vec<f64> = (0..2 * n)
+            .map(|r| f64::from(rng.gen_range(0..50u32) + if r < n { 0 } else { 100 }))
+            .collect();
+        let y = labels(n, n);
+        let w = vec![1.0; 2 * n];
+        let params = BoostedParams {
+            probability_clip: 0.05,
+            ..BoostedParams::default()
+        };
+        let fit = cross_fit(&x, 2 * n, &y, &w, &params).expect("fit");
+        let report = fit.report();
+        let bound = (0.95f64 / 0.05).ln();
+        assert!((report.log_odds_bounds[1] - bound).abs() < 1e-12);
+        assert_eq!(report.out_of_fold_clipped_low, n, "{report:?}");
+        assert_eq!(report.out_of_fold_clipped_high, n, "{report:?}");
+        let oof = fit.out_of_fold_log_odds();
+        assert!(oof[..n].iter().all(|&v| v == -bound));
+        assert!(oof[n..].iter().all(|&v| v == bound));
+        assert_eq!(fit.predict_log_odds(&[-5.0, 200.0], 2), vec![-bound, bound]);
+        // With the default clip 1e-3 (|logit| 6.9) fewer rows hit the bounds, and the count
+        // is exactly the number of out-of-fold values at a bound.
+        let fit = cross_fit(&x, 2 * n, &y, &w, &BoostedParams::default()).expect("fit");
+        let [lo, hi] = fit.report().log_odds_bounds;
+        let oof = fit.out_of_fold_log_odds();
+        let at_lo = oof.iter().filter(|&&v| v == lo).count();
+        let at_hi = oof.iter().filter(|&&v| v == hi).count();
+        assert_eq!(fit.report().out_of_fold_clipped_low, at_lo);
+        assert_eq!(fit.report().out_of_fold_clipped_high, at_hi);
+    }
+
+    #[test]
+    fn doubling_the_pool_weight_adds_log_2() {
+        // With class weights s_0 (labeled) and s_1 (pool), the weighted log loss is minimized
+        // by F(x) = log(s_1 p(x | pool) n_1 / (s_0 p(x | labeled) n_0)): doubling s_1 adds
+        // exactly log 2 to the population minimizer and to the initial score
+        // log(sum s y / sum s (1 - y)) (to rounding, 1e-12). The trees approximate the
+        // minimizer from data, so the out-of-fold log-odds move by log 2 on average up to
+        // the boosted fit's estimation noise; with 1500 + 1500 rows a mean shift within 0.1
+        // of log 2 = 0.693 (about 15%) is required.
+        let (x, y) = variance_shift(1500, 21);
+        let n = y.len();
+        let w1 = vec![1.0; n];
+        let w2: Vec<f64> = y.iter().map(|&p| if p { 2.0 } else { 1.0 }).collect();
+        let params = BoostedParams::default();
+        let a = cross_fit(&x, n, &y, &w1, &params).expect("fit");
+        let b = cross_fit(&x, n, &y, &w2, &params).expect("fit");
+        for (ia, ib) in a
+            .report()
+            .initial_log_odds_per_fold
+            .iter()
+            .zip(&b.report().initial_log_odds_per_fold)
+        {
+            assert!((ib - ia - 2f64.ln()).abs() < 1e-12, "{ia} {ib}");
+        }
+        let mean = |f: &BoostedFit| f.out_of_fold_log_odds().iter().sum::<f64>() / n as f64;
+        let shift = mean(&b) - mean(&a);
+        assert!((shift - 2f64.ln()).abs() < 0.1, "shift {shift}");
+    }
+
+    #[test]
+    fn invalid_inputs_are_named() {
+        let (x, y) = variance_shift(100, 1);
+        let n = y.len();
+        let w = vec![1.0; n];
+        let ok = BoostedParams::default();
+        let cases: Vec<(BoostedParams, &str)> = vec![
+            (
+                BoostedParams {
+                    folds: 1,
+                    ..ok.clone()
+                },
+                "folds",
+            ),
+            (
+                BoostedParams {
+                    learning_rate: 0.0,
+                    ..ok.clone()
+                },
+                "learning_rate",
+            ),
+            (
+                BoostedParams {
+                    learning_rate: f64::NAN,
+                    ..ok.clone()
+                },
+                "learning_rate",
+            ),
+            (
+                BoostedParams {
+                    probability_clip: 0.5,
+                    ..ok.clone()
+                },
+                "probability_clip",
+            ),
+            (
+                BoostedParams {
+                    probability_clip: 0.0,
+                    ..ok.clone()
+                },
+                "probability_clip",
+            ),
+            (
+                BoostedParams {
+                    max_bins: 256,
+                    ..ok.clone()
+                },
+                "max_bins",
+            ),
+            (
+                BoostedParams {
+                    max_bins: 1,
+                    ..ok.clone()
+                },
+                "max_bins",
+            ),
+            (
+                BoostedParams {
+                    max_leaf_nodes: 1,
+                    ..ok.clone()
+                },
+                "max_leaf_nodes",
+            ),
+            (
+                BoostedParams {
+                    min_samples_leaf: 0,
+                    ..ok.clone()
+                },
+                "min_samples_leaf",
+            ),
+            (
+                BoostedParams {
+                    max_trees: 0,
+                    ..ok.clone()
+                },
+                "max_trees",
+            ),
+            (
+                BoostedParams {
+                    l2_regularization: -1.0,
+                    ..ok.clone()
+                },
+                "l2_regularization",
+            ),
+            (
+                BoostedParams {
+                    validation_fraction: 1.0,
+                    ..ok.clone()
+                },
+                "validation_fraction",
+            ),
+            (
+                BoostedParams {
+                    patience: 0,
+                    ..ok.clone()
+                },
+                "patience",
+            ),
+            (
+                BoostedParams {
+                    tolerance: -1e-9,
+                    ..ok.clone()
+                },
+                "tolerance",
+            ),
+        ];
+        for (params, expected) in cases {
+            match cross_fit(&x, n, &y, &w, &params) {
+                Err(ShiftError::InvalidOption { name, .. }) => assert_eq!(name, expected),
+                other => panic!("{expected}: {other:?}"),
+            }
+        }
+        assert!(matches!(
+            cross_fit(&x[1..], n, &y, &w, &ok),
+            Err(ShiftError::BufferLength { .. })
+        ));
+        assert!(matches!(
+            cross_fit(&x, n, &y[1..], &w, &ok),
+            Err(ShiftError::InvalidOption {
+                name: "y.len()",
+                ..
+            })
+        ));
+        let mut bad_x = x.clone();
+        bad_x[n + 7] = f64::NAN;
+        match cross_fit(&bad_x, n, &y, &w, &ok) {
+            Err(ShiftError::NonFinite { feature, row, .. }) => {
+                assert_eq!((feature.as_str(), row), ("column 1", 7));
+            }
+            other => panic!("{other:?}"),
+        }
+        let mut bad_w = w.clone();
+        bad_w[3] = 0.0;
+        assert!(matches!(
+            cross_fit(&x, n, &y, &bad_w, &ok),
+            Err(ShiftError::InvalidWeight { index: 3, .. })
+        ));
+        assert!(matches!(
+            cross_fit(&x, n, &vec![false; n], &w, &ok),
+            Err(ShiftError::OneClass { positives: 0, .. })
+        ));
+        let mut few = vec![false; n];
+        for v in few.iter_mut().take(9) {
+            *v = true;
+        }
+        assert!(matches!(
+            cross_fit(&x, n, &few, &w, &ok),
+            Err(ShiftError::TooFewRows {
+                set: "pool",
+                rows: 9,
+                needed: 10,
+                ..
+            })
+        ));
+    }
+
+    #[test]
+    fn cut_points_follow_the_quantile_rule() {
+        // Few distinct values: midpoints between them (scikit-learn's _find_binning_thresholds).
+        assert_eq!(cut_points(vec![3.0, 1.0, 2.0, 2.0], 255), vec![1.5, 2.5]);
+        // Many: numpy percentile "midpoint" at 100 k / max_bins; for 0..=9 and 4 bins the
+        // positions 9 q / 100 are 2.25, 4.5, 6.75 -> 2.5, 4.5, 6.5 (hand computation).
+        let v: Vec<f64> = (0..10).map(f64::from).collect();
+        assert_eq!(cut_points(v, 4), vec![2.5, 4.5, 6.5]);
     }
 }

@@ -63,8 +63,8 @@ fn main() -> Result<(), Box<dyn std::error::Error>> {
     let auc = roc_auc(fit.out_of_fold_log_odds(), &y)?.auc;
     println!(
         "cross_fit: {fit_seconds:.2} s, {} folds, trees per fold {:?}, leaves per fold {:?}, \
-         out-of-fold AUC {auc:.4}",
-        params.folds, report.trees_per_fold, report.leaves_per_fold
+         deepest tree per fold {:?}, out-of-fold AUC {auc:.4}",
+        params.folds, report.trees_per_fold, report.leaves_per_fold, report.max_depth_per_fold
     );
 
     let (new_x, _) = table(predict_rows, features, 2);

@@ -188,8 +188,9 @@ pub struct BoostedReport {
     /// before `max_trees`.
     pub trees_per_fold: Vec<usize>,
     pub stopped_early: Vec<bool>,
-    /// Per fold: total leaves over its trees.
+    /// Per fold: total leaves over its trees, and the deepest tree (splits root to leaf).
     pub leaves_per_fold: Vec<usize>,
+    pub max_depth_per_fold: Vec<u32>,
     /// Per fold: the initial score (weighted log-odds of its training rows).
     pub initial_log_odds_per_fold: Vec<f64>,
     /// Per fold: weighted mean validation log loss after the initial score and after the
@@ -459,6 +460,7 @@ pub fn cross_fit(
         trees_per_fold: vec![],
         stopped_early: vec![],
         leaves_per_fold: vec![],
+        max_depth_per_fold: vec![],
         initial_log_odds_per_fold: vec![],
         initial_validation_loss_per_fold: vec![],
         validation_loss_per_fold: vec![],
@@ -500,6 +502,9 @@ pub fn cross_fit(
                 .filter(|(i, node)| node.left as usize == *i)
                 .count(),
         );
+        report
+            .max_depth_per_fold
+            .push(fitted.model.depths.iter().copied().max().unwrap_or(0));
         report.initial_log_odds_per_fold.push(fitted.model.init);
         report
             .initial_validation_loss_per_fold

@@ -24,6 +24,7 @@
 //! summary structs implement `serde::Serialize`).
 
 pub mod assess;
+pub mod boosted;
 pub mod diagnostics;
 pub mod features;
 pub mod logistic;

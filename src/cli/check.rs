@@ -20,7 +20,9 @@ use crate::workflows::check::{
     calibration_check, CheckOptions, CheckOutcome, CheckWeights, ProcedureResult, Tilt, PI_MAX,
 };
 
-use super::common::{weighting_failure, DelimiterArg, FitArgs, InputArgs, PValuesArg, ScoreArg};
+use super::common::{
+    weighting_failure, ClassifierArg, DelimiterArg, FitArgs, InputArgs, PValuesArg, ScoreArg,
+};
 use super::{commit_outputs, print_stdout, Failure};
 
 const CHECK_HELP: &str = "\
@@ -294,7 +296,12 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
         tilt: a.stress_test.map_or(Tilt::Logistic, Tilt::from),
         select: select.clone(),
         weights: match a.weights {
-            // Diagnostics are not needed inside replicates: the cheapest valid settings.
+            // Diagnostics are not needed inside replicates: the cheapest valid settings
+            // (boosted trees keep the user's folds: there they are the cross-fitting that
+            // makes the weights).
+            CheckWeightsArg::Fitted if a.fit.classifier == Some(ClassifierArg::Boosted) => {
+                CheckWeights::Fitted(params.clone().permutations(1))
+            }
             CheckWeightsArg::Fitted => {
                 CheckWeights::Fitted(params.clone().permutations(1).cv_folds(2))
             }

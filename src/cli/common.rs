@@ -22,7 +22,8 @@ use crate::shift::weighting::{
     obtain_weights, Calibration, WeightSource, Weighting, WeightingError,
 };
 use crate::shift::{
-    unreliable_weights, Expansion, FeatureTransform, FitRows, ShiftError, ShiftParams, Unreliable,
+    unreliable_weights, ClassifierKind, Expansion, FeatureTransform, FitRows, ShiftError,
+    ShiftParams, Unreliable,
 };
 
 use super::Failure;
@@ -532,6 +533,12 @@ pub enum FitRowsArg {
 /// are stated in the help and applied by [`FitArgs::params`].
 #[derive(Clone, Debug, Default, Args)]
 pub struct FitArgs {
+    /// Domain classifier: `logistic` (L2-penalized logistic regression on the standardized
+    /// features) or `boosted` (gradient-boosted trees, cross-fitted: every row's weight
+    /// comes from a model that did not see it; sees variance shifts, thresholds and
+    /// interactions) [default: logistic].
+    #[arg(long, value_enum, value_name = "KIND")]
+    pub classifier: Option<ClassifierArg>,
     /// L2 penalty alpha on the standardized classifier slopes (loss summed over rows,
     /// intercept unpenalized; scikit-learn C = 1/alpha). Larger = smoother, less extreme
     /// weights [default: 1.0, scikit-learn's default C = 1].
@@ -570,6 +577,15 @@ pub struct FitArgs {
     pub feature_transform: Option<FeatureTransformArg>,
 }
 
+/// `--classifier`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum ClassifierArg {
+    /// L2-penalized logistic regression.
+    Logistic,
+    /// Cross-fitted gradient-boosted trees.
+    Boosted,
+}
+
 /// `--feature-transform`.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
 pub enum FeatureTransformArg {
@@ -586,6 +602,7 @@ impl FitArgs {
     /// options only apply together with another flag).
     pub fn first_given(&self) -> Option<&'static str> {
         [
+            (self.classifier.is_some(), "--classifier"),
             (self.penalty.is_some(), "--penalty"),
             (self.expand.is_some(), "--expand"),
             (self.fit_rows.is_some(), "--fit-rows"),
@@ -621,7 +638,30 @@ impl FitArgs {
                 labeled_fraction: fraction.unwrap_or(DEFAULT_FIT_FRACTION),
             },
         };
+        let boosted = self.classifier == Some(ClassifierArg::Boosted);
+        if boosted {
+            for (given, flag) in [
+                (
+                    self.expand.is_some_and(|e| e != ExpandArg::None),
+                    "--expand",
+                ),
+                (self.penalty.is_some(), "--penalty"),
+            ] {
+                if given {
+                    return Err(Failure::Input(format!(
+                        "{flag} applies to --classifier logistic only: boosted trees find \
+                         squares, thresholds and interactions themselves and have no L2 \
+                         penalty on slopes. Hint: drop {flag}, or use --classifier logistic."
+                    )));
+                }
+            }
+        }
         let params = ShiftParams::new()
+            .classifier_kind(if boosted {
+                ClassifierKind::Boosted
+            } else {
+                ClassifierKind::Logistic
+            })
             .alpha(self.penalty.unwrap_or(DEFAULT_PENALTY))
             .expansion(match self.expand.unwrap_or(ExpandArg::None) {
                 ExpandArg::None => Expansion::None,

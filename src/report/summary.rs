@@ -780,25 +780,51 @@ fn weight_lines(s: &ShiftSummary, lines: &mut DiagnosticLines) {
 fn classifier_lines(s: &ShiftSummary, lines: &mut DiagnosticLines) {
     let mut line = |label: &str, text: String| lines.push((label.to_string(), text));
     let fit = &s.fit;
-    line(
-        "classifier",
-        format!(
-            "{} after {} Newton iterations (gradient norm {}); penalty alpha {} (scikit-learn \
+    if let Some(b) = &fit.boosted {
+        line(
+            "classifier",
+            format!(
+                "boosted trees, cross-fitted in {} folds (out-of-fold probabilities for the \
+                 fitting rows); trees per fold {:?} (early stopping on a {:.0}% validation \
+                 split), learning rate {}, at most {} leaves, at least {} rows per leaf; \
+                 probabilities clipped to [{}, {}]: {} low, {} high of {} fitting rows; fit \
+                 on {} labeled and {} pool rows",
+                b.params.folds,
+                b.trees_per_fold,
+                100.0 * b.params.validation_fraction,
+                shown(b.params.learning_rate),
+                b.params.max_leaf_nodes,
+                b.params.min_samples_leaf,
+                b.probability_clip,
+                1.0 - b.probability_clip,
+                b.out_of_fold_clipped_low,
+                b.out_of_fold_clipped_high,
+                b.rows,
+                fit.labeled_rows_fit,
+                fit.pool_rows_fit
+            ),
+        );
+    } else {
+        line(
+            "classifier",
+            format!(
+                "{} after {} Newton iterations (gradient norm {}); penalty alpha {} (scikit-learn \
              C = {}); {} terms; fit on {} labeled and {} pool rows",
-            if s.converged {
-                "converged"
-            } else {
-                "NOT converged"
-            },
-            s.iterations,
-            shown(fit.report.gradient_norm),
-            shown(fit.alpha),
-            shown(1.0 / fit.alpha),
-            fit.terms.len(),
-            fit.labeled_rows_fit,
-            fit.pool_rows_fit
-        ),
-    );
+                if s.converged {
+                    "converged"
+                } else {
+                    "NOT converged"
+                },
+                s.iterations,
+                shown(fit.report.gradient_norm),
+                shown(fit.alpha),
+                shown(1.0 / fit.alpha),
+                fit.terms.len(),
+                fit.labeled_rows_fit,
+                fit.pool_rows_fit
+            ),
+        );
+    }
     if !fit.dropped_constant_columns.is_empty() {
         line(
             "dropped constant columns",

@@ -44,7 +44,7 @@ pub use diagnostics::{
 };
 pub use features::{Design, Expansion};
 pub use logistic::{fit_logistic, FitReport, LogisticModel, LogisticParams, LogisticValidParams};
-pub use options::{FitRows, ShiftOptions, ShiftParams};
+pub use options::{ClassifierKind, FitRows, ShiftOptions, ShiftParams};
 pub use psis::pareto_khat;
 pub use reliability::{unreliable_weights, Unreliable};
 pub use robust::{ClipReport, FeatureTransform};

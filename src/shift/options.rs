@@ -22,6 +22,18 @@ pub enum FitRows {
     },
 }
 
+/// Which domain classifier estimates e(x) = P(pool | x).
+#[derive(Debug, Clone, Copy, PartialEq, Eq, Serialize, Default)]
+#[serde(rename_all = "snake_case")]
+pub enum ClassifierKind {
+    /// L2-penalized logistic regression on the standardized (optionally expanded) features.
+    #[default]
+    Logistic,
+    /// Cross-fitted gradient-boosted trees ([`super::boosted`]): out-of-fold log-odds for
+    /// every fitting row, the mean of the fold models for the other rows.
+    Boosted,
+}
+
 /// Unchecked options for [`assess_shift`](super::assess_shift); call [`ParamGuard::check`]
 /// (or pass to [`assess_shift_with`](super::assess_shift_with)) to validate. Setters state their defaults.
 #[derive(Debug, Clone, PartialEq)]
@@ -31,6 +43,8 @@ pub struct ShiftParams(ShiftOptions);
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ShiftOptions {
     pub(super) classifier: LogisticValidParams,
+    pub(super) classifier_kind: ClassifierKind,
+    pub(super) boosted: Box<super::boosted::BoostedParams>,
     pub(super) expansion: Expansion,
     pub(super) feature_transform: super::FeatureTransform,
     pub(super) fit_rows: FitRows,
@@ -48,6 +62,8 @@ impl Default for ShiftParams {
     fn default() -> Self {
         Self(ShiftOptions {
             classifier: LogisticParams::default().check_unwrap(),
+            classifier_kind: ClassifierKind::Logistic,
+            boosted: Box::default(),
             expansion: Expansion::None,
             feature_transform: super::FeatureTransform::Clip,
             fit_rows: FitRows::All,
@@ -91,6 +107,21 @@ impl ShiftParams {
     /// Extra classifier features. Defaults to [`Expansion::None`].
     pub fn expansion(mut self, expansion: Expansion) -> Self {
         self.0.expansion = expansion;
+        self
+    }
+    /// The domain classifier. Defaults to [`ClassifierKind::Logistic`]. With
+    /// [`ClassifierKind::Boosted`] the expansion is not used for the fit (trees find
+    /// squares and interactions themselves) and the boosted trees' settings come from
+    /// [`ShiftParams::boosted`]; their seed and folds follow [`ShiftParams::seed`] and
+    /// [`ShiftParams::cv_folds`].
+    pub fn classifier_kind(mut self, kind: ClassifierKind) -> Self {
+        self.0.classifier_kind = kind;
+        self
+    }
+    /// Settings of the boosted trees (used with [`ClassifierKind::Boosted`]). Defaults to
+    /// [`super::boosted::BoostedParams::default`].
+    pub fn boosted(mut self, params: super::boosted::BoostedParams) -> Self {
+        self.0.boosted = Box::new(params);
         self
     }
     /// How features are made robust before the fit and the balance diagnostics
@@ -213,6 +244,10 @@ impl ShiftOptions {
     /// Feature expansion.
     pub fn expansion(&self) -> Expansion {
         self.expansion
+    }
+    /// The domain classifier.
+    pub fn classifier_kind(&self) -> ClassifierKind {
+        self.classifier_kind
     }
     /// Feature transform.
     pub fn feature_transform(&self) -> super::FeatureTransform {

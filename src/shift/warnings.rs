@@ -46,6 +46,10 @@ pub const UNREACHABLE_SHARE_HIGH: f64 = 0.01;
 /// 0.9 cut-off follows Crump, Hotz, Imbens & Mitnik 2009).
 pub const OUTSIDE_OVERLAP_SHARE_HIGH: f64 = 0.1;
 
+/// Share of fitting rows at a clipped boosted probability above this (common practice, our
+/// choice: a few such rows are expected at the tails).
+pub const PROBABILITY_CLIPPED_SHARE_HIGH: f64 = 0.01;
+
 /// How bad a warning is. Severe ones come first.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize)]
 #[serde(rename_all = "snake_case")]
@@ -76,7 +80,7 @@ pub struct ShiftWarning {
 /// unreliable (k-hat, ESS, AUC near 1), before lost power (unreachable units), before
 /// cautions (absurd cells that were clipped, squares of heavy-tailed features, remaining
 /// mean imbalance, pool outside the overlap).
-pub const ORDER: [&str; 11] = [
+pub const ORDER: [&str; 12] = [
     "converged",
     "clamped_weights",
     "adequacy_smd",
@@ -85,6 +89,7 @@ pub const ORDER: [&str; 11] = [
     "auc",
     "unreachable_share",
     "far_out_values",
+    "probability_clipped",
     "squares_heavy_tail",
     "smd_weighted",
     "pool_share_above_0_9",
@@ -251,6 +256,30 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
                 if count == 1 { "was" } else { "were" }
             ),
         ));
+    }
+    if let Some(b) = &s.fit.boosted {
+        let clipped = b.out_of_fold_clipped_low + b.out_of_fold_clipped_high;
+        let share = clipped as f64 / b.rows.max(1) as f64;
+        if share > PROBABILITY_CLIPPED_SHARE_HIGH {
+            out.push(warn(
+                "probability_clipped",
+                share,
+                PROBABILITY_CLIPPED_SHARE_HIGH,
+                Severity::Caution,
+                format!(
+                    "the boosted trees put {clipped} of {} fitting rows ({:.1}%) at a clipped \
+                     probability ({} labeled-side, {} pool-side; bounds {} and {}): the trees \
+                     are sure those rows belong to one set, so their weights are set by the \
+                     clip, not estimated",
+                    b.rows,
+                    100.0 * share,
+                    b.out_of_fold_clipped_low,
+                    b.out_of_fold_clipped_high,
+                    b.probability_clip,
+                    1.0 - b.probability_clip
+                ),
+            ));
+        }
     }
     if matches!(
         s.fit.expansion,

@@ -9,8 +9,10 @@
 //! proportion of conditional calibration and of weighted BH. The replicates are then pooled
 //! and grouped by diagnostic, and the mean FDP per group printed as a markdown table.
 //!
-//! Run: `cargo run --release --example refusal_thresholds` (about a minute on 2 cores);
-//! its output is committed in docs/validation.md. Seeded: the same output on a machine.
+//! Run: `cargo run --release --example refusal_thresholds` (about a minute on 2 cores)
+//! prints the markdown block between the `refusal:begin` / `refusal:end` markers of
+//! docs/validation.md; with `--ci` it fails when the committed block differs. Seeded: the
+//! same output on a machine.
 
 use weighbridge::check::{
     calibration_check, CheckOptions, CheckWeights, ReplicateDiagnostics, Tilt,
@@ -61,7 +63,30 @@ fn mean_se(values: &[f64]) -> String {
     format!("{mean:.3} +- {:.3}", 2.0 * (var / n).sqrt())
 }
 
-fn main() {
+#[path = "support/marked_block.rs"]
+mod marked_block;
+
+const BEGIN: &str = "<!-- refusal:begin -->";
+const END: &str = "<!-- refusal:end -->";
+
+fn main() -> std::process::ExitCode {
+    marked_block::print_or_compare(
+        &study(),
+        BEGIN,
+        END,
+        "cargo run --release --example refusal_thresholds",
+    )
+}
+
+/// The study's markdown block.
+fn study() -> String {
+    let mut out = String::new();
+    macro_rules! println {
+        ($($arg:tt)*) => {{
+            out.push_str(&format!($($arg)*));
+            out.push('\n');
+        }};
+    }
     let (table, log_ratio) = labeled(7);
     let mut records: Vec<(String, ReplicateDiagnostics)> = Vec::new();
     let runs: Vec<(Tilt, f64)> = [1.0, 2.0, 3.0, 4.0, 5.0]
@@ -196,4 +221,5 @@ fn main() {
             mean_se(&gone)
         );
     }
+    out
 }

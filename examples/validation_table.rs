@@ -335,56 +335,17 @@ fn table() -> Result<String, String> {
     Ok(out)
 }
 
-/// The block between the markers of docs/validation.md, without the marker lines.
-fn committed_block() -> Result<String, String> {
-    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("docs/validation.md");
-    let text = std::fs::read_to_string(&path).map_err(|e| format!("{}: {e}", path.display()))?;
-    let start = text
-        .find(BEGIN)
-        .ok_or_else(|| format!("{}: no {BEGIN} marker", path.display()))?;
-    let after = &text[start + BEGIN.len()..];
-    let end = after
-        .find(END)
-        .ok_or_else(|| format!("{}: no {END} marker", path.display()))?;
-    Ok(after[..end].trim_start_matches('\n').to_string())
-}
+#[path = "support/marked_block.rs"]
+mod marked_block;
 
 fn main() -> ExitCode {
-    let ci = std::env::args().any(|a| a == "--ci");
-    let generated = match table() {
-        Ok(t) => t,
-        Err(e) => {
-            eprintln!("validation_table: {e}");
-            return ExitCode::FAILURE;
-        }
-    };
-    if !ci {
-        print!("{generated}");
-        return ExitCode::SUCCESS;
-    }
-    match committed_block() {
-        Ok(committed) if committed == generated => {
-            println!("docs/validation.md table reproduced exactly");
-            ExitCode::SUCCESS
-        }
-        Ok(committed) => {
-            eprintln!("docs/validation.md table differs from a fresh run; first differences:");
-            let (old, new): (Vec<&str>, Vec<&str>) =
-                (committed.lines().collect(), generated.lines().collect());
-            for i in 0..old.len().max(new.len()) {
-                let (a, b) = (old.get(i), new.get(i));
-                if a != b {
-                    eprintln!(
-                        "line {}:\n- {}\n+ {}",
-                        i + 1,
-                        a.unwrap_or(&""),
-                        b.unwrap_or(&"")
-                    );
-                }
-            }
-            eprintln!("regenerate with `cargo run --release --example validation_table`");
-            ExitCode::FAILURE
-        }
+    match table() {
+        Ok(generated) => marked_block::print_or_compare(
+            &generated,
+            BEGIN,
+            END,
+            "cargo run --release --example validation_table",
+        ),
         Err(e) => {
             eprintln!("validation_table: {e}");
             ExitCode::FAILURE

@@ -304,7 +304,11 @@ impl Weighting<'_> {
                     list.join(", ")
                 };
                 format!(
-                    "fitted by a domain classifier on {} feature{} ({shown}), {}",
+                    "fitted by a domain classifier ({}) on {} feature{} ({shown}), {}",
+                    match f.options.classifier_kind() {
+                        super::ClassifierKind::Logistic => "logistic regression",
+                        super::ClassifierKind::Boosted => "cross-fitted boosted trees",
+                    },
                     list.len(),
                     if list.len() == 1 { "" } else { "s" },
                     fit_rows_words(f.options.fit_rows())
@@ -505,6 +509,6 @@ mod tests {
         assert_eq!(w.pool_weights().unwrap().len(), 60);
         assert!(w
             .describe()
-            .starts_with("fitted by a domain classifier on 1 feature (x)"));
+            .starts_with("fitted by a domain classifier (logistic regression) on 1 feature (x)"));
     }
 }

@@ -307,7 +307,8 @@ pub fn selection_verdict(summary: &SelectSummary) -> String {
     if let Some(statement) = &summary.draw_statement {
         let _ = write!(
             verdict,
-            ". The shortlist depends on a random draw: {statement}"
+            ". The shortlist depends on a random draw: {}",
+            statement.trim_end_matches('.')
         );
     }
     if severe > 0 {
@@ -552,9 +553,16 @@ fn shift_html(out: &mut String, part: &ShiftPart) {
     out.push_str("<section id=\"shift\">\n<h2>Shift diagnostics</h2>\n");
     let _ = writeln!(
         out,
-        "<p>A logistic regression (the domain classifier) was fit to tell labeled rows from \
-         pool rows on {}; its odds are the density-ratio weights. Each diagnostic below has \
-         a threshold; crossing it raises a warning (listed at the top, worst first).</p>",
+        "<p>{} (the domain classifier) was fit to tell labeled rows from pool rows on {}; \
+         its odds are the density-ratio weights. Each diagnostic below has a threshold; \
+         crossing it raises a warning (listed at the top, worst first).</p>",
+        match s.fit.classifier {
+            crate::shift::ClassifierKind::Logistic => "A logistic regression",
+            crate::shift::ClassifierKind::Boosted => {
+                "A cross-fitted gradient-boosted tree model (each fitting row's probability \
+                 from a model trained without it)"
+            }
+        },
         escape(&section.features.join(", "))
     );
     out.push_str("<table>\n<thead><tr><th>diagnostic</th><th>value</th></tr></thead>\n<tbody>\n");
@@ -720,8 +728,15 @@ fn method_html(out: &mut String, report: &Report) {
              &sum;w<sup>2</sup> (Kish 1965); Pareto k-hat of the weight tail (Vehtari, Simpson, \
              Gelman, Yao &amp; Gabry 2024); standardized mean differences before and after \
              weighting (Austin 2009), also on squared and pairwise-product features to check \
-             the weight model. Estimated weights add error the guarantee does not \
-             cover.</p>\n",
+             the weight model. With <code>--classifier boosted</code> the classifier is \
+             gradient-boosted trees on the binary log loss (Friedman 2001), cross-fitted: \
+             each fitting row's probability comes from the fold model that did not see it, \
+             probabilities clipped to [0.001, 0.999]. Before the fit, values beyond wide \
+             outer fences (the 1% and 99% order statistics &plusmn; 2 spans) are set to the \
+             fences and named, unless another feature transform was chosen. Fitted weights \
+             with k-hat above its threshold, an effective sample size below 2% or an AUC \
+             above 0.99 are refused unless explicitly allowed. Estimated weights add error \
+             the guarantee does not cover.</p>\n",
         ),
     }
     out.push_str(
@@ -743,6 +758,8 @@ fn method_html(out: &mut String, report: &Report) {
          Statistics in Medicine 28.</li>\n\
          <li>Lopez-Paz, D., Oquab, M. (2017). Revisiting classifier two-sample tests. \
          ICLR 2017.</li>\n\
+         <li>Friedman, J. H. (2001). Greedy function approximation: a gradient boosting \
+         machine. Annals of Statistics 29(5).</li>\n\
          </ul>\n</section>\n",
     );
 }

@@ -137,8 +137,8 @@ impl UnreliableMark {
             statement: format!(
                 "UNRELIABLE WEIGHTS: the fitted weights fail {} ({}); this run went ahead \
                  only because of --allow-unreliable-weights. In simulation such runs had \
-                 realized FDR well above q (docs/validation.md): do not read this shortlist \
-                 as FDR-controlled.",
+                 realized FDR above q (docs/validation.md): do not read this shortlist as \
+                 FDR-controlled.",
                 if names.len() == 1 {
                     "one reliability check"
                 } else {

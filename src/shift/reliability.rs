@@ -15,8 +15,9 @@
 //! biased, not that they are degenerate, and a user can act on them (more features, squares).
 //!
 //! The floors were chosen from the calibration-check simulations recorded in
-//! docs/validation.md ("Refusing degenerate fitted weights"): replicates past any of them
-//! had realized FDR far above q; the others kept it.
+//! docs/validation.md ("Refusing degenerate fitted weights"): at q = 0.2, replicates past any
+//! of them had realized conditional-calibration FDR 0.24 (0.30 below the ESS floor, against
+//! 0.07-0.11 for ESS between 2% and 10%), the others 0.12.
 //!
 //! Given weights are never judged here: with the true density ratio the guarantee holds
 //! whatever its effective sample size.

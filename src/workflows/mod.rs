@@ -5,6 +5,7 @@
 //! inputs and write the outputs.
 
 pub mod audit;
+pub mod batch;
 pub mod check;
 pub mod demo;
 pub mod rescreen;

@@ -7,6 +7,7 @@
 //! A closed stdout pipe (e.g. `| head`) is not an error.
 
 pub mod audit;
+pub mod batch;
 pub mod check;
 pub mod common;
 pub mod demo;
@@ -55,6 +56,8 @@ enum Command {
     Check(check::CheckArgs),
     /// Re-run the selection on a grown pool and report what changed since a previous run.
     Rescreen(rescreen::RescreenArgs),
+    /// Design a calibration batch: units to assay, drawn with known probabilities.
+    Batch(batch::BatchArgs),
 }
 
 /// Why a command failed, and so which exit code it gets.
@@ -196,6 +199,7 @@ pub fn main_entry() -> ExitCode {
         Command::Audit(args) => audit::run(args),
         Command::Check(args) => check::run(args),
         Command::Rescreen(args) => rescreen::run(args),
+        Command::Batch(args) => batch::run(args),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,

@@ -104,3 +104,167 @@ fn bad_sizes_are_input_errors_and_write_nothing() {
         );
     }
 }
+
+/// Runs `select --batch-design` with the given labeled rows (id, y, pred).
+fn select_with_design(dir: &Path, design: &Path, labeled: &str, extra: &[&str]) -> Output {
+    let path = dir.join("assayed.csv");
+    fs::write(&path, labeled).unwrap();
+    Command::new(env!("CARGO_BIN_EXE_weighbridge"))
+        .args(["select", "--labeled", path.to_str().unwrap()])
+        .args(["--pool", fixture("pool.csv").to_str().unwrap()])
+        .args(["--threshold", "6.5", "--fdr", "0.2"])
+        .args(["--batch-design", design.to_str().unwrap()])
+        .args(extra)
+        .output()
+        .expect("run weighbridge")
+}
+
+/// The drawn units of a design with an outcome for each (a made-up value: here the
+/// mechanics are checked, not the statistics).
+fn assayed_rows(design: &Path, skip: usize) -> (String, Vec<String>) {
+    let (_, chosen) = rows(&design.join("batch.csv"));
+    let mut text = String::from("id,y,pred\n");
+    for (k, r) in chosen.iter().enumerate().skip(skip) {
+        let pred: f64 = r[2].parse().unwrap();
+        let y = if k % 3 == 0 { pred - 2.0 } else { pred + 1.0 };
+        text.push_str(&format!("{},{y},{pred}\n", r[0]));
+    }
+    (text, chosen.iter().map(|r| r[0].clone()).collect())
+}
+
+#[test]
+fn select_with_a_batch_design_uses_exact_weights_and_never_selects_an_assayed_unit() {
+    let dir = TempDir::new().unwrap();
+    let design = dir.path().join("design");
+    assert!(batch(&design, &["--size", "60", "--fdr", "0.2"])
+        .status
+        .success());
+    let (labeled, drawn) = assayed_rows(&design, 0);
+    let out = dir.path().join("out");
+    let o = select_with_design(
+        dir.path(),
+        &design,
+        &labeled,
+        &["--out", out.to_str().unwrap()],
+    );
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let (header, candidates) = rows(&out.join("candidates.csv"));
+    let id = header.iter().position(|h| h == "id").unwrap();
+    let weight = header.iter().position(|h| h == "weight").unwrap();
+    assert_eq!(
+        candidates.len(),
+        2000 - drawn.len(),
+        "drawn units leave the pool"
+    );
+    assert!(candidates.iter().all(|r| !drawn.contains(&r[id])));
+    // Weights are (1 - pi) / pi of the design.
+    let (_, design_rows) = rows(&design.join("design.csv"));
+    let pi: std::collections::HashMap<&str, f64> = design_rows
+        .iter()
+        .map(|r| (r[0].as_str(), r[1].parse().unwrap()))
+        .collect();
+    for r in &candidates {
+        let p = pi[r[id].as_str()];
+        let w: f64 = r[weight].parse().unwrap();
+        assert!((w - (1.0 - p) / p).abs() <= 1e-12 * w.max(1.0), "{}", r[id]);
+    }
+    let summary: Value =
+        serde_json::from_slice(&fs::read(out.join("summary.json")).unwrap()).unwrap();
+    assert!(summary["inputs"]["weights"]
+        .as_str()
+        .unwrap()
+        .starts_with("exact by design"));
+    assert!(summary["warnings"]
+        .to_string()
+        .contains("must not be used to retrain"));
+}
+
+#[test]
+fn batch_design_errors_are_located() {
+    let dir = TempDir::new().unwrap();
+    let design = dir.path().join("design");
+    assert!(batch(&design, &["--size", "60", "--fdr", "0.2"])
+        .status
+        .success());
+    let out = dir.path().join("out");
+    let out_args = ["--out", out.to_str().unwrap()];
+    // Outcomes missing for part of the batch: an error naming how many, unless allowed.
+    let (partial, drawn) = assayed_rows(&design, 2);
+    let o = select_with_design(dir.path(), &design, &partial, &out_args);
+    assert_eq!(o.status.code(), Some(2));
+    let stderr = String::from_utf8_lossy(&o.stderr);
+    assert!(
+        stderr.contains(&format!("2 of the {} units drawn", drawn.len())),
+        "{stderr}"
+    );
+    assert!(!out.exists());
+    let mut allowed = out_args.to_vec();
+    allowed.push("--allow-missing-batch");
+    let o = select_with_design(dir.path(), &design, &partial, &allowed);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let summary: Value =
+        serde_json::from_slice(&fs::read(out.join("summary.json")).unwrap()).unwrap();
+    assert!(summary["warnings"]
+        .to_string()
+        .contains("missing at random"));
+    // An assayed id that is not in the design, or not drawn.
+    let (mut labeled, _) = assayed_rows(&design, 0);
+    labeled.push_str("NOT-IN-POOL,7.0,7.0\n");
+    let out2 = dir.path().join("out2");
+    let o = select_with_design(
+        dir.path(),
+        &design,
+        &labeled,
+        &["--out", out2.to_str().unwrap()],
+    );
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("NOT-IN-POOL"));
+    let (_, design_rows) = rows(&design.join("design.csv"));
+    let undrawn = design_rows.iter().find(|r| r[2] == "false").unwrap()[0].clone();
+    let (mut labeled, _) = assayed_rows(&design, 0);
+    labeled.push_str(&format!("{undrawn},7.0,7.0\n"));
+    let o = select_with_design(
+        dir.path(),
+        &design,
+        &labeled,
+        &["--out", out2.to_str().unwrap()],
+    );
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("was not drawn"));
+    // A design made from another pool.
+    let other = dir.path().join("other_pool.csv");
+    let pool_text = fs::read_to_string(fixture("pool.csv")).unwrap();
+    let fewer: String = pool_text
+        .lines()
+        .take(1500)
+        .map(|l| format!("{l}\n"))
+        .collect();
+    fs::write(&other, fewer).unwrap();
+    let other_design = dir.path().join("other_design");
+    let o = Command::new(env!("CARGO_BIN_EXE_weighbridge"))
+        .args(["batch", "--pool", other.to_str().unwrap(), "--size", "30"])
+        .args(["--out", other_design.to_str().unwrap(), "--quiet"])
+        .output()
+        .unwrap();
+    assert!(o.status.success());
+    let (labeled, _) = assayed_rows(&other_design, 0);
+    let o = select_with_design(
+        dir.path(),
+        &other_design,
+        &labeled,
+        &["--out", out2.to_str().unwrap()],
+    );
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("not the pool the design was made from"));
+    // --out equal to the design folder.
+    let (labeled, _) = assayed_rows(&design, 0);
+    let o = select_with_design(
+        dir.path(),
+        &design,
+        &labeled,
+        &["--out", design.to_str().unwrap()],
+    );
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("batch design folder"));
+    assert!(!out2.exists());
+}

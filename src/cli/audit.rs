@@ -268,6 +268,7 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         .unwrap_or_else(|| args.selection.input.id.clone());
     let shortlist_path = args.shortlist.clone();
     let config = SelectConfig::try_from(args.selection)?;
+    config.refuse_batch_design("audit")?;
     let status = StepStatus::new(config.quiet);
     status.step("reading the labeled and pool files");
     let (labeled, pool) = read_inputs(&config)?;

@@ -119,7 +119,7 @@ fn fnv1a<'a>(bytes: impl Iterator<Item = &'a u8>) -> u64 {
 }
 
 /// FNV-1a 64 over the ids, each followed by `\n`, as 16 hex digits.
-fn id_checksum(ids: &[String]) -> String {
+pub(crate) fn id_checksum(ids: &[String]) -> String {
     let hash = fnv1a(ids.iter().flat_map(|id| id.as_bytes().iter().chain(b"\n")));
     format!("{hash:016x}")
 }

@@ -171,6 +171,15 @@ pub struct SelectArgs {
     /// Every output is then marked as such.
     #[arg(long, requires = "fit_weights")]
     pub allow_unreliable_weights: bool,
+    /// A folder written by `weighbridge batch`: the labeled file holds the assayed batch
+    /// units, the pool file is the pool the batch was drawn from; the drawn units leave the
+    /// pool and the weights are the design's exact (1 - pi) / pi (no classifier).
+    #[arg(long, value_name = "DIR", conflicts_with_all = ["weight_column", "fit_weights"])]
+    pub batch_design: Option<PathBuf>,
+    /// With --batch-design: go ahead when some drawn units have no outcome, treating them
+    /// as never drawn (assumes they are missing at random given their features).
+    #[arg(long, requires = "batch_design")]
+    pub allow_missing_batch: bool,
     /// Score function.
     #[arg(long, value_enum, default_value_t = ScoreArg::Clipped)]
     pub score: ScoreArg,
@@ -290,6 +299,24 @@ pub struct SelectConfig {
     pub report: bool,
     /// Go ahead on unreliable fitted weights (`--allow-unreliable-weights`).
     pub allow_unreliable_weights: bool,
+    /// `--batch-design` folder, if any.
+    pub batch_design: Option<PathBuf>,
+    /// `--allow-missing-batch`.
+    pub allow_missing_batch: bool,
+}
+
+impl SelectConfig {
+    /// `--batch-design` is a `select` option only (for now): other commands refuse it
+    /// rather than ignore it.
+    pub(crate) fn refuse_batch_design(&self, command: &str) -> Result<(), Failure> {
+        match &self.batch_design {
+            Some(_) => Err(Failure::Input(format!(
+                "--batch-design applies to `weighbridge select` only; `{command}` does not \
+                 use a batch design yet. Hint: run `weighbridge select --batch-design DIR`."
+            ))),
+            None => Ok(()),
+        }
+    }
 }
 
 impl TryFrom<SelectArgs> for SelectConfig {
@@ -337,6 +364,18 @@ impl TryFrom<SelectArgs> for SelectConfig {
             WeightSource::Given {
                 column: column.clone(),
             }
+        } else if let Some(dir) = &a.batch_design {
+            if std::path::absolute(dir).ok() == std::path::absolute(&a.out).ok() {
+                return Err(Failure::Input(format!(
+                    "--out {} is the batch design folder: the selection would overwrite the \
+                     design it reads. Hint: choose another --out folder.",
+                    a.out.display()
+                )));
+            }
+            // The weights are attached to the tables by `batch_design::apply_design`.
+            WeightSource::Given {
+                column: crate::cli::batch_design::WEIGHT_NAME.to_string(),
+            }
         } else {
             WeightSource::None
         };
@@ -355,6 +394,8 @@ impl TryFrom<SelectArgs> for SelectConfig {
             quiet: a.quiet,
             report: a.report,
             allow_unreliable_weights: a.allow_unreliable_weights,
+            batch_design: a.batch_design,
+            allow_missing_batch: a.allow_missing_batch,
         })
     }
 }

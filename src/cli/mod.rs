@@ -8,6 +8,7 @@
 
 pub mod audit;
 pub mod batch;
+pub(crate) mod batch_design;
 pub mod check;
 pub mod common;
 pub mod demo;

@@ -134,6 +134,7 @@ fn number_at(summary: &Value, pointer: &str) -> Option<f64> {
 pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     let previous_dir = args.previous.clone();
     let config = SelectConfig::try_from(args.selection)?;
+    config.refuse_batch_design("rescreen")?;
     let (previous, previous_summary) = read_previous(&previous_dir)?;
     let (labeled, pool) = read_inputs(&config)?;
     let weighting = obtain_run_weights(&config, &labeled, &pool)?;

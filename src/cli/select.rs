@@ -10,6 +10,7 @@ use crate::report::{
 use crate::selection::pipeline::{run_selection, LabeledInput, PoolInput, SelectError};
 use crate::shift::weighting::WeightSource;
 
+use super::batch_design::{apply_design, read_design};
 use super::common::{
     obtain_run_weights, read_inputs, reliability_gate, report_pointer, selection_inputs,
     selection_report_page, weighting_is_fitted,
@@ -62,20 +63,35 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     let status = StepStatus::new(config.quiet);
     status.step("reading the labeled and pool files");
     let (labeled, pool) = read_inputs(&config)?;
+    // A calibration batch: the assayed units calibrate with the design's exact weights and
+    // the drawn units leave the pool.
+    let design = match &config.batch_design {
+        Some(dir) => Some(apply_design(
+            &read_design(dir)?,
+            &labeled,
+            &pool,
+            config.allow_missing_batch,
+        )?),
+        None => None,
+    };
+    let (labeled, pool) = match design.as_ref() {
+        Some(d) => (&d.labeled, &d.pool),
+        None => (&labeled, &pool),
+    };
     timer.mark("read inputs");
     if weighting_is_fitted(&config) {
         status.step("fitting the domain classifier and its diagnostics");
     }
-    let weighting = obtain_run_weights(&config, &labeled, &pool)?;
+    let weighting = obtain_run_weights(&config, labeled, pool)?;
     if weighting.fitted().is_some() {
         timer.mark("fit weights and diagnostics");
     }
     // Unreliable fitted weights stop the run here (exit 3) unless allowed.
     let unreliable = reliability_gate(&config, &weighting)?;
     // Held-out fitting: the rows that fit the classifier do not calibrate.
-    let calibration = weighting.calibration(&labeled);
+    let calibration = weighting.calibration(labeled);
     status.step("scores, p-values and selection");
-    let (labeled_input, pool_input) = selection_inputs(&config, &pool, &calibration, &weighting);
+    let (labeled_input, pool_input) = selection_inputs(&config, pool, &calibration, &weighting);
     let outcome = select_or_explain(&config, labeled_input, pool_input)?;
     timer.mark("scores, p-values, selection");
     let inputs = RunInputs {
@@ -86,9 +102,15 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
             (None, Some(c)) => format!("value {c}"),
             (None, None) => String::new(),
         },
-        weights: weighting.describe(),
+        weights: match design.as_ref() {
+            Some(d) => d.description.clone(),
+            None => weighting.describe(),
+        },
     };
     let mut summary = select_summary(&outcome, inputs);
+    if let Some(d) = design.as_ref() {
+        summary.warnings.extend(d.warnings.iter().cloned());
+    }
     if let Some(fitted) = weighting.fitted() {
         add_shift(&mut summary, shift_section(fitted, &labeled.feature_names));
     }

@@ -358,7 +358,8 @@ fn capped_probabilities(z: &[f64], strength: f64, share: f64) -> (Vec<f64>, f64)
     (probs(log_c), log_c.exp())
 }
 
-fn subset(table: &UnitTable, rows: &[usize], role: Role) -> UnitTable {
+/// The rows `rows` of `table` (in that order) as a table of role `role`, without weights.
+pub(crate) fn subset(table: &UnitTable, rows: &[usize], role: Role) -> UnitTable {
     let n = table.len();
     let pick = |v: &[f64]| rows.iter().map(|&i| v[i]).collect::<Vec<f64>>();
     let mut features = Vec::with_capacity(rows.len() * table.feature_names.len());

@@ -11,7 +11,7 @@ use std::path::PathBuf;
 use clap::Args;
 use serde::Serialize;
 
-use crate::io::{read_id_list, OutputSet};
+use crate::io::{check_one_stdin, read_id_list, OutputSet};
 use crate::report::html::{shift_part, Finding, Part, Report, Table};
 use crate::report::shift_section;
 use crate::report::{tool_info, ToolInfo, CAUTIONS};
@@ -269,6 +269,11 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
     let shortlist_path = args.shortlist.clone();
     let config = SelectConfig::try_from(args.selection)?;
     let status = StepStatus::new(config.quiet);
+    check_one_stdin(&[
+        ("--shortlist", &shortlist_path),
+        ("--labeled", &config.labeled_path),
+        ("--pool", &config.pool_path),
+    ])?;
     status.step("reading the labeled and pool files");
     let (labeled, pool) = read_inputs(&config)?;
     let listed_ids = read_id_list(

@@ -13,7 +13,7 @@ use linfa::ParamGuard;
 
 use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::{ScoreKind, Thresholds};
-use crate::io::{check_same_features, read_units, ReadOptions, Role, UnitTable};
+use crate::io::{check_one_stdin, check_same_features, read_units, ReadOptions, Role, UnitTable};
 use crate::report::html::{selection_report, shift_part, WeightsMethod};
 use crate::report::UnreliableMark;
 use crate::selection::pipeline::{LabeledInput, PoolInput, Procedure, SelectOptions};
@@ -398,6 +398,10 @@ pub(crate) fn thresholds_of(table: &UnitTable, constant: Option<f64>) -> Thresho
 /// Read both files with the configured columns (and the same feature columns in both when
 /// weights are fitted).
 pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable), Failure> {
+    check_one_stdin(&[
+        ("--labeled", &config.labeled_path),
+        ("--pool", &config.pool_path),
+    ])?;
     let labeled = read_units(&config.labeled_path, Role::Labeled, &config.labeled_read)?;
     let pool = read_units(&config.pool_path, Role::Pool, &config.pool_read)?;
     check_same_features(&labeled, &pool)?;

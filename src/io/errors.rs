@@ -97,6 +97,18 @@ pub enum InputError {
         column: String,
     },
 
+    #[error("{file} line {line}, column `{column}`: id `{id}` contains the control character U+{code:04X}. Hint: ids must be printable text (no NUL, tab or line break inside); check whether the file is damaged or was saved in another encoding.", file = .path.display())]
+    ControlInId {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        id: String,
+        code: u32,
+    },
+
+    #[error("{first} and {second} are both `-` (standard input), which can be read only once. Hint: give at most one input as `-` and the others as files.")]
+    StdinTwice { first: String, second: String },
+
     #[error("{file} line {line}, column `{column}`: id `{id}` already appears on line {first_line}. Hint: ids must be unique within a file; remove the repeated row or give it its own id.", file = .path.display())]
     DuplicateId {
         path: PathBuf,

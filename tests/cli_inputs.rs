@@ -1,0 +1,199 @@
+//! End-to-end tests of how inputs are read: a named pipe, `-` for standard input, a sparse
+//! file of 8 GB, oversized cells in messages, ids in both files, control characters in ids.
+//!
+//! The real binary runs in a temporary folder. Expected behaviour is the contract of issue
+//! 11 and design.md section 4 (exit 2 with a located message and no output folder on bad
+//! input); the inputs are the README's fixtures (invented demo data, fixtures/README.md).
+
+use std::fs;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+use std::process::{Command, Output, Stdio};
+
+use serde_json::Value;
+use tempfile::TempDir;
+
+fn weighbridge() -> Command {
+    Command::new(env!("CARGO_BIN_EXE_weighbridge"))
+}
+
+fn fixture(name: &str) -> PathBuf {
+    Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("fixtures")
+        .join(name)
+}
+
+/// `select` on the fixtures with `labeled` and `pool` as given, into `out`.
+fn select(labeled: &Path, pool: &Path, out: &Path) -> Command {
+    let mut command = weighbridge();
+    command
+        .arg("select")
+        .arg("--labeled")
+        .arg(labeled)
+        .arg("--pool")
+        .arg(pool)
+        .args(["--threshold", "6.5", "--quiet", "--out"])
+        .arg(out);
+    command
+}
+
+fn run_with_stdin(mut command: Command, stdin: &[u8]) -> Output {
+    let mut child = command
+        .stdin(Stdio::piped())
+        .stdout(Stdio::piped())
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    let mut pipe = child.stdin.take().unwrap();
+    let data = stdin.to_vec();
+    let writer = std::thread::spawn(move || {
+        // The binary may stop reading early on an error; a broken pipe is fine then.
+        let _ = pipe.write_all(&data);
+    });
+    let output = child.wait_with_output().unwrap();
+    writer.join().unwrap();
+    output
+}
+
+fn summary(out: &Path) -> Value {
+    serde_json::from_str(&fs::read_to_string(out.join("summary.json")).unwrap()).unwrap()
+}
+
+fn candidate_ids(out: &Path) -> Vec<String> {
+    let mut reader = csv::Reader::from_path(out.join("candidates.csv")).unwrap();
+    reader
+        .records()
+        .map(|record| record.unwrap()[0].to_string())
+        .collect()
+}
+
+#[test]
+fn named_pipe_input_completes_with_the_same_result_as_the_file() {
+    let dir = TempDir::new().unwrap();
+    let reference = dir.path().join("reference");
+    let output = select(&fixture("labeled.csv"), &fixture("pool.csv"), &reference)
+        .output()
+        .unwrap();
+    assert!(output.status.success(), "{output:?}");
+
+    let fifo = dir.path().join("pool.csv");
+    let status = Command::new("mkfifo").arg(&fifo).status().unwrap();
+    assert!(status.success());
+    let fifo_writer = fifo.clone();
+    let writer = std::thread::spawn(move || {
+        fs::write(fifo_writer, fs::read(fixture("pool.csv")).unwrap()).unwrap();
+    });
+    let out = dir.path().join("from-fifo");
+    let mut child = select(&fixture("labeled.csv"), &fifo, &out)
+        .stderr(Stdio::piped())
+        .spawn()
+        .unwrap();
+    // A hang would be the old bug: give it a generous deadline, then fail.
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(60);
+    let status = loop {
+        if let Some(status) = child.try_wait().unwrap() {
+            break status;
+        }
+        if std::time::Instant::now() > deadline {
+            child.kill().unwrap();
+            panic!("select on a named pipe did not finish within 60 s");
+        }
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    };
+    writer.join().unwrap();
+    assert!(status.success());
+    assert_eq!(candidate_ids(&out), candidate_ids(&reference));
+    assert_eq!(
+        summary(&out)["selected_count"],
+        summary(&reference)["selected_count"]
+    );
+}
+
+#[test]
+fn standard_input_is_one_input_file() {
+    let dir = TempDir::new().unwrap();
+    let reference = dir.path().join("reference");
+    assert!(
+        select(&fixture("labeled.csv"), &fixture("pool.csv"), &reference)
+            .status()
+            .unwrap()
+            .success()
+    );
+    let out = dir.path().join("from-stdin");
+    let output = run_with_stdin(
+        select(Path::new("-"), &fixture("pool.csv"), &out),
+        &fs::read(fixture("labeled.csv")).unwrap(),
+    );
+    assert!(output.status.success(), "{output:?}");
+    assert_eq!(candidate_ids(&out), candidate_ids(&reference));
+
+    // A bad cell on standard input is located as `standard input line N`.
+    let mut bad = fs::read_to_string(fixture("labeled.csv")).unwrap();
+    bad = bad.replacen("5.5670", "five", 1);
+    let out = dir.path().join("bad-stdin");
+    let output = run_with_stdin(
+        select(Path::new("-"), &fixture("pool.csv"), &out),
+        bad.as_bytes(),
+    );
+    assert_eq!(output.status.code(), Some(2), "{output:?}");
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(
+        stderr.contains("standard input line 2") && stderr.contains("`y`"),
+        "{stderr}"
+    );
+    assert!(!out.exists());
+
+    // Both inputs `-` is a usage error naming both flags.
+    let out = dir.path().join("both");
+    let output = run_with_stdin(select(Path::new("-"), Path::new("-"), &out), b"");
+    assert_eq!(output.status.code(), Some(2), "{output:?}");
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(
+        stderr.contains("--labeled") && stderr.contains("--pool"),
+        "{stderr}"
+    );
+    assert!(!out.exists());
+}
+
+#[test]
+fn eight_gigabyte_sparse_file_exits_2_at_line_3() {
+    let dir = TempDir::new().unwrap();
+    let pool = dir.path().join("pool.csv");
+    let text = fs::read_to_string(fixture("pool.csv")).unwrap();
+    let head: String = text.lines().take(2).map(|l| format!("{l}\n")).collect();
+    fs::write(&pool, head).unwrap();
+    fs::OpenOptions::new()
+        .write(true)
+        .open(&pool)
+        .unwrap()
+        .set_len(8 << 30)
+        .unwrap();
+    let out = dir.path().join("out");
+    let output = select(&fixture("labeled.csv"), &pool, &out)
+        .output()
+        .unwrap();
+    assert_eq!(output.status.code(), Some(2), "{output:?}");
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(stderr.contains("pool.csv line 3"), "{stderr}");
+    assert!(stderr.len() < 2000, "stderr is {} bytes", stderr.len());
+    assert!(!out.exists());
+}
+
+#[test]
+fn control_character_in_an_id_is_a_located_error() {
+    let dir = TempDir::new().unwrap();
+    let pool = dir.path().join("pool.csv");
+    let text = fs::read_to_string(fixture("pool.csv")).unwrap();
+    fs::write(&pool, text.replacen("LKS-P-000002", "LKS-P\0-000002", 1)).unwrap();
+    let out = dir.path().join("out");
+    let output = select(&fixture("labeled.csv"), &pool, &out)
+        .output()
+        .unwrap();
+    assert_eq!(output.status.code(), Some(2), "{output:?}");
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(
+        stderr.contains("pool.csv line 3") && stderr.contains("U+0000"),
+        "{stderr}"
+    );
+    assert!(!out.exists());
+}

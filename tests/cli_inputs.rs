@@ -197,3 +197,92 @@ fn control_character_in_an_id_is_a_located_error() {
     );
     assert!(!out.exists());
 }
+
+/// The fixtures with every weight (column `w`) multiplied by `scale`, and optionally the
+/// first labeled weight replaced by `first_labeled`.
+fn scaled_weights(dir: &Path, scale: f64, first_labeled: Option<&str>) -> (PathBuf, PathBuf) {
+    let mut paths = Vec::new();
+    for name in ["labeled.csv", "pool.csv"] {
+        let mut reader = csv::Reader::from_path(fixture(name)).unwrap();
+        let header = reader.headers().unwrap().clone();
+        let w = header.iter().position(|h| h == "w").unwrap();
+        let path = dir.join(name);
+        let mut writer = csv::Writer::from_path(&path).unwrap();
+        writer.write_record(&header).unwrap();
+        for (row, record) in reader.records().enumerate() {
+            let mut cells: Vec<String> = record.unwrap().iter().map(str::to_string).collect();
+            let value: f64 = cells[w].parse().unwrap();
+            cells[w] = format!("{:e}", value * scale);
+            if let (0, Some(first), "labeled.csv") = (row, first_labeled, name) {
+                cells[w] = first.to_string();
+            }
+            writer.write_record(&cells).unwrap();
+        }
+        writer.flush().unwrap();
+        paths.push(path);
+    }
+    (paths.remove(0), paths.remove(0))
+}
+
+fn weighted_select(labeled: &Path, pool: &Path, out: &Path) -> Output {
+    select(labeled, pool, out)
+        .args(["--weight-column", "w"])
+        .output()
+        .unwrap()
+}
+
+#[test]
+fn one_huge_labeled_weight_gives_a_finite_ess_and_the_low_ess_warning() {
+    // Kish ESS of 299 weights near 1 and one of 1e160: (sum w)^2 / sum w^2 = 1 to within
+    // 1e-150 (hand computation), so 1.0 of 300 rows, far below the 10% warning threshold.
+    let dir = TempDir::new().unwrap();
+    let (labeled, pool) = scaled_weights(dir.path(), 1.0, Some("1e160"));
+    let out = dir.path().join("out");
+    let output = weighted_select(&labeled, &pool, &out);
+    assert!(output.status.success(), "{output:?}");
+    let summary = summary(&out);
+    let ess = summary["labeled_ess"].as_f64().expect("a finite ESS");
+    assert!((ess - 1.0).abs() < 1e-9, "{ess}");
+    let warnings = summary["warnings"].as_array().unwrap();
+    assert!(
+        warnings
+            .iter()
+            .any(|w| w.as_str().unwrap().contains("effective sample size")),
+        "{warnings:?}"
+    );
+}
+
+#[test]
+fn weights_from_1e_minus_300_to_1e306_select_as_the_unscaled_ones() {
+    // Only ratios of weights enter the p-values (design.md 2.2), so scaling every weight by
+    // one constant must leave the shortlist and the ESS as they are.
+    let dir = TempDir::new().unwrap();
+    let reference = dir.path().join("reference");
+    let output = weighted_select(&fixture("labeled.csv"), &fixture("pool.csv"), &reference);
+    assert!(output.status.success(), "{output:?}");
+    let expected_ess = summary(&reference)["labeled_ess"].as_f64().unwrap();
+    for (k, scale) in [1e-300, 1e300, 1e306].into_iter().enumerate() {
+        let sub = dir.path().join(format!("s{k}"));
+        fs::create_dir(&sub).unwrap();
+        let (labeled, pool) = scaled_weights(&sub, scale, None);
+        let out = sub.join("out");
+        let output = weighted_select(&labeled, &pool, &out);
+        assert!(output.status.success(), "scale {scale}: {output:?}");
+        assert_eq!(
+            candidate_ids(&out),
+            candidate_ids(&reference),
+            "scale {scale}"
+        );
+        let scaled = summary(&out);
+        assert_eq!(
+            scaled["selected_count"],
+            summary(&reference)["selected_count"]
+        );
+        let ess = scaled["labeled_ess"].as_f64().expect("finite ESS");
+        // Decimal scaling rounds each weight once (relative 1e-16), so 1e-9 is generous.
+        assert!(
+            (ess - expected_ess).abs() < 1e-9 * expected_ess,
+            "scale {scale}: {ess}"
+        );
+    }
+}

@@ -21,6 +21,7 @@ use crate::selection::pruning::Pruning;
 use crate::shift::weighting::{
     obtain_weights, Calibration, WeightSource, Weighting, WeightingError,
 };
+use crate::shift::weights::rescale_for_sums;
 use crate::shift::{
     unreliable_weights, ClassifierKind, Expansion, FeatureTransform, FitRows, ShiftError,
     ShiftParams, Unreliable,
@@ -402,10 +403,20 @@ pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable
         ("--labeled", &config.labeled_path),
         ("--pool", &config.pool_path),
     ])?;
-    let labeled = read_units(&config.labeled_path, Role::Labeled, &config.labeled_read)?;
-    let pool = read_units(&config.pool_path, Role::Pool, &config.pool_read)?;
+    let mut labeled = read_units(&config.labeled_path, Role::Labeled, &config.labeled_read)?;
+    let mut pool = read_units(&config.pool_path, Role::Pool, &config.pool_read)?;
     check_same_features(&labeled, &pool)?;
+    rescale_given_weights(&mut labeled, &mut pool);
     Ok((labeled, pool))
+}
+
+/// Given weights near the top of the float range are rescaled together by a power of two
+/// so that their sums stay finite ([`rescale_for_sums`]; ratios, p-values and ties are
+/// unchanged). A no-op for realistic weights and without a weight column.
+pub(crate) fn rescale_given_weights(labeled: &mut UnitTable, pool: &mut UnitTable) {
+    if let (Some(labeled), Some(pool)) = (labeled.weight.as_mut(), pool.weight.as_mut()) {
+        rescale_for_sums(labeled, pool);
+    }
 }
 
 /// The run's weights (none, given or fitted; see [`crate::shift::weighting`]), with errors mapped

@@ -286,3 +286,65 @@ fn weights_from_1e_minus_300_to_1e306_select_as_the_unscaled_ones() {
         );
     }
 }
+
+#[test]
+fn ids_in_both_files_are_named_in_a_warning() {
+    // The pool with two labeled ids appended: both must be named, with the count.
+    let dir = TempDir::new().unwrap();
+    let pool = dir.path().join("pool.csv");
+    let mut text = fs::read_to_string(fixture("pool.csv")).unwrap();
+    text.push_str("LKS-A-000001,5.0,1.0,0,0,0,0,0\nLKS-A-000002,5.0,1.0,0,0,0,0,0\n");
+    fs::write(&pool, text).unwrap();
+    let out = dir.path().join("out");
+    let output = select(&fixture("labeled.csv"), &pool, &out)
+        .output()
+        .unwrap();
+    assert!(output.status.success(), "{output:?}");
+    let warnings = summary(&out)["warnings"].clone();
+    let shared = warnings
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w.as_str().unwrap())
+        .find(|w| w.starts_with("ids in both files"))
+        .unwrap_or_else(|| panic!("no shared-id warning in {warnings}"));
+    assert!(
+        shared.contains("2 id(s)")
+            && shared.contains("`LKS-A-000001`")
+            && shared.contains("`LKS-A-000002`"),
+        "{shared}"
+    );
+    // The fixtures themselves share no id.
+    let clean = dir.path().join("clean");
+    assert!(
+        select(&fixture("labeled.csv"), &fixture("pool.csv"), &clean)
+            .status()
+            .unwrap()
+            .success()
+    );
+    assert!(!summary(&clean)["warnings"]
+        .to_string()
+        .contains("ids in both files"));
+}
+
+#[test]
+fn a_ten_megabyte_header_cell_does_not_flood_stderr() {
+    let dir = TempDir::new().unwrap();
+    let pool = dir.path().join("pool.csv");
+    let text = fs::read_to_string(fixture("pool.csv")).unwrap();
+    let huge = "h".repeat(10 << 20);
+    // Replace the prediction column's name, so `pred` is missing and the header is listed.
+    fs::write(&pool, text.replacen("pred", &huge, 1)).unwrap();
+    let out = dir.path().join("out");
+    let output = select(&fixture("labeled.csv"), &pool, &out)
+        .output()
+        .unwrap();
+    assert_eq!(output.status.code(), Some(2), "{output:?}");
+    let stderr = String::from_utf8_lossy(&output.stderr);
+    assert!(stderr.len() < 4096, "stderr is {} bytes", stderr.len());
+    assert!(
+        stderr.contains("pool.csv line 1") && stderr.contains('…'),
+        "{stderr}"
+    );
+    assert!(!out.exists());
+}

@@ -410,6 +410,45 @@ pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable
     Ok((labeled, pool))
 }
 
+/// At most this many shared ids are named in the warning.
+const SHARED_IDS_LISTED: usize = 10;
+
+/// The warning for ids that appear in both the labeled file and the pool: a unit both
+/// assayed and "untested" is usually a pool that was not updated after an assay, and it is
+/// shortlisted as if its outcome were unknown. Names up to ten ids (pool order) and the
+/// count; `None` when the files share no id.
+pub(crate) fn shared_ids_warning(labeled: &UnitTable, pool: &UnitTable) -> Option<String> {
+    let labeled_ids: std::collections::HashSet<&str> =
+        labeled.ids.iter().map(String::as_str).collect();
+    let shared: Vec<&str> = pool
+        .ids
+        .iter()
+        .map(String::as_str)
+        .filter(|id| labeled_ids.contains(id))
+        .collect();
+    if shared.is_empty() {
+        return None;
+    }
+    let listed: Vec<String> = shared
+        .iter()
+        .take(SHARED_IDS_LISTED)
+        .map(|id| format!("`{}`", crate::io::errors::shown_text(id)))
+        .collect();
+    let more = shared.len().saturating_sub(SHARED_IDS_LISTED);
+    Some(format!(
+        "ids in both files: {} id(s) appear in the labeled file and in the pool ({}{}); such a \
+         unit is both assayed and treated as untested. Remove assayed units from the pool, or \
+         check that the two files use different ids for different units.",
+        shared.len(),
+        listed.join(", "),
+        if more > 0 {
+            format!(" and {more} more")
+        } else {
+            String::new()
+        }
+    ))
+}
+
 /// Given weights near the top of the float range are rescaled together by a power of two
 /// so that their sums stay finite ([`rescale_for_sums`]; ratios, p-values and ties are
 /// unchanged). A no-op for realistic weights and without a weight column.

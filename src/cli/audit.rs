@@ -67,6 +67,9 @@ pub enum UnknownIds {
     Error,
 }
 
+/// A listed id and its line in the shortlist file.
+type ListedId = (String, u64);
+
 /// At most this many skipped ids are named in audit.json and the printed summary.
 const UNKNOWN_IDS_LISTED: usize = 50;
 
@@ -309,7 +312,7 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         .enumerate()
         .map(|(j, id)| (id.as_str(), j))
         .collect();
-    let (known, unknown): (Vec<(String, u64)>, Vec<(String, u64)>) = listed_ids
+    let (known, unknown): (Vec<ListedId>, Vec<ListedId>) = listed_ids
         .into_iter()
         .partition(|(id, _)| position.contains_key(id.as_str()));
     let listed_ids = known;

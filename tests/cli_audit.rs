@@ -245,12 +245,66 @@ fn unreachable_listed_units_are_poorly_covered() {
 }
 
 #[test]
-fn listed_ids_missing_from_the_pool_are_an_input_error() {
+fn listed_ids_missing_from_the_pool_are_skipped_and_named() {
+    let dir = TempDir::new().unwrap();
+    let shortlist = dir.path().join("list.csv");
+    fs::write(&shortlist, "id\nLKS-P-000001\nNOT-THERE\nLKS-P-000002\n").unwrap();
+    let out = dir.path().join("audit");
+    let output = audit(&shortlist, &out, &["--weight-column", "w"]);
+    assert_eq!(output.status.code(), Some(0), "{output:?}");
+    // Without --quiet the printed summary names the skipped id.
+    let labeled = fixture("labeled.csv");
+    let pool = fixture("pool.csv");
+    let loud_out = dir.path().join("audit-loud");
+    let output = run(&[
+        "audit",
+        "--shortlist",
+        shortlist.to_str().unwrap(),
+        "--labeled",
+        labeled.to_str().unwrap(),
+        "--pool",
+        pool.to_str().unwrap(),
+        "--threshold",
+        "6.5",
+        "--weight-column",
+        "w",
+        "--out",
+        loud_out.to_str().unwrap(),
+    ]);
+    assert_eq!(output.status.code(), Some(0), "{output:?}");
+    let stdout = String::from_utf8_lossy(&output.stdout);
+    assert!(
+        stdout.contains("NOT-THERE") && stdout.contains("line 3"),
+        "{stdout}"
+    );
+    let json: serde_json::Value =
+        serde_json::from_str(&fs::read_to_string(out.join("audit.json")).unwrap()).unwrap();
+    assert_eq!(json["unknown_ids"], serde_json::json!(["NOT-THERE"]));
+    assert_eq!(json["unknown_ids_count"], 1);
+    assert_eq!(json["listed_count"], 2);
+    let rows = fs::read_to_string(out.join("audit.csv")).unwrap();
+    assert!(!rows.contains("NOT-THERE"), "{rows}");
+
+    // Nothing left to audit: still exit 2.
+    let none = dir.path().join("none.csv");
+    fs::write(&none, "id\nNOT-THERE\n").unwrap();
+    let out_none = dir.path().join("audit-none");
+    let output = audit(&none, &out_none, &["--weight-column", "w"]);
+    assert_eq!(output.status.code(), Some(2));
+    assert!(!out_none.exists());
+}
+
+#[test]
+fn listed_ids_missing_from_the_pool_are_an_input_error_when_strict() {
     let dir = TempDir::new().unwrap();
     let shortlist = dir.path().join("list.csv");
     fs::write(&shortlist, "id\nLKS-P-000001\nNOT-THERE\n").unwrap();
     let out = dir.path().join("audit");
-    let output = audit(&shortlist, &out, &["--weight-column", "w"]);
+    let output = audit(
+        &shortlist,
+        &out,
+        &["--weight-column", "w", "--unknown-ids", "error"],
+    );
     assert_eq!(output.status.code(), Some(2));
     let stderr = String::from_utf8_lossy(&output.stderr);
     assert!(

@@ -11,7 +11,8 @@ use std::path::PathBuf;
 use clap::Args;
 use serde::Serialize;
 
-use crate::io::{read_id_list, OutputSet};
+use crate::io::errors::shown_text;
+use crate::io::{check_one_stdin, read_id_list, OutputSet};
 use crate::report::html::{shift_part, Finding, Part, Report, Table};
 use crate::report::shift_section;
 use crate::report::{tool_info, ToolInfo, CAUTIONS};
@@ -19,8 +20,8 @@ use crate::shift::weighting::{Calibration, FittedWeights, Weighting};
 use crate::workflows::audit::{audit_shortlist, AuditOutcome, POOL_PROBABILITY_LIMIT};
 
 use super::common::{
-    obtain_run_weights, read_inputs, report_pointer, selection_inputs, weighting_is_fitted,
-    weights_method, SelectArgs, SelectConfig,
+    obtain_run_weights, read_inputs, report_pointer, selection_inputs, shared_ids_warning,
+    weighting_is_fitted, weights_method, SelectArgs, SelectConfig,
 };
 use super::{commit_outputs, print_stdout, Failure, StepStatus};
 
@@ -50,9 +51,27 @@ pub struct AuditArgs {
     /// Id column of the shortlist file [default: the value of --id].
     #[arg(long, value_name = "NAME")]
     pub shortlist_id: Option<String>,
+    /// Listed ids that are not in the pool (e.g. compounds assayed since): `skip` audits
+    /// the others and names the skipped ids in audit.json and the printed summary; `error`
+    /// stops with exit code 2.
+    #[arg(long, value_enum, default_value_t = UnknownIds::Skip)]
+    pub unknown_ids: UnknownIds,
     #[command(flatten)]
     pub selection: SelectArgs,
 }
+
+/// What `audit` does with listed ids that are not in the pool.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, clap::ValueEnum)]
+pub enum UnknownIds {
+    Skip,
+    Error,
+}
+
+/// A listed id and its line in the shortlist file.
+type ListedId = (String, u64);
+
+/// At most this many skipped ids are named in audit.json and the printed summary.
+const UNKNOWN_IDS_LISTED: usize = 50;
 
 /// `audit.json`.
 #[derive(Debug, Serialize)]
@@ -81,6 +100,10 @@ struct AuditSummary<'a> {
     pool_probability_limit: f64,
     warnings: &'a [String],
     cautions: Vec<&'static str>,
+    /// Listed ids not in the pool and skipped (`--unknown-ids skip`), the first
+    /// [`UNKNOWN_IDS_LISTED`] in list order; `unknown_ids_count` counts them all.
+    unknown_ids: Vec<String>,
+    unknown_ids_count: usize,
 }
 
 fn audit_csv(ids: &[(String, u64)], outcome: &AuditOutcome) -> Vec<u8> {
@@ -267,9 +290,15 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         .clone()
         .unwrap_or_else(|| args.selection.input.id.clone());
     let shortlist_path = args.shortlist.clone();
+    let args_unknown = args.unknown_ids;
     let config = SelectConfig::try_from(args.selection)?;
     config.refuse_batch_design("audit")?;
     let status = StepStatus::new(config.quiet);
+    check_one_stdin(&[
+        ("--shortlist", &shortlist_path),
+        ("--labeled", &config.labeled_path),
+        ("--pool", &config.pool_path),
+    ])?;
     status.step("reading the labeled and pool files");
     let (labeled, pool) = read_inputs(&config)?;
     let listed_ids = read_id_list(
@@ -284,15 +313,18 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         .enumerate()
         .map(|(j, id)| (id.as_str(), j))
         .collect();
-    let missing: Vec<String> = listed_ids
+    let (known, unknown): (Vec<ListedId>, Vec<ListedId>) = listed_ids
+        .into_iter()
+        .partition(|(id, _)| position.contains_key(id.as_str()));
+    let listed_ids = known;
+    let missing: Vec<String> = unknown
         .iter()
-        .filter(|(id, _)| !position.contains_key(id.as_str()))
-        .map(|(id, line)| format!("`{id}` (line {line})"))
+        .map(|(id, line)| format!("`{}` (line {line})", shown_text(id)))
         .collect();
-    if !missing.is_empty() {
+    if !missing.is_empty() && (args_unknown == UnknownIds::Error || listed_ids.is_empty()) {
         return Err(Failure::Input(format!(
             "{}: {} listed id(s) are not in the pool file {}: {}{}. Hint: audit a list drawn from \
-             this pool, with ids spelled as in its `{}` column.",
+             this pool, with ids spelled as in its `{}` column{}.",
             shortlist_path.display(),
             missing.len(),
             config.pool_path.display(),
@@ -303,7 +335,12 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
                 .collect::<Vec<_>>()
                 .join(", "),
             if missing.len() > 10 { ", ..." } else { "" },
-            config.pool_read.id
+            config.pool_read.id,
+            if listed_ids.is_empty() {
+                " (no listed id is in the pool, so there is nothing to audit)"
+            } else {
+                "; --unknown-ids skip audits the others"
+            }
         )));
     }
     let listed: Vec<usize> = listed_ids
@@ -352,6 +389,7 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         })
         .unwrap_or_default();
     warnings.extend(outcome.warnings.iter().cloned());
+    warnings.extend(shared_ids_warning(&labeled, &pool));
     // Unreliable fitted weights are the first finding: `select` would refuse them.
     let unreliable = weighting
         .fitted()
@@ -394,6 +432,12 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         pool_probability_limit: POOL_PROBABILITY_LIMIT,
         warnings: &warnings,
         cautions: CAUTIONS.to_vec(),
+        unknown_ids: unknown
+            .iter()
+            .take(UNKNOWN_IDS_LISTED)
+            .map(|(id, _)| id.clone())
+            .collect(),
+        unknown_ids_count: unknown.len(),
     };
     let mut files = OutputSet::new();
     files.add("audit.csv", audit_csv(&listed_ids, &outcome));
@@ -440,6 +484,24 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
             outcome.poorly_covered_count,
             100.0 * summary.poorly_covered_share
         );
+        if !unknown.is_empty() {
+            let _ = writeln!(
+                text,
+                "  skipped, not in the pool: {} listed id(s): {}{}",
+                unknown.len(),
+                missing
+                    .iter()
+                    .take(UNKNOWN_IDS_LISTED)
+                    .cloned()
+                    .collect::<Vec<_>>()
+                    .join(", "),
+                if unknown.len() > UNKNOWN_IDS_LISTED {
+                    format!(" and {} more", unknown.len() - UNKNOWN_IDS_LISTED)
+                } else {
+                    String::new()
+                }
+            );
+        }
         if !warnings.is_empty() {
             let _ = writeln!(text, "findings (most serious first):");
             for w in &warnings {

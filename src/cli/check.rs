@@ -10,7 +10,7 @@ use serde::Serialize;
 
 use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::ScoreKind;
-use crate::io::{check_same_features, read_units, OutputSet, Role};
+use crate::io::{check_one_stdin, check_same_features, read_units, OutputSet, Role};
 use crate::report::{tool_info, ToolInfo};
 use crate::selection::pipeline::{Procedure, SelectOptions};
 use crate::shift::reliability::percent_two_significant;
@@ -264,6 +264,7 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
     check_fdr.check()?;
     let params = a.fit.params(a.seed, a.fdr)?;
     let (labeled_read, pool_read) = a.input.read_options(None, &a.features, a.delimiter);
+    check_one_stdin(&[("--labeled", &a.input.labeled), ("--pool", &a.input.pool)])?;
     let labeled = read_units(&a.input.labeled, Role::Labeled, &labeled_read)?;
     let pool = read_units(&a.input.pool, Role::Pool, &pool_read)?;
     check_same_features(&labeled, &pool)?;

@@ -13,7 +13,7 @@ use linfa::ParamGuard;
 
 use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::{ScoreKind, Thresholds};
-use crate::io::{check_same_features, read_units, ReadOptions, Role, UnitTable};
+use crate::io::{check_one_stdin, check_same_features, read_units, ReadOptions, Role, UnitTable};
 use crate::report::html::{selection_report, shift_part, WeightsMethod};
 use crate::report::UnreliableMark;
 use crate::selection::pipeline::{LabeledInput, PoolInput, Procedure, SelectOptions};
@@ -21,6 +21,7 @@ use crate::selection::pruning::Pruning;
 use crate::shift::weighting::{
     obtain_weights, Calibration, WeightSource, Weighting, WeightingError,
 };
+use crate::shift::weights::rescale_for_sums;
 use crate::shift::{
     unreliable_weights, ClassifierKind, Expansion, FeatureTransform, FitRows, ShiftError,
     ShiftParams, Unreliable,
@@ -439,10 +440,63 @@ pub(crate) fn thresholds_of(table: &UnitTable, constant: Option<f64>) -> Thresho
 /// Read both files with the configured columns (and the same feature columns in both when
 /// weights are fitted).
 pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable), Failure> {
-    let labeled = read_units(&config.labeled_path, Role::Labeled, &config.labeled_read)?;
-    let pool = read_units(&config.pool_path, Role::Pool, &config.pool_read)?;
+    check_one_stdin(&[
+        ("--labeled", &config.labeled_path),
+        ("--pool", &config.pool_path),
+    ])?;
+    let mut labeled = read_units(&config.labeled_path, Role::Labeled, &config.labeled_read)?;
+    let mut pool = read_units(&config.pool_path, Role::Pool, &config.pool_read)?;
     check_same_features(&labeled, &pool)?;
+    rescale_given_weights(&mut labeled, &mut pool);
     Ok((labeled, pool))
+}
+
+/// At most this many shared ids are named in the warning.
+const SHARED_IDS_LISTED: usize = 10;
+
+/// The warning for ids that appear in both the labeled file and the pool: a unit both
+/// assayed and "untested" is usually a pool that was not updated after an assay, and it is
+/// shortlisted as if its outcome were unknown. Names up to ten ids (pool order) and the
+/// count; `None` when the files share no id.
+pub(crate) fn shared_ids_warning(labeled: &UnitTable, pool: &UnitTable) -> Option<String> {
+    let labeled_ids: std::collections::HashSet<&str> =
+        labeled.ids.iter().map(String::as_str).collect();
+    let shared: Vec<&str> = pool
+        .ids
+        .iter()
+        .map(String::as_str)
+        .filter(|id| labeled_ids.contains(id))
+        .collect();
+    if shared.is_empty() {
+        return None;
+    }
+    let listed: Vec<String> = shared
+        .iter()
+        .take(SHARED_IDS_LISTED)
+        .map(|id| format!("`{}`", crate::io::errors::shown_text(id)))
+        .collect();
+    let more = shared.len().saturating_sub(SHARED_IDS_LISTED);
+    Some(format!(
+        "ids in both files: {} id(s) appear in the labeled file and in the pool ({}{}); such a \
+         unit is both assayed and treated as untested. Remove assayed units from the pool, or \
+         check that the two files use different ids for different units.",
+        shared.len(),
+        listed.join(", "),
+        if more > 0 {
+            format!(" and {more} more")
+        } else {
+            String::new()
+        }
+    ))
+}
+
+/// Given weights near the top of the float range are rescaled together by a power of two
+/// so that their sums stay finite ([`rescale_for_sums`]; ratios, p-values and ties are
+/// unchanged). A no-op for realistic weights and without a weight column.
+pub(crate) fn rescale_given_weights(labeled: &mut UnitTable, pool: &mut UnitTable) {
+    if let (Some(labeled), Some(pool)) = (labeled.weight.as_mut(), pool.weight.as_mut()) {
+        rescale_for_sums(labeled, pool);
+    }
 }
 
 /// The run's weights (none, given or fitted; see [`crate::shift::weighting`]), with errors mapped

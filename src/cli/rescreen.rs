@@ -15,7 +15,7 @@ use crate::workflows::rescreen::{compare, ChangeCounts, CurrentUnit, PreviousUni
 
 use super::common::{
     obtain_run_weights, read_inputs, reliability_gate, report_pointer, selection_inputs,
-    selection_report_page, SelectArgs, SelectConfig,
+    selection_report_page, shared_ids_warning, SelectArgs, SelectConfig,
 };
 use super::{commit_outputs, print_stdout, Failure};
 
@@ -158,6 +158,7 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     if let Some(fitted) = weighting.fitted() {
         add_shift(&mut summary, shift_section(fitted, &labeled.feature_names));
     }
+    summary.warnings.extend(shared_ids_warning(&labeled, &pool));
     summary.unreliable_weights = unreliable;
 
     let current: Vec<CurrentUnit<'_>> = (0..pool.len())

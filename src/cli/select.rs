@@ -13,7 +13,7 @@ use crate::shift::weighting::WeightSource;
 use super::batch_design::{apply_design, read_design};
 use super::common::{
     obtain_run_weights, read_inputs, reliability_gate, report_pointer, selection_inputs,
-    selection_report_page, weighting_is_fitted,
+    selection_report_page, shared_ids_warning, weighting_is_fitted,
 };
 pub use super::common::{SelectArgs, SelectConfig};
 use super::{commit_outputs, print_stdout, Failure, PhaseTimer, StepStatus};
@@ -114,6 +114,7 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     if let Some(fitted) = weighting.fitted() {
         add_shift(&mut summary, shift_section(fitted, &labeled.feature_names));
     }
+    summary.warnings.extend(shared_ids_warning(labeled, pool));
     summary.unreliable_weights = unreliable;
     let mut files = OutputSet::new();
     files.add(

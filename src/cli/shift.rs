@@ -10,8 +10,8 @@ use std::path::{Path, PathBuf};
 use clap::Args;
 
 use crate::io::{
-    check_same_features, delimiter_for, read_units, resolve_features, ColumnKind, InputError,
-    OutputSet, ReadOptions, Role, UnitTable,
+    check_one_stdin, check_same_features, read_units_choosing, resolve_features, ColumnKind,
+    InputError, OutputSet, ReadOptions, Role, UnitTable,
 };
 use crate::report::html::{shift_report_html, ShiftPart};
 use crate::report::plots::{balance_svg, overlap_svg, weights_svg};
@@ -159,31 +159,6 @@ impl TryFrom<ShiftArgs> for ShiftConfig {
     }
 }
 
-/// Header names of a file as `read_units` sees them (trimmed, byte order mark removed), or
-/// `None` when the header cannot be read (then `read_units` reports why).
-fn header_names(path: &Path, delimiter: Option<u8>) -> Option<Vec<String>> {
-    let mut reader = csv::ReaderBuilder::new()
-        .delimiter(delimiter_for(path, delimiter))
-        .flexible(true)
-        .from_path(path)
-        .ok()?;
-    let header = reader.byte_headers().ok()?;
-    header
-        .iter()
-        .enumerate()
-        .map(|(i, raw)| {
-            let raw = if i == 0 {
-                raw.strip_prefix(b"\xEF\xBB\xBF").unwrap_or(raw)
-            } else {
-                raw
-            };
-            std::str::from_utf8(raw.trim_ascii())
-                .ok()
-                .map(str::to_string)
-        })
-        .collect()
-}
-
 /// Read the ids and feature columns of one file; `shift` needs no prediction column.
 ///
 /// `read_units` always reads a prediction column, so it is pointed at the first selected
@@ -197,18 +172,19 @@ pub(crate) fn read_feature_table(
     role: Role,
     base: &ReadOptions,
 ) -> Result<UnitTable, Failure> {
-    let stand_in = header_names(path, base.delimiter)
-        .and_then(|names| {
-            let resolved = resolve_features(&base.features, &names).ok()?;
-            let first = resolved.first()?;
-            names.iter().any(|n| n == first).then(|| first.clone())
-        })
-        .unwrap_or_else(|| base.id.clone());
     let options = ReadOptions {
-        prediction: stand_in.clone(),
+        prediction: base.id.clone(),
         ..base.clone()
     };
-    let mut table = read_units(path, role, &options).map_err(|mut e| {
+    let mut stand_in = base.id.clone();
+    let choose = |names: &[String]| {
+        let resolved = resolve_features(&base.features, names).ok()?;
+        let first = resolved.first()?;
+        let chosen = names.iter().any(|n| n == first).then(|| first.clone())?;
+        stand_in = chosen.clone();
+        Some(chosen)
+    };
+    let mut table = read_units_choosing(path, role, &options, choose).map_err(|mut e| {
         // A bad cell in the stand-in column is a bad feature value.
         if let InputError::NotANumber { kind, column, .. }
         | InputError::NotFinite { kind, column, .. }
@@ -230,6 +206,10 @@ pub fn run(args: ShiftArgs) -> Result<(), Failure> {
     let config = ShiftConfig::try_from(args)?;
     let status = StepStatus::new(config.quiet);
     status.step("reading the labeled and pool files");
+    check_one_stdin(&[
+        ("--labeled", &config.labeled_path),
+        ("--pool", &config.pool_path),
+    ])?;
     let labeled = read_feature_table(&config.labeled_path, Role::Labeled, &config.read)?;
     let pool = read_feature_table(&config.pool_path, Role::Pool, &config.read)?;
     check_same_features(&labeled, &pool)?;

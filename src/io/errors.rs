@@ -97,6 +97,18 @@ pub enum InputError {
         column: String,
     },
 
+    #[error("{file} line {line}, column `{column}`: id `{id}` contains the control character U+{code:04X}. Hint: ids must be printable text (no NUL, tab or line break inside); check whether the file is damaged or was saved in another encoding.", file = .path.display())]
+    ControlInId {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        id: String,
+        code: u32,
+    },
+
+    #[error("{first} and {second} are both `-` (standard input), which can be read only once. Hint: give at most one input as `-` and the others as files.")]
+    StdinTwice { first: String, second: String },
+
     #[error("{file} line {line}, column `{column}`: id `{id}` already appears on line {first_line}. Hint: ids must be unique within a file; remove the repeated row or give it its own id.", file = .path.display())]
     DuplicateId {
         path: PathBuf,
@@ -151,12 +163,36 @@ pub enum InputError {
 const LISTED_NAMES: usize = 20;
 /// Cell values longer than this many characters are cut in messages.
 const SHOWN_VALUE_CHARS: usize = 60;
+/// Names (header cells, ids in listings) longer than this many characters are cut in
+/// messages: a 10 MB header cell must not flood the terminal.
+pub const SHOWN_NAME_CHARS: usize = 200;
+
+/// Text as shown in messages: cut after [`SHOWN_NAME_CHARS`] characters with an ellipsis
+/// and the full length, control characters escaped.
+pub fn shown_text(text: &str) -> String {
+    let mut chars = text.chars();
+    let mut out: String = chars
+        .by_ref()
+        .take(SHOWN_NAME_CHARS)
+        .flat_map(|c| {
+            if c.is_control() {
+                c.escape_default().collect::<Vec<_>>()
+            } else {
+                vec![c]
+            }
+        })
+        .collect();
+    if chars.next().is_some() {
+        out.push_str(&format!("… ({} characters)", text.chars().count()));
+    }
+    out
+}
 
 pub(super) fn name_list(names: &[String]) -> String {
     let mut text = names
         .iter()
         .take(LISTED_NAMES)
-        .map(|name| format!("`{name}`"))
+        .map(|name| format!("`{}`", shown_text(name)))
         .collect::<Vec<_>>()
         .join(", ");
     if names.len() > LISTED_NAMES {
@@ -186,7 +222,7 @@ fn field_count_detail(found: usize, header: &[String]) -> String {
         format!(
             "{} extra after column `{}`",
             found - header.len(),
-            header.last().map_or("", String::as_str)
+            shown_text(header.last().map_or("", String::as_str))
         )
     }
 }

@@ -9,16 +9,21 @@
 //! - [`columns`]: column selection ([`resolve_features`] with ranges such as `f1..f32`,
 //!   [`check_same_features`], header lookup);
 //! - [`errors`]: [`InputError`] and the wording of its messages;
+//! - [`source`]: [`Source`], an input read once (file, named pipe, or `-` for standard
+//!   input) that knows its line ends, so messages give editor lines without reopening;
 //! - [`output`]: [`write_atomic`] and [`OutputSet`].
 
 pub mod columns;
 pub mod errors;
 pub mod output;
 pub mod read;
+pub mod source;
 
 pub use columns::{check_same_features, resolve_features};
 pub use errors::InputError;
 pub use output::{write_atomic, OutputSet};
 pub use read::{
-    delimiter_for, parse_finite, read_id_list, read_units, ColumnKind, ReadOptions, Role, UnitTable,
+    delimiter_for, parse_finite, read_id_list, read_units, read_units_choosing, ColumnKind,
+    ReadOptions, Role, UnitTable,
 };
+pub use source::{check_one_stdin, Source};

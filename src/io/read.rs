@@ -13,13 +13,13 @@
 use std::collections::hash_map::Entry;
 use std::collections::{HashMap, HashSet};
 use std::fmt;
-use std::fs::File;
 use std::hash::{DefaultHasher, Hash, Hasher};
-use std::io::{self, Read, Seek, SeekFrom};
+use std::io::Read;
 use std::path::{Path, PathBuf};
 
 use super::columns::{ChosenColumns, Column, Header};
 use super::errors::{shown, InputError};
+use super::source::{display_path, Source};
 
 /// Which file a table came from; used in messages ("labeled file", "pool file").
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -183,58 +183,25 @@ fn csv_reader<R: Read>(delimiter: u8, input: R) -> csv::Reader<R> {
 ///
 /// csv records the position where it *started looking* for a record, which is before any
 /// blank lines it skipped and, in CRLF files, before the `\n` that ends the previous row.
-/// So peek at the file there and count the newlines that precede the record's first byte.
-/// Only called when reporting an error.
-fn editor_line(path: &Path, position: &csv::Position) -> u64 {
-    let mut line = position.line();
-    let Ok(mut file) = File::open(path) else {
-        return line;
-    };
-    if file.seek(SeekFrom::Start(position.byte())).is_err() {
-        return line;
-    }
-    let mut buffer = [0u8; 4096];
-    let mut at_file_start = position.byte() == 0;
-    loop {
-        let n = match file.read(&mut buffer) {
-            Ok(0) | Err(_) => return line,
-            Ok(n) => n,
-        };
-        let mut bytes = &buffer[..n];
-        if at_file_start {
-            // csv strips a UTF-8 byte order mark before the first record.
-            bytes = bytes.strip_prefix(b"\xef\xbb\xbf").unwrap_or(bytes);
-            at_file_start = false;
-        }
-        for &byte in bytes {
-            match byte {
-                b'\n' => line += 1,
-                b'\r' => {}
-                _ => return line,
-            }
-        }
-    }
-}
-
-/// Editor line of a record read by `reader` (error path only).
-fn record_line(path: &Path, record: &csv::ByteRecord) -> u64 {
-    record
-        .position()
-        .map_or(0, |position| editor_line(path, position))
+/// The [`Source`] remembers the recent runs of line-end bytes, so the newlines between that
+/// position and the record's first byte are counted without reading the file again.
+fn editor_line(source: &Source, position: &csv::Position) -> u64 {
+    position.line() + source.newlines_from(position.byte())
 }
 
 /// Map a csv error to an [`InputError`]; `reached_line` (where the reader stopped) stands in
 /// when csv gives no position, as for I/O errors.
 fn csv_error(
+    source_reader: &Source,
     path: &Path,
     delimiter: u8,
     header: &[String],
     reached_line: u64,
     error: csv::Error,
 ) -> InputError {
-    let line = error
-        .position()
-        .map_or(reached_line, |position| editor_line(path, position));
+    let line = error.position().map_or(reached_line, |position| {
+        editor_line(source_reader, position)
+    });
     match error.into_kind() {
         csv::ErrorKind::Io(source) => InputError::Read {
             path: path.to_path_buf(),
@@ -326,9 +293,8 @@ impl FeatureBuffer {
 }
 
 /// Why a cell is not a usable number (decided on the error path only).
-fn number_error(path: &Path, record: &csv::ByteRecord, column: &Column) -> InputError {
+fn number_error(path: &Path, line: u64, record: &csv::ByteRecord, column: &Column) -> InputError {
     let cell = record.get(column.index).unwrap_or_default().trim_ascii();
-    let line = record_line(path, record);
     let path = path.to_path_buf();
     let name = column.name.clone();
     if cell.is_empty() {
@@ -376,34 +342,63 @@ pub fn parse_finite(cell: &[u8]) -> Option<f64> {
 }
 
 #[inline]
-fn number_cell(path: &Path, record: &csv::ByteRecord, column: &Column) -> Result<f64, InputError> {
+fn number_cell(
+    path: &Path,
+    line: u64,
+    record: &csv::ByteRecord,
+    column: &Column,
+) -> Result<f64, InputError> {
     match record.get(column.index).and_then(parse_finite) {
         Some(value) => Ok(value),
-        None => Err(number_error(path, record, column)),
+        None => Err(number_error(path, line, record, column)),
     }
 }
 
 #[inline]
-fn weight_cell(path: &Path, record: &csv::ByteRecord, column: &Column) -> Result<f64, InputError> {
+fn weight_cell(
+    path: &Path,
+    line: u64,
+    record: &csv::ByteRecord,
+    column: &Column,
+) -> Result<f64, InputError> {
     match record.get(column.index).and_then(parse_finite) {
         Some(value) if value > 0.0 => Ok(value),
-        _ => Err(number_error(path, record, column)),
+        _ => Err(number_error(path, line, record, column)),
     }
 }
 
+/// An id cell: trimmed, non-empty UTF-8 without control characters (a NUL, a tab or a
+/// line break inside an id is almost always a damaged file, and would garble every output
+/// that lists ids).
 #[inline]
-fn id_cell(path: &Path, record: &csv::ByteRecord, column: &Column) -> Result<String, InputError> {
+fn id_cell(
+    path: &Path,
+    line: u64,
+    record: &csv::ByteRecord,
+    column: &Column,
+) -> Result<String, InputError> {
     let cell = record.get(column.index).unwrap_or_default().trim_ascii();
     match std::str::from_utf8(cell) {
-        Ok(id) if !id.is_empty() => Ok(id.to_owned()),
+        Ok(id) if !id.is_empty() => {
+            if let Some(bad) = id.chars().find(|c| c.is_control()) {
+                return Err(InputError::ControlInId {
+                    path: path.to_path_buf(),
+                    line,
+                    column: column.name.clone(),
+                    id: shown(cell),
+                    code: bad as u32,
+                });
+            }
+            Ok(id.to_owned())
+        }
         Ok(_) => Err(InputError::EmptyId {
             path: path.to_path_buf(),
-            line: record_line(path, record),
+            line,
             column: column.name.clone(),
         }),
         Err(_) => Err(InputError::InvalidUtf8 {
             path: path.to_path_buf(),
-            line: record_line(path, record),
+            line,
             column: column.name.clone(),
         }),
     }
@@ -421,53 +416,74 @@ fn id_cell(path: &Path, record: &csv::ByteRecord, column: &Column) -> Result<Str
 /// empty, NaN or infinite cell, empty or non-UTF-8 id, duplicate id, weight <= 0, wrong
 /// number of fields, feature selection that does not resolve.
 pub fn read_units(path: &Path, role: Role, options: &ReadOptions) -> Result<UnitTable, InputError> {
-    let (mut reader, delimiter, file_len) = open_table(path, options.delimiter)?;
-    let header = read_header(&mut reader, path, role, delimiter)?;
-    let columns = header.choose_columns(options)?;
+    read_units_choosing(path, role, options, |_| None)
+}
+
+/// [`read_units`] for a file whose prediction column is chosen once the header is known:
+/// `choose` gets the header names and may return the column to read as the prediction
+/// (else `options.prediction` is read). `shift` uses it to read a feature in place of a
+/// prediction without opening the file twice (a named pipe or standard input can be read
+/// only once).
+///
+/// # Errors
+/// As [`read_units`].
+pub fn read_units_choosing(
+    path: &Path,
+    role: Role,
+    options: &ReadOptions,
+    choose: impl FnOnce(&[String]) -> Option<String>,
+) -> Result<UnitTable, InputError> {
+    let shown_path = display_path(path);
+    let (mut reader, delimiter, file_len) = open_table(path, &shown_path, options.delimiter)?;
+    let header = read_header(&mut reader, &shown_path, role, delimiter)?;
+    let columns = match choose(&header.names) {
+        Some(prediction) => header.choose_columns(&ReadOptions {
+            prediction,
+            ..options.clone()
+        })?,
+        None => header.choose_columns(options)?,
+    };
     let rows = read_rows(
         &mut reader,
-        path,
+        &shown_path,
         delimiter,
         &header.names,
         &columns,
         file_len,
     )?;
-    finish_table(path, role, delimiter, header.line, columns, rows)
+    let header_line = header.line;
+    let mut table = finish_table(&shown_path, role, header_line, columns, rows)?;
+    table.path = path.to_path_buf();
+    Ok(table)
 }
 
-/// Open `path` for reading (not a directory) with the delimiter it gets; also returns the
-/// file length, from which the row count is estimated.
+/// Open `path` for reading (not a directory; `-` is standard input) with the delimiter it
+/// gets; also returns the file length (0 for a pipe), from which the row count is estimated.
 fn open_table(
     path: &Path,
+    shown_path: &Path,
     explicit_delimiter: Option<u8>,
-) -> Result<(csv::Reader<File>, u8, u64), InputError> {
-    let open_error = |source| InputError::Open {
-        path: path.to_path_buf(),
+) -> Result<(csv::Reader<Source>, u8, u64), InputError> {
+    let source = Source::open(path).map_err(|source| InputError::Open {
+        path: shown_path.to_path_buf(),
         source,
-    };
-    let file = File::open(path).map_err(open_error)?;
-    let metadata = file.metadata().map_err(open_error)?;
-    if metadata.is_dir() {
-        return Err(open_error(io::Error::other(
-            "it is a directory, not a file",
-        )));
-    }
-    let file_len = metadata.len();
+    })?;
+    let file_len = source.len_hint();
     let delimiter = delimiter_for(path, explicit_delimiter);
-    Ok((csv_reader(delimiter, file), delimiter, file_len))
+    Ok((csv_reader(delimiter, source), delimiter, file_len))
 }
 
 /// The header row: its editor line and its names, trimmed (each must be UTF-8).
 fn read_header<'a>(
-    reader: &mut csv::Reader<File>,
+    reader: &mut csv::Reader<Source>,
     path: &'a Path,
     role: Role,
     delimiter: u8,
 ) -> Result<Header<'a>, InputError> {
-    let header_record = reader
-        .byte_headers()
-        .map_err(|error| csv_error(path, delimiter, &[], 1, error))?
-        .clone();
+    let header_record = match reader.byte_headers() {
+        Ok(record) => record.clone(),
+        Err(error) => return Err(csv_error(reader.get_ref(), path, delimiter, &[], 1, error)),
+    };
     if header_record.is_empty() {
         return Err(InputError::EmptyFile {
             path: path.to_path_buf(),
@@ -476,7 +492,7 @@ fn read_header<'a>(
     }
     let header_line = header_record
         .position()
-        .map_or(1, |position| editor_line(path, position));
+        .map_or(1, |position| editor_line(reader.get_ref(), position));
     let mut names = Vec::with_capacity(header_record.len());
     for (field, raw) in header_record.iter().enumerate() {
         match std::str::from_utf8(raw.trim_ascii()) {
@@ -506,7 +522,39 @@ struct Rows {
     threshold: Vec<f64>,
     weight: Vec<f64>,
     features: FeatureBuffer,
+    lines: RowLines,
 }
+
+/// Editor line of every data row, stored compactly: row `r` is on line `r + shift`, and the
+/// shift changes only at blank lines and quoted line breaks, so only the changes are kept.
+/// Used to name both lines of a repeated id without reading the file again.
+#[derive(Default)]
+struct RowLines {
+    /// `(first row, shift)`, increasing in row.
+    shifts: Vec<(usize, u64)>,
+}
+
+impl RowLines {
+    #[inline]
+    fn note(&mut self, row: usize, line: u64) {
+        let shift = line.wrapping_sub(row as u64);
+        if !matches!(self.shifts.last(), Some(&(_, last)) if last == shift) {
+            self.shifts.push((row, shift));
+        }
+    }
+
+    fn line(&self, row: usize) -> u64 {
+        let index = self.shifts.partition_point(|&(first, _)| first <= row);
+        index
+            .checked_sub(1)
+            .map_or(0, |i| (row as u64).wrapping_add(self.shifts[i].1))
+    }
+}
+
+/// At most this many rows are reserved before the first grows: a guess from the file size
+/// beyond it (a sparse or mostly empty file) would ask for more memory than exists; growing
+/// past it costs a few copies.
+const MAX_RESERVED_ROWS: u64 = 1 << 22;
 
 impl Rows {
     fn new(feature_count: usize) -> Self {
@@ -517,6 +565,7 @@ impl Rows {
             threshold: Vec::new(),
             weight: Vec::new(),
             features: FeatureBuffer::new(feature_count),
+            lines: RowLines::default(),
         }
     }
 
@@ -541,24 +590,28 @@ impl Rows {
     fn push(
         &mut self,
         path: &Path,
+        line: u64,
         record: &csv::ByteRecord,
         columns: &ChosenColumns,
     ) -> Result<(), InputError> {
-        self.ids.push(id_cell(path, record, &columns.id)?);
+        self.lines.note(self.ids.len(), line);
+        self.ids.push(id_cell(path, line, record, &columns.id)?);
         self.prediction
-            .push(number_cell(path, record, &columns.prediction)?);
+            .push(number_cell(path, line, record, &columns.prediction)?);
         if let Some(column) = &columns.outcome {
-            self.outcome.push(number_cell(path, record, column)?);
+            self.outcome.push(number_cell(path, line, record, column)?);
         }
         if let Some(column) = &columns.threshold {
-            self.threshold.push(number_cell(path, record, column)?);
+            self.threshold
+                .push(number_cell(path, line, record, column)?);
         }
         if let Some(column) = &columns.weight {
-            self.weight.push(weight_cell(path, record, column)?);
+            self.weight.push(weight_cell(path, line, record, column)?);
         }
         self.features.start_row();
         for (f, column) in columns.features.iter().enumerate() {
-            self.features.set(f, number_cell(path, record, column)?);
+            self.features
+                .set(f, number_cell(path, line, record, column)?);
         }
         self.features.finish_row();
         Ok(())
@@ -567,7 +620,7 @@ impl Rows {
 
 /// Read every data row, checking each chosen cell.
 fn read_rows(
-    reader: &mut csv::Reader<File>,
+    reader: &mut csv::Reader<Source>,
     path: &Path,
     delimiter: u8,
     header_names: &[String],
@@ -583,6 +636,7 @@ fn read_rows(
             Err(error) => {
                 let reached_line = reader.position().line();
                 return Err(csv_error(
+                    reader.get_ref(),
                     path,
                     delimiter,
                     header_names,
@@ -593,13 +647,21 @@ fn read_rows(
         }
         if rows.ids.is_empty() {
             // Size every column from the file length and this row's length; generous,
-            // since untouched capacity is never paged in.
+            // since untouched capacity is never paged in, but bounded.
             let row_bytes = (record.as_slice().len() + record.len()).max(1) as u64;
             let estimate = (file_len / row_bytes).saturating_mul(5) / 4 + 16;
-            let estimate = estimate.min(file_len / 2 + 16) as usize;
+            let estimate = estimate.min(file_len / 2 + 16).min(MAX_RESERVED_ROWS) as usize;
             rows.reserve(estimate, columns);
         }
-        rows.push(path, &record, columns)?;
+        let line = match record.position() {
+            Some(position) => {
+                let line = editor_line(reader.get_ref(), position);
+                reader.get_mut().forget_before(position.byte());
+                line
+            }
+            None => 0,
+        };
+        rows.push(path, line, &record, columns)?;
     }
     Ok(rows)
 }
@@ -608,7 +670,6 @@ fn read_rows(
 fn finish_table(
     path: &Path,
     role: Role,
-    delimiter: u8,
     header_line: u64,
     columns: ChosenColumns,
     rows: Rows,
@@ -620,6 +681,7 @@ fn finish_table(
         threshold,
         weight,
         features,
+        lines,
     } = rows;
     if ids.is_empty() {
         return Err(InputError::NoRows {
@@ -629,11 +691,10 @@ fn finish_table(
         });
     }
     if let Some((first_row, row)) = find_duplicate_id(&ids) {
-        let lines = row_lines(path, delimiter, &[first_row, row]);
         return Err(InputError::DuplicateId {
             path: path.to_path_buf(),
-            line: lines[1],
-            first_line: lines[0],
+            line: lines.line(row),
+            first_line: lines.line(first_row),
             column: columns.id.name,
             id: shown(ids[row].as_bytes()),
         });
@@ -697,30 +758,6 @@ fn find_duplicate_id(ids: &[String]) -> Option<(usize, usize)> {
     None
 }
 
-/// Editor lines of the given data rows (0-based), found by reading the file again.
-/// Error path only; rows that cannot be found get line 0.
-fn row_lines(path: &Path, delimiter: u8, rows: &[usize]) -> Vec<u64> {
-    let mut lines = vec![0; rows.len()];
-    let Some(&last) = rows.iter().max() else {
-        return lines;
-    };
-    let Ok(file) = File::open(path) else {
-        return lines;
-    };
-    let mut reader = csv_reader(delimiter, file);
-    let mut record = csv::ByteRecord::new();
-    let mut row = 0;
-    while row <= last && matches!(reader.read_byte_record(&mut record), Ok(true)) {
-        for (slot, &wanted) in lines.iter_mut().zip(rows) {
-            if wanted == row {
-                *slot = record_line(path, &record);
-            }
-        }
-        row += 1;
-    }
-    lines
-}
-
 /// Read a list of ids (one per data row) from column `column` of a CSV/TSV file, e.g. a
 /// shortlist made earlier. Returns each id with its 1-based line number.
 ///
@@ -732,14 +769,17 @@ pub fn read_id_list(
     column: &str,
     delimiter: Option<u8>,
 ) -> Result<Vec<(String, u64)>, InputError> {
-    let file = File::open(path).map_err(|source| InputError::Open {
-        path: path.to_path_buf(),
+    let shown_path = display_path(path);
+    let source = Source::open(path).map_err(|source| InputError::Open {
+        path: shown_path.clone(),
         source,
     })?;
+    let delimiter = delimiter_for(path, delimiter);
+    let path = shown_path.as_path();
     let mut reader = csv::ReaderBuilder::new()
-        .delimiter(delimiter_for(path, delimiter))
+        .delimiter(delimiter)
         .flexible(true)
-        .from_reader(io::BufReader::new(file));
+        .from_reader(source);
     let malformed = |e: csv::Error| InputError::Malformed {
         path: path.to_path_buf(),
         line: e.position().map_or(0, |p| p.line()),
@@ -809,7 +849,9 @@ mod tests {
     //! numbers lines (header = line 1).
     use super::*;
     use crate::io::columns::check_same_features;
+    use crate::io::source::check_one_stdin;
     use std::fs;
+    use std::io;
     use tempfile::TempDir;
 
     fn write(dir: &TempDir, name: &str, content: &[u8]) -> PathBuf {
@@ -1332,6 +1374,96 @@ mod tests {
         check_same_features(&labeled, &pool).unwrap();
     }
 
+    #[test]
+    fn control_characters_in_ids_are_located_errors() {
+        for (content, code) in [
+            (&b"id,pred\na,1\nb\x00c,2\n"[..], 0),
+            (b"id,pred\na,1\n\"b\nc\",2\n", 10),
+            (b"id\tpred\na\t1\n\"b\x07\"\t2\n", 7),
+        ] {
+            let name = if code == 7 { "pool.tsv" } else { "pool.csv" };
+            let (error, message) = read_error(name, content, Role::Pool, &ReadOptions::new("pred"));
+            assert!(
+                matches!(error, InputError::ControlInId { line: 3, code: c, .. } if c == code),
+                "{message}"
+            );
+            assert_located(&message, name, 3, "id");
+            assert!(message.contains(&format!("U+{code:04X}")), "{message}");
+        }
+    }
+
+    #[test]
+    fn named_pipe_is_read_once() {
+        // A FIFO can be read only once; earlier versions reopened the file for line numbers
+        // and hung. A writer thread feeds it; a bad cell must still give the editor line.
+        let dir = TempDir::new().unwrap();
+        for (content, expect_line) in [
+            (&b"id,pred\n\na,1\nb,2\n"[..], None),
+            (b"id,pred\r\na,1\r\n\r\nb,x\r\n", Some(4)),
+            (b"id,pred\na,1\n\nb,2\na,3\n", Some(5)),
+        ] {
+            let path = dir.path().join("pipe.csv");
+            let _ = fs::remove_file(&path);
+            let status = std::process::Command::new("mkfifo")
+                .arg(&path)
+                .status()
+                .unwrap();
+            assert!(status.success());
+            let writer_path = path.clone();
+            let writer = std::thread::spawn(move || {
+                fs::write(writer_path, content).unwrap();
+            });
+            let result = read_units(&path, Role::Pool, &ReadOptions::new("pred"));
+            writer.join().unwrap();
+            match expect_line {
+                None => assert_eq!(result.unwrap().ids, ["a", "b"]),
+                Some(line) => {
+                    let message = result.unwrap_err().to_string();
+                    assert!(message.contains(&format!("line {line}")), "{message}");
+                }
+            }
+        }
+    }
+
+    #[test]
+    fn sparse_file_is_a_located_error_not_an_abort() {
+        // 8 GB of NUL bytes after a valid header and row (a sparse file, cheap on Linux):
+        // the row reservation must stay bounded and the endless line must stop at the
+        // line-length cap with the line it is on.
+        let dir = TempDir::new().unwrap();
+        let path = write(&dir, "pool.csv", b"id,pred\na,0.5\n");
+        let file = fs::OpenOptions::new().write(true).open(&path).unwrap();
+        file.set_len(8 << 30).unwrap();
+        drop(file);
+        let error = read_units(&path, Role::Pool, &ReadOptions::new("pred")).unwrap_err();
+        let message = error.to_string();
+        assert!(
+            matches!(error, InputError::Read { line: 3, .. }),
+            "{message}"
+        );
+        assert!(
+            message.contains("line 3") && message.contains("MiB"),
+            "{message}"
+        );
+        assert!(message.len() < 500, "{message}");
+    }
+
+    #[test]
+    fn at_most_one_input_is_standard_input() {
+        let file = Path::new("a.csv");
+        let dash = Path::new("-");
+        check_one_stdin(&[("--labeled", dash), ("--pool", file)]).unwrap();
+        check_one_stdin(&[("--labeled", file), ("--pool", file)]).unwrap();
+        let error =
+            check_one_stdin(&[("--shortlist", file), ("--labeled", dash), ("--pool", dash)])
+                .unwrap_err();
+        let message = error.to_string();
+        assert!(
+            message.contains("--labeled") && message.contains("--pool") && message.contains("Hint"),
+            "{message}"
+        );
+    }
+
     // ---- line numbers as an editor shows them ----
 
     #[test]
@@ -1347,7 +1479,7 @@ mod tests {
             // CRLF blank lines
             (b"id,pred\r\na,1\r\n\r\n\r\nb,x\r\n", 5),
             // a quoted cell spanning two lines pushes later rows down
-            (b"id,pred\n\"a\nA\",1\nb,x\n", 4),
+            (b"id,pred\na,\"1\n\"\nb,x\n", 4),
             // byte order mark, blank lines before the header
             (b"\xef\xbb\xbf\n\nid,pred\na,1\nb,x", 5),
         ];
@@ -1461,10 +1593,10 @@ mod tests {
     fn quoted_fields_bom_crlf_and_spaced_header() {
         let dir = TempDir::new().unwrap();
         let content =
-            b"\xef\xbb\xbf id , pred \r\n\"x \"\"1\"\"\",\" 1.5e2 \"\r\n\r\n\"y\nz\",\"-0.5\"\r\n";
+            b"\xef\xbb\xbf id , pred \r\n\"x \"\"1\"\"\",\" 1.5e2 \"\r\n\r\n\"y,z\",\"-0.5\r\n\"\r\n";
         let path = write(&dir, "pool.csv", content);
         let table = read_units(&path, Role::Pool, &ReadOptions::new("pred")).unwrap();
-        assert_eq!(table.ids, ["x \"1\"", "y\nz"]);
+        assert_eq!(table.ids, ["x \"1\"", "y,z"]);
         assert_eq!(table.prediction, [std_f64("1.5e2"), std_f64("-0.5")]);
     }
 

@@ -254,14 +254,21 @@ pub struct SelectionOutcome {
 /// assert_eq!(weighbridge::selection::pipeline::kish_ess(&[1.0, 1.0, 1.0]), 3.0);
 /// assert!((weighbridge::selection::pipeline::kish_ess(&[1.0, 3.0]) - 1.6).abs() < 1e-15);
 /// ```
+///
+/// Computed on the weights divided by the power of two below the largest, so that neither
+/// the squares of large weights (1e160 squared overflows) nor those of tiny ones (1e-300
+/// squared underflows) reach the sums; the ratio is scale-free, so the value is the same.
 pub fn kish_ess(weights: &[f64]) -> f64 {
-    let sum: f64 = weights.iter().sum();
-    let sum_sq: f64 = weights.iter().map(|w| w * w).sum();
-    if sum_sq == 0.0 {
-        0.0
-    } else {
-        sum * sum / sum_sq
+    let max = weights.iter().fold(0.0f64, |a, &b| a.max(b));
+    if !(max > 0.0 && max.is_finite()) {
+        return 0.0;
     }
+    let scale = crate::shift::weights::power_of_two_below(max);
+    let (sum, sum_sq) = weights.iter().fold((0.0, 0.0), |(s, s2), &w| {
+        let v = w / scale;
+        (s + v, s2 + v * v)
+    });
+    sum * sum / sum_sq
 }
 
 fn check_len(what: &'static str, expected: usize, got: usize) -> Result<(), SelectError> {

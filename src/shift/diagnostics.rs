@@ -349,8 +349,11 @@ pub fn kish_effective_sample_size(weights: &[f64]) -> Result<f64, ShiftError> {
             reason: "at least one positive weight",
         });
     }
+    // Divide by the power of two below the largest weight (exact), so that squares of
+    // weights near 1e160 or 1e-300 neither overflow nor underflow.
+    let scale = super::weights::power_of_two_below(max);
     let (s, s2) = weights.iter().fold((0.0, 0.0), |(s, s2), w| {
-        let v = w / max;
+        let v = w / scale;
         (s + v, s2 + v * v)
     });
     Ok(s * s / s2)

@@ -240,9 +240,78 @@ pub(crate) fn summarize(
     }
 }
 
+/// The largest power of two not above `x` (positive and finite), exactly: `x` with its
+/// mantissa bits cleared. Subnormal `x` gives the smallest normal power, 2^-1022.
+///
+/// Weights are rescaled only by such powers: multiplying or dividing by a power of two is
+/// exact (short of underflow), so every ratio of weights, and with it every exact tie of
+/// design.md 2.4, is unchanged.
+pub fn power_of_two_below(x: f64) -> f64 {
+    debug_assert!(x > 0.0 && x.is_finite());
+    if x < f64::MIN_POSITIVE {
+        f64::MIN_POSITIVE
+    } else {
+        f64::from_bits(x.to_bits() & 0xfff0_0000_0000_0000)
+    }
+}
+
+/// The power of two `2^k` (k <= 0) by which weights with largest value `max`, `count` of
+/// them, are multiplied so that any sum of them stays below 2^1000 (far from overflow).
+/// 1 when they already do, which is every realistic run.
+pub fn overflow_safe_scale(max: f64, count: usize) -> f64 {
+    if !(max > 0.0 && max.is_finite()) {
+        return 1.0;
+    }
+    // max < 2^(e + 1) and count + 1 <= 2^c, so any sum is below 2^(e + 1 + c).
+    let e = (power_of_two_below(max).to_bits() >> 52) as i64 - 1023;
+    let c = 64 - (count as u64 + 1).leading_zeros() as i64;
+    let k = (1000 - (e + 1 + c)).min(0);
+    f64::from_bits(((k + 1023).max(1) as u64) << 52)
+}
+
+/// Rescale given weights of the labeled and the pool table together by the power of two of
+/// [`overflow_safe_scale`], so that their sums cannot overflow (weights near 1.7e308 give
+/// an infinite total otherwise). The p-values depend on ratios of weights only, so the
+/// selection is unchanged. Returns the factor applied (1 for realistic weights).
+pub fn rescale_for_sums(labeled: &mut [f64], pool: &mut [f64]) -> f64 {
+    let max = labeled
+        .iter()
+        .chain(pool.iter())
+        .fold(0.0f64, |a, &b| a.max(b));
+    let scale = overflow_safe_scale(max, labeled.len() + pool.len());
+    if scale != 1.0 {
+        for w in labeled.iter_mut().chain(pool.iter_mut()) {
+            *w *= scale;
+        }
+    }
+    scale
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn powers_of_two_are_exact() {
+        assert_eq!(power_of_two_below(1.0), 1.0);
+        assert_eq!(power_of_two_below(3.0), 2.0);
+        assert_eq!(power_of_two_below(0.3), 0.25);
+        assert_eq!(power_of_two_below(f64::MAX), 2f64.powi(1023));
+        assert_eq!(power_of_two_below(5e-324), f64::MIN_POSITIVE);
+        assert_eq!(overflow_safe_scale(3.0, 1000), 1.0);
+        let scale = overflow_safe_scale(1.7e308, 2300);
+        assert_eq!(scale, power_of_two_below(scale), "a power of two");
+        assert!(1.7e308 * scale * 2301.0 < 2f64.powi(1001));
+        // Ratios survive exactly.
+        let (mut labeled, mut pool) = (vec![1.7e308, 3.0e307], vec![1.1e308, 1e-300]);
+        let before = labeled[1] / labeled[0];
+        let scale = rescale_for_sums(&mut labeled, &mut pool);
+        assert!(scale < 1.0);
+        assert_eq!(labeled[1] / labeled[0], before);
+        assert_eq!(pool[0], 1.1e308 * scale);
+        assert!(labeled.iter().chain(&pool).sum::<f64>().is_finite());
+        assert!(pool[1] > 0.0);
+    }
 
     #[test]
     fn quantile_matches_numpy_linear() {

@@ -199,9 +199,15 @@ pub struct SelectArgs {
     /// Seed of the random draws (randomized p-values, pruning).
     #[arg(long, default_value_t = crate::random::DEFAULT_SEED)]
     pub seed: u64,
-    /// Output folder (created if missing).
-    #[arg(long, default_value = "weighbridge-out", value_name = "DIR")]
-    pub out: PathBuf,
+    /// Output folder (created if missing); it holds this run's outputs only: files an
+    /// earlier run wrote there and this one does not are removed [default: weighbridge-out;
+    /// rescreen: weighbridge-rescreen; audit: weighbridge-audit].
+    #[arg(long, value_name = "DIR")]
+    pub out: Option<PathBuf>,
+    /// Write into --out even if it holds files that no weighbridge run made (files of
+    /// other names are left alone; same-named ones are overwritten).
+    #[arg(long)]
+    pub force: bool,
     /// Field delimiter [default: tab for .tsv/.tab files, else comma].
     #[arg(long, value_enum)]
     pub delimiter: Option<DelimiterArg>,
@@ -273,6 +279,9 @@ impl DelimiterArg {
     }
 }
 
+/// `--out` of `select` when not given (`rescreen` and `audit` have their own).
+pub const DEFAULT_OUT: &str = "weighbridge-out";
+
 /// Checked configuration of one `select` run.
 #[derive(Debug, Clone)]
 pub struct SelectConfig {
@@ -285,6 +294,8 @@ pub struct SelectConfig {
     /// Where the weights come from.
     pub weights: WeightSource,
     pub out: PathBuf,
+    /// Write into a folder the tool did not make (`--force`).
+    pub force: bool,
     pub quiet: bool,
     /// Write report.html too.
     pub report: bool,
@@ -351,7 +362,8 @@ impl TryFrom<SelectArgs> for SelectConfig {
             threshold: a.input.threshold,
             options,
             weights,
-            out: a.out,
+            out: a.out.unwrap_or_else(|| PathBuf::from(DEFAULT_OUT)),
+            force: a.force,
             quiet: a.quiet,
             report: a.report,
             allow_unreliable_weights: a.allow_unreliable_weights,

@@ -17,7 +17,7 @@ use super::common::{
     obtain_run_weights, read_inputs, reliability_gate, report_pointer, selection_inputs,
     selection_report_page, SelectArgs, SelectConfig,
 };
-use super::{commit_outputs, print_stdout, Failure};
+use super::{commit_outputs, open_output, print_stdout, Failure};
 
 const RESCREEN_HELP: &str = "\
 Runs the same selection as `select` (every option applies) on the current files, then
@@ -125,6 +125,26 @@ fn read_previous(dir: &Path) -> Result<(Vec<PreviousUnit>, Value), Failure> {
     Ok((units, summary))
 }
 
+/// `--out` must not be `--previous`: the new run would replace the one it is compared
+/// with, and the next rescreen would compare a run with itself. Compared after
+/// canonicalizing (`./round1`, `round1/` and a symlink to it are the same folder); an
+/// `--out` that does not exist yet cannot be `--previous`, which must exist.
+fn refuse_out_is_previous(out: &Path, previous: &Path) -> Result<(), Failure> {
+    let same = match (std::fs::canonicalize(out), std::fs::canonicalize(previous)) {
+        (Ok(out), Ok(previous)) => out == previous,
+        _ => false,
+    };
+    if same {
+        return Err(Failure::Input(format!(
+            "--out {} is the --previous folder: the new run would overwrite the run it is \
+             compared with. Hint: give a new --out folder, e.g. --out {}-next.",
+            out.display(),
+            previous.display().to_string().trim_end_matches('/')
+        )));
+    }
+    Ok(())
+}
+
 /// A number from a summary by JSON pointer (e.g. "/shift/auc").
 fn number_at(summary: &Value, pointer: &str) -> Option<f64> {
     summary.pointer(pointer).and_then(Value::as_f64)
@@ -133,7 +153,24 @@ fn number_at(summary: &Value, pointer: &str) -> Option<f64> {
 /// Run `rescreen`.
 pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     let previous_dir = args.previous.clone();
-    let config = SelectConfig::try_from(args.selection)?;
+    let mut selection = args.selection;
+    // Not select's default: `rescreen --previous weighbridge-out` must not overwrite the
+    // run it compares with.
+    selection
+        .out
+        .get_or_insert_with(|| PathBuf::from("weighbridge-rescreen"));
+    let config = SelectConfig::try_from(selection)?;
+    refuse_out_is_previous(&config.out, &previous_dir)?;
+    let folder = open_output(
+        &config.out,
+        config.force,
+        &[
+            &config.labeled_path,
+            &config.pool_path,
+            &previous_file(&previous_dir, "candidates.csv"),
+            &previous_file(&previous_dir, "summary.json"),
+        ],
+    )?;
     let (previous, previous_summary) = read_previous(&previous_dir)?;
     let (labeled, pool) = read_inputs(&config)?;
     let weighting = obtain_run_weights(&config, &labeled, &pool)?;
@@ -281,7 +318,7 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         serde_json::to_vec_pretty(&report)
             .map_err(|e| Failure::Internal(format!("cannot serialize the changes: {e}")))?,
     );
-    commit_outputs(files, &config.out)?;
+    commit_outputs(folder, files, "rescreen")?;
 
     if !config.quiet {
         let mut text = String::new();

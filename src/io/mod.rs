@@ -9,16 +9,20 @@
 //! - [`columns`]: column selection ([`resolve_features`] with ranges such as `f1..f32`,
 //!   [`check_same_features`], header lookup);
 //! - [`errors`]: [`InputError`] and the wording of its messages;
-//! - [`output`]: [`write_atomic`] and [`OutputSet`].
+//! - [`output`]: [`write_atomic`] and [`OutputSet`];
+//! - [`folder`]: [`RunFolder`]: the output folder holds one run's outputs (lock, manifest,
+//!   stale files, leftovers of killed runs, refusing folders the tool did not make).
 
 pub mod columns;
 pub mod errors;
+pub mod folder;
 pub mod output;
 pub mod read;
 
 pub use columns::{check_same_features, resolve_features};
 pub use errors::InputError;
-pub use output::{write_atomic, OutputSet};
+pub use folder::{FolderError, Manifest, RunFolder, MANIFEST};
+pub use output::{abandon_temporaries, write_atomic, OutputSet};
 pub use read::{
     delimiter_for, parse_finite, read_id_list, read_units, ColumnKind, ReadOptions, Role, UnitTable,
 };

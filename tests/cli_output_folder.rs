@@ -573,3 +573,70 @@ fn leftovers_of_a_killed_run_are_removed_by_the_next_run() {
     ok(&run(&select_args(&out, &[])));
     assert_eq!(names(&out), [MANIFEST, "candidates.csv", "summary.json"]);
 }
+
+#[test]
+fn rescreen_validates_the_previous_folder_with_located_errors() {
+    let dir = TempDir::new().unwrap();
+    let round1 = dir.path().join("round1");
+    ok(&run(&select_args(&round1, &[])));
+    let labeled = fixture("labeled.csv");
+    let pool = fixture("pool.csv");
+    let out = dir.path().join("round2");
+    let rescreen = || {
+        run(&[
+            "rescreen",
+            "--previous",
+            s(&round1),
+            "--labeled",
+            s(&labeled),
+            "--pool",
+            s(&pool),
+            "--threshold",
+            "6.5",
+            "--weight-column",
+            "w",
+            "--quiet",
+            "--out",
+            s(&out),
+        ])
+    };
+    let candidates = fs::read_to_string(round1.join("candidates.csv")).unwrap();
+    let summary = fs::read(round1.join("summary.json")).unwrap();
+    let lines: Vec<&str> = candidates.lines().collect();
+    let refused = |expected: &[&str]| {
+        let output = rescreen();
+        assert_eq!(output.status.code(), Some(2), "{}", stderr(&output));
+        let message = stderr(&output);
+        for part in expected {
+            assert!(message.contains(part), "{part:?} not in {message}");
+        }
+        assert!(!out.exists(), "nothing may be written");
+    };
+
+    // A duplicated id: both lines named (line 2 is the first data row).
+    let mut duplicated = lines.clone();
+    duplicated.push(lines[1]);
+    fs::write(round1.join("candidates.csv"), duplicated.join("\n") + "\n").unwrap();
+    let last = duplicated.len();
+    refused(&["candidates.csv", &format!("line {last}"), "also on line 2"]);
+
+    // `selected` neither true nor false.
+    let header: Vec<&str> = lines[0].split(',').collect();
+    let column = header.iter().position(|h| *h == "selected").unwrap();
+    let mut cells: Vec<String> = lines[1].split(',').map(String::from).collect();
+    cells[column] = "yes".to_string();
+    let mut odd = lines.clone();
+    let row = cells.join(",");
+    odd[1] = &row;
+    fs::write(round1.join("candidates.csv"), odd.join("\n") + "\n").unwrap();
+    refused(&["candidates.csv", "line 2", "`yes`"]);
+
+    // A summary.json that is valid JSON but no run's summary.
+    fs::write(round1.join("candidates.csv"), &candidates).unwrap();
+    fs::write(round1.join("summary.json"), r#"{"hello":1}"#).unwrap();
+    refused(&["summary.json", "`fdr`"]);
+
+    // Restored: works.
+    fs::write(round1.join("summary.json"), &summary).unwrap();
+    ok(&rescreen());
+}

@@ -94,6 +94,8 @@ fn read_previous(dir: &Path) -> Result<(Vec<PreviousUnit>, Value), Failure> {
         column("selected")?,
     );
     let mut units = Vec::new();
+    // Line of each id seen, to name both lines of a duplicate.
+    let mut seen: std::collections::HashMap<String, u64> = std::collections::HashMap::new();
     for record in reader.records() {
         let record = record.map_err(|e| bad(e.to_string()))?;
         let line = record.position().map_or(0, |p| p.line());
@@ -103,12 +105,28 @@ fn read_previous(dir: &Path) -> Result<(Vec<PreviousUnit>, Value), Failure> {
                 .and_then(|v| v.trim().parse::<f64>().ok())
                 .ok_or_else(|| bad(format!("line {line}: `{}` is not a number", &record[index])))
         };
+        if let Some(first) = seen.insert(record[id].to_string(), line) {
+            return Err(bad(format!(
+                "line {line}: id `{}` is also on line {first}; a run's candidates.csv lists \
+                 each pool unit once",
+                &record[id]
+            )));
+        }
+        let chosen = match &record[selected] {
+            "true" => true,
+            "false" => false,
+            other => {
+                return Err(bad(format!(
+                    "line {line}: column `selected` is `{other}`, expected true or false"
+                )))
+            }
+        };
         units.push(PreviousUnit {
             id: record[id].to_string(),
             score: number(score)?,
             weight: number(weight)?,
             p_value: number(p)?,
-            selected: &record[selected] == "true",
+            selected: chosen,
         });
     }
     let summary_path = previous_file(dir, "summary.json");
@@ -122,6 +140,18 @@ fn read_previous(dir: &Path) -> Result<(Vec<PreviousUnit>, Value), Failure> {
                 summary_path.display()
             ))
         })?;
+    // Every summary.json since the first version has these keys (folders of earlier
+    // versions stay readable); `{"hello": 1}` is not a run's summary.
+    for key in ["fdr", "selected_count"] {
+        if summary.get(key).and_then(Value::as_f64).is_none() {
+            return Err(Failure::Input(format!(
+                "{}: no number `{key}`, so it is not the summary.json of a weighbridge run. \
+                 Hint: --previous must be the output folder of an earlier `select`, \
+                 `rescreen` or `demo` run.",
+                summary_path.display()
+            )));
+        }
+    }
     Ok((units, summary))
 }
 

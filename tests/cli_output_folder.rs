@@ -640,3 +640,48 @@ fn rescreen_validates_the_previous_folder_with_located_errors() {
     fs::write(round1.join("summary.json"), &summary).unwrap();
     ok(&rescreen());
 }
+
+#[test]
+fn rescreen_names_each_setting_that_differs_from_the_previous_run() {
+    let dir = TempDir::new().unwrap();
+    let round1 = dir.path().join("round1");
+    ok(&run(&select_args(&round1, &["--fdr", "0.1"])));
+    let labeled = fixture("labeled.csv");
+    let pool = fixture("pool.csv");
+    let rescreen = |out: &Path, fdr: &str| {
+        let output = run(&[
+            "rescreen",
+            "--previous",
+            s(&round1),
+            "--labeled",
+            s(&labeled),
+            "--pool",
+            s(&pool),
+            "--threshold",
+            "6.5",
+            "--weight-column",
+            "w",
+            "--fdr",
+            fdr,
+            "--out",
+            s(out),
+        ]);
+        ok(&output);
+        let changes: Value =
+            serde_json::from_slice(&fs::read(out.join("changes.json")).unwrap()).unwrap();
+        (
+            changes,
+            String::from_utf8_lossy(&output.stdout).into_owned(),
+        )
+    };
+    let (same, _) = rescreen(&dir.path().join("same"), "0.1");
+    assert_eq!(same["setting_changes"], serde_json::json!([]));
+    let (changed, stdout) = rescreen(&dir.path().join("changed"), "0.3");
+    assert_eq!(
+        changed["setting_changes"],
+        serde_json::json!([{"setting": "fdr", "previous": "0.1", "current": "0.3"}])
+    );
+    let first = changed["warnings"][0].as_str().unwrap();
+    assert!(first.contains("fdr 0.1 -> 0.3"), "{first}");
+    assert!(stdout.contains("fdr 0.1 -> 0.3"), "{stdout}");
+}

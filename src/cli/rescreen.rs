@@ -62,7 +62,78 @@ struct ChangesReport<'a> {
     #[serde(flatten)]
     counts: &'a ChangeCounts,
     diagnostics: Vec<Moved>,
+    /// Settings that differ from the previous run's summary.json (empty when none do).
+    setting_changes: Vec<SettingChange>,
     warnings: Vec<String>,
+}
+
+/// One setting that differs between the previous run and this one.
+#[derive(Debug, Serialize, PartialEq)]
+struct SettingChange {
+    setting: &'static str,
+    previous: String,
+    current: String,
+}
+
+/// The settings compared with the previous run, and where summary.json keeps them.
+const SETTINGS: &[(&str, &str)] = &[
+    ("threshold", "/inputs/threshold"),
+    ("fdr", "/fdr"),
+    ("procedure", "/procedure"),
+    ("pruning", "/pruning"),
+    ("score", "/score"),
+    ("pvalues", "/pvalues"),
+    ("weights", "/inputs/weights"),
+    ("features", "/shift/features"),
+    ("labeled_file", "/inputs/labeled_file"),
+];
+
+/// A setting as text for comparing and printing. Thresholds are normalized to `value C`
+/// (this version's form), since earlier versions may have stored the bare number or its
+/// string; a file is compared by canonical path when it exists.
+fn setting_text(setting: &str, value: &Value) -> String {
+    match (setting, value) {
+        ("threshold", Value::Number(n)) => format!("value {n}"),
+        ("threshold", Value::String(s)) if s.trim().parse::<f64>().is_ok() => {
+            format!("value {}", s.trim())
+        }
+        ("labeled_file", Value::String(s)) => std::fs::canonicalize(s)
+            .map(|p| p.display().to_string())
+            .unwrap_or_else(|_| s.clone()),
+        (_, Value::String(s)) => s.clone(),
+        (_, Value::Array(items)) => items
+            .iter()
+            .map(|v| v.as_str().map_or_else(|| v.to_string(), str::to_string))
+            .collect::<Vec<_>>()
+            .join(","),
+        (_, other) => other.to_string(),
+    }
+}
+
+/// The settings that differ. A setting the previous summary does not record (earlier
+/// versions, or no fitted weights so no features) is not compared; one recorded before but
+/// absent now (e.g. features when weights are no longer fitted) is "none".
+fn setting_changes(previous: &Value, current: &Value) -> Vec<SettingChange> {
+    SETTINGS
+        .iter()
+        .filter_map(|&(setting, pointer)| {
+            let before = previous.pointer(pointer).filter(|v| !v.is_null())?;
+            let before = setting_text(setting, before);
+            let now = current
+                .pointer(pointer)
+                .filter(|v| !v.is_null())
+                .map_or_else(|| "none".to_string(), |v| setting_text(setting, v));
+            let same = match (before.parse::<f64>(), now.parse::<f64>()) {
+                (Ok(a), Ok(b)) => a == b,
+                _ => before == now,
+            };
+            (!same).then_some(SettingChange {
+                setting,
+                previous: before,
+                current: now,
+            })
+        })
+        .collect()
 }
 
 fn previous_file(dir: &Path, name: &str) -> PathBuf {
@@ -267,7 +338,21 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     .filter(|m| m.previous.is_some() || m.current.is_some())
     .collect();
 
+    let setting_changes = setting_changes(&previous_summary, &current_summary);
     let mut warnings = Vec::new();
+    if !setting_changes.is_empty() {
+        warnings.push(format!(
+            "settings differ from the previous run ({}): the units newly selected and dropped \
+             below changed partly or wholly because of these settings, not only because the \
+             pool grew; rerun with the previous settings to see what the new units alone \
+             changed.",
+            setting_changes
+                .iter()
+                .map(|c| format!("{} {} -> {}", c.setting, c.previous, c.current))
+                .collect::<Vec<_>>()
+                .join("; ")
+        ));
+    }
     if counts.new_poorly_covered > 0 {
         warnings.push(format!(
             "{} of {} new pool units sit where the labeled set gives little support \
@@ -279,8 +364,15 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     if counts.dropped_pool_grew > 0 {
         warnings.push(format!(
             "{} previously selected units dropped only because the pool grew ({} -> {} units): \
-             their p-values did not move, but the BH line q k / m is stricter at every rank.",
-            counts.dropped_pool_grew, counts.previous_pool, counts.current_pool
+             their p-values did not move, but the BH line q k / m is stricter at every rank{}.",
+            counts.dropped_pool_grew,
+            counts.previous_pool,
+            counts.current_pool,
+            if setting_changes.is_empty() {
+                ""
+            } else {
+                " (or the changed settings moved it)"
+            }
         ));
     }
     warnings.extend(summary.warnings.iter().cloned());
@@ -290,6 +382,7 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         previous_folder: previous_dir.display().to_string(),
         counts: &counts,
         diagnostics,
+        setting_changes,
         warnings,
     };
     let mut changes = csv::Writer::from_writer(Vec::new());
@@ -404,4 +497,46 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         print_stdout(&text);
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use serde_json::json;
+
+    #[test]
+    fn setting_changes_name_each_difference_and_skip_unrecorded_ones() {
+        let previous = json!({
+            "fdr": 0.1, "procedure": "conditional", "pruning": "homogeneous",
+            "score": "clipped", "pvalues": "conservative",
+            "inputs": {"threshold": "6.5", "weights": "given in column w",
+                       "labeled_file": "no/such/labeled.csv"},
+        });
+        let mut current = previous.clone();
+        // An earlier version's bare threshold string equals this version's `value 6.5`.
+        current["inputs"]["threshold"] = json!("value 6.5");
+        current["fdr"] = json!(0.2);
+        current["shift"] = json!({"features": ["f1", "f2"]});
+        assert_eq!(
+            setting_changes(&previous, &current),
+            [SettingChange {
+                setting: "fdr",
+                previous: "0.1".to_string(),
+                current: "0.2".to_string()
+            }]
+        );
+        current["inputs"]["threshold"] = json!("value 7");
+        current["procedure"] = json!("bh");
+        let names: Vec<&str> = setting_changes(&previous, &current)
+            .iter()
+            .map(|c| c.setting)
+            .collect();
+        assert_eq!(names, ["threshold", "fdr", "procedure"]);
+        // Features recorded before, none now.
+        let fitted = json!({"shift": {"features": ["f1"]}});
+        let changes = setting_changes(&fitted, &json!({}));
+        assert_eq!(changes[0].previous, "f1");
+        assert_eq!(changes[0].current, "none");
+        assert!(setting_changes(&json!({}), &current).is_empty());
+    }
 }

@@ -467,6 +467,7 @@ fn a_held_folder_makes_the_second_run_wait_then_name_the_holder() {
         message.contains(&format!("process {}", std::process::id())),
         "{message}"
     );
+    assert!(message.contains("waiting up to 10 s"), "{message}");
     assert!(waited >= Duration::from_secs(10), "{waited:?}");
     assert!(waited < Duration::from_secs(30), "{waited:?}");
     assert_eq!(contents(&out), before);

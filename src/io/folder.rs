@@ -211,10 +211,22 @@ impl DirLock {
         };
         let handle = File::open(dir).map_err(io_error)?;
         let started = Instant::now();
+        let mut told = false;
         loop {
             match try_lock(&handle) {
                 Ok(true) => return Ok(DirLock { _handle: handle }),
                 Ok(false) if started.elapsed() < LOCK_WAIT => {
+                    // Say once why nothing happens (stderr, so outputs stay clean).
+                    if !told {
+                        told = true;
+                        eprintln!(
+                            "weighbridge: waiting up to {} s for another run{} using {}",
+                            LOCK_WAIT.as_secs(),
+                            lock_holder(&handle)
+                                .map_or_else(String::new, |pid| format!(" (process {pid})")),
+                            out.display()
+                        );
+                    }
                     std::thread::sleep(Duration::from_millis(25));
                 }
                 Ok(false) => {

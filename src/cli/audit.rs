@@ -23,7 +23,7 @@ use super::common::{
     obtain_run_weights, read_inputs, report_pointer, selection_inputs, shared_ids_warning,
     weighting_is_fitted, weights_method, SelectArgs, SelectConfig,
 };
-use super::{commit_outputs, print_stdout, Failure, StepStatus};
+use super::{commit_outputs, open_output, print_stdout, Failure, StepStatus};
 
 const AUDIT_HELP: &str = "\
 Takes a list of pool ids chosen earlier (by ranking, by an unweighted selection, by hand)
@@ -291,8 +291,18 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         .unwrap_or_else(|| args.selection.input.id.clone());
     let shortlist_path = args.shortlist.clone();
     let args_unknown = args.unknown_ids;
-    let config = SelectConfig::try_from(args.selection)?;
+    let mut selection = args.selection;
+    // Not select's folder: an audit there would remove select's summary.json as stale.
+    selection
+        .out
+        .get_or_insert_with(|| PathBuf::from("weighbridge-audit"));
+    let config = SelectConfig::try_from(selection)?;
     config.refuse_batch_design("audit")?;
+    let folder = open_output(
+        &config.out,
+        config.force,
+        &[&config.labeled_path, &config.pool_path, &shortlist_path],
+    )?;
     let status = StepStatus::new(config.quiet);
     check_one_stdin(&[
         ("--shortlist", &shortlist_path),
@@ -456,7 +466,7 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         files.add("report.html", report.render().into_bytes());
     }
     status.step("writing the outputs");
-    commit_outputs(files, &config.out)?;
+    commit_outputs(folder, files, "audit")?;
     drop(status);
 
     if !config.quiet {

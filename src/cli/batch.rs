@@ -14,7 +14,7 @@ use crate::workflows::batch::{
 };
 
 use super::common::DelimiterArg;
-use super::{commit_outputs, print_stdout, Failure};
+use super::{commit_outputs, open_output, print_stdout, Failure};
 
 const BATCH_HELP: &str = "\
 Every pool unit is put in the batch independently with its own inclusion probability pi
@@ -87,6 +87,10 @@ pub struct BatchArgs {
     /// Output folder (created if missing).
     #[arg(long, default_value = "weighbridge-batch", value_name = "DIR")]
     pub out: PathBuf,
+    /// Write into --out even if it holds files that no weighbridge run made (files of
+    /// other names are left alone; same-named ones are overwritten).
+    #[arg(long)]
+    pub force: bool,
     /// Field delimiter [default: tab for .tsv/.tab files, else comma].
     #[arg(long, value_enum)]
     pub delimiter: Option<DelimiterArg>,
@@ -135,6 +139,7 @@ fn csv_bytes(header: &[&str], rows: impl Iterator<Item = Vec<String>>) -> Vec<u8
 
 /// Run `batch`.
 pub fn run(a: BatchArgs) -> Result<(), Failure> {
+    let folder = open_output(&a.out, a.force, &[&a.pool])?;
     let read = ReadOptions {
         id: a.id.clone(),
         delimiter: a.delimiter.map(DelimiterArg::byte),
@@ -204,7 +209,7 @@ pub fn run(a: BatchArgs) -> Result<(), Failure> {
     let json = serde_json::to_vec_pretty(&report)
         .map_err(|e| Failure::Internal(format!("cannot serialize the design: {e}")))?;
     files.add("design.json", json);
-    commit_outputs(files, &a.out)?;
+    commit_outputs(folder, files, "batch")?;
 
     if !a.quiet {
         let mut text = String::new();

@@ -23,7 +23,7 @@ use crate::workflows::check::{
 use super::common::{
     weighting_failure, ClassifierArg, DelimiterArg, FitArgs, InputArgs, PValuesArg, ScoreArg,
 };
-use super::{commit_outputs, print_stdout, Failure};
+use super::{commit_outputs, open_output, print_stdout, Failure};
 
 const CHECK_HELP: &str = "\
 Uses only the labeled set, where outcomes are known. Each replicate splits it at random into
@@ -133,6 +133,10 @@ pub struct CheckArgs {
     /// Output folder (created if missing).
     #[arg(long, default_value = "weighbridge-check", value_name = "DIR")]
     pub out: PathBuf,
+    /// Write into --out even if it holds files that no weighbridge run made (files of
+    /// other names are left alone; same-named ones are overwritten).
+    #[arg(long)]
+    pub force: bool,
     /// Field delimiter [default: tab for .tsv/.tab files, else comma].
     #[arg(long, value_enum)]
     pub delimiter: Option<DelimiterArg>,
@@ -265,6 +269,7 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
     let params = a.fit.params(a.seed, a.fdr)?;
     let (labeled_read, pool_read) = a.input.read_options(None, &a.features, a.delimiter);
     check_one_stdin(&[("--labeled", &a.input.labeled), ("--pool", &a.input.pool)])?;
+    let folder = open_output(&a.out, a.force, &[&a.input.labeled, &a.input.pool])?;
     let labeled = read_units(&a.input.labeled, Role::Labeled, &labeled_read)?;
     let pool = read_units(&a.input.pool, Role::Pool, &pool_read)?;
     check_same_features(&labeled, &pool)?;
@@ -355,7 +360,7 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
     let json = serde_json::to_vec_pretty(&report)
         .map_err(|e| Failure::Internal(format!("cannot serialize the check: {e}")))?;
     files.add("check.json", json);
-    commit_outputs(files, &a.out)?;
+    commit_outputs(folder, files, "check")?;
 
     if !a.quiet {
         let mut text = String::new();

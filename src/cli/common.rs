@@ -209,9 +209,15 @@ pub struct SelectArgs {
     /// Seed of the random draws (randomized p-values, pruning).
     #[arg(long, default_value_t = crate::random::DEFAULT_SEED)]
     pub seed: u64,
-    /// Output folder (created if missing).
-    #[arg(long, default_value = "weighbridge-out", value_name = "DIR")]
-    pub out: PathBuf,
+    /// Output folder (created if missing); it holds this run's outputs only: files an
+    /// earlier run wrote there and this one does not are removed [default: weighbridge-out;
+    /// rescreen: weighbridge-rescreen; audit: weighbridge-audit].
+    #[arg(long, value_name = "DIR")]
+    pub out: Option<PathBuf>,
+    /// Write into --out even if it holds files that no weighbridge run made (files of
+    /// other names are left alone; same-named ones are overwritten).
+    #[arg(long)]
+    pub force: bool,
     /// Field delimiter [default: tab for .tsv/.tab files, else comma].
     #[arg(long, value_enum)]
     pub delimiter: Option<DelimiterArg>,
@@ -283,6 +289,9 @@ impl DelimiterArg {
     }
 }
 
+/// `--out` of `select` when not given (`rescreen` and `audit` have their own).
+pub const DEFAULT_OUT: &str = "weighbridge-out";
+
 /// Checked configuration of one `select` run.
 #[derive(Debug, Clone)]
 pub struct SelectConfig {
@@ -295,6 +304,8 @@ pub struct SelectConfig {
     /// Where the weights come from.
     pub weights: WeightSource,
     pub out: PathBuf,
+    /// Write into a folder the tool did not make (`--force`).
+    pub force: bool,
     pub quiet: bool,
     /// Write report.html too.
     pub report: bool,
@@ -366,11 +377,12 @@ impl TryFrom<SelectArgs> for SelectConfig {
                 column: column.clone(),
             }
         } else if let Some(dir) = &a.batch_design {
-            if std::path::absolute(dir).ok() == std::path::absolute(&a.out).ok() {
+            let out = a.out.clone().unwrap_or_else(|| PathBuf::from(DEFAULT_OUT));
+            if std::path::absolute(dir).ok() == std::path::absolute(&out).ok() {
                 return Err(Failure::Input(format!(
                     "--out {} is the batch design folder: the selection would overwrite the \
                      design it reads. Hint: choose another --out folder.",
-                    a.out.display()
+                    out.display()
                 )));
             }
             // The weights are attached to the tables by `batch_design::apply_design`.
@@ -391,7 +403,8 @@ impl TryFrom<SelectArgs> for SelectConfig {
             threshold: a.input.threshold,
             options,
             weights,
-            out: a.out,
+            out: a.out.unwrap_or_else(|| PathBuf::from(DEFAULT_OUT)),
+            force: a.force,
             quiet: a.quiet,
             report: a.report,
             allow_unreliable_weights: a.allow_unreliable_weights,

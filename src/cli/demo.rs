@@ -20,7 +20,7 @@ use crate::workflows::demo::{
     repeated_screens, spearman_correlation, DemoError, COMPARED, FEATURES, THRESHOLD,
 };
 
-use super::{commit_outputs, print_stdout, Failure, StepStatus};
+use super::{commit_outputs, open_output, print_stdout, Failure, StepStatus};
 
 const DEMO_HELP: &str = "\
 Generates an invented compound library (our own simulation, no real data): a labeled set of
@@ -51,6 +51,10 @@ pub struct DemoArgs {
     /// Output folder (created if missing).
     #[arg(long, default_value = "weighbridge-demo", value_name = "DIR")]
     pub out: PathBuf,
+    /// Write into --out even if it holds files that no weighbridge run made (files of
+    /// other names are left alone; same-named ones are overwritten).
+    #[arg(long)]
+    pub force: bool,
     /// Seed of the invented data and of the selection's random draws.
     #[arg(long, default_value_t = crate::random::DEFAULT_SEED)]
     pub seed: u64,
@@ -151,6 +155,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
             "--labeled and --pool must each be at least 10".to_string(),
         ));
     }
+    let folder = open_output(&args.out, args.force, &[])?;
     let status = StepStatus::new(false);
     status.step("inventing the scenario");
     let scenario = generate(args.labeled, args.pool, args.seed);
@@ -386,7 +391,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
     });
     files.add("report.html", report.render().into_bytes());
     status.step("writing the outputs and report.html");
-    commit_outputs(files, &args.out)?;
+    commit_outputs(folder, files, "demo")?;
     drop(status);
     let report_path = std::path::absolute(args.out.join("report.html"))
         .unwrap_or_else(|_| args.out.join("report.html"));

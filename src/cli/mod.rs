@@ -15,6 +15,7 @@ pub mod demo;
 pub mod rescreen;
 pub mod select;
 pub mod shift;
+mod signals;
 
 use std::io::Write;
 use std::process::ExitCode;
@@ -90,17 +91,31 @@ impl From<crate::selection::pipeline::SelectError> for Failure {
     }
 }
 
-/// Write output files all at once; a failure names the folder.
-pub(crate) fn commit_outputs(
-    set: crate::io::OutputSet,
+impl From<crate::io::FolderError> for Failure {
+    fn from(e: crate::io::FolderError) -> Self {
+        Failure::Input(e.to_string())
+    }
+}
+
+/// Take the output folder for this run (see [`crate::io::RunFolder`]): lock it, refuse a
+/// folder the tool did not make unless `--force`. `reads` are the run's input files, which
+/// are never removed as stale. Call before reading the inputs, so the lock covers the run.
+pub(crate) fn open_output(
     dir: &std::path::Path,
+    force: bool,
+    reads: &[&std::path::Path],
+) -> Result<crate::io::RunFolder, Failure> {
+    Ok(crate::io::RunFolder::open(dir, force, reads)?)
+}
+
+/// Write output files all at once, record them in the folder's manifest and remove the
+/// previous run's files this run did not write; a failure names the folder.
+pub(crate) fn commit_outputs(
+    folder: crate::io::RunFolder,
+    set: crate::io::OutputSet,
+    command: &str,
 ) -> Result<Vec<std::path::PathBuf>, Failure> {
-    set.commit(dir).map_err(|e| {
-        Failure::Input(format!(
-            "cannot write the output folder {}: {e}. Hint: choose another --out folder or check its permissions.",
-            dir.display()
-        ))
-    })
+    Ok(folder.commit(set, command)?)
 }
 
 /// Print to stdout; a closed pipe ends quietly.
@@ -193,6 +208,7 @@ pub fn main_entry() -> ExitCode {
             return ExitCode::from(if e.use_stderr() { 2 } else { 0 });
         }
     };
+    signals::install();
     let result = match cli.command {
         Command::Select(args) => select::run(args),
         Command::Shift(args) => shift::run(args),

@@ -17,7 +17,7 @@ use super::common::{
     obtain_run_weights, read_inputs, reliability_gate, report_pointer, selection_inputs,
     selection_report_page, shared_ids_warning, SelectArgs, SelectConfig,
 };
-use super::{commit_outputs, print_stdout, Failure};
+use super::{commit_outputs, open_output, print_stdout, Failure};
 
 const RESCREEN_HELP: &str = "\
 Runs the same selection as `select` (every option applies) on the current files, then
@@ -62,7 +62,78 @@ struct ChangesReport<'a> {
     #[serde(flatten)]
     counts: &'a ChangeCounts,
     diagnostics: Vec<Moved>,
+    /// Settings that differ from the previous run's summary.json (empty when none do).
+    setting_changes: Vec<SettingChange>,
     warnings: Vec<String>,
+}
+
+/// One setting that differs between the previous run and this one.
+#[derive(Debug, Serialize, PartialEq)]
+struct SettingChange {
+    setting: &'static str,
+    previous: String,
+    current: String,
+}
+
+/// The settings compared with the previous run, and where summary.json keeps them.
+const SETTINGS: &[(&str, &str)] = &[
+    ("threshold", "/inputs/threshold"),
+    ("fdr", "/fdr"),
+    ("procedure", "/procedure"),
+    ("pruning", "/pruning"),
+    ("score", "/score"),
+    ("pvalues", "/pvalues"),
+    ("weights", "/inputs/weights"),
+    ("features", "/shift/features"),
+    ("labeled_file", "/inputs/labeled_file"),
+];
+
+/// A setting as text for comparing and printing. Thresholds are normalized to `value C`
+/// (this version's form), since earlier versions may have stored the bare number or its
+/// string; a file is compared by canonical path when it exists.
+fn setting_text(setting: &str, value: &Value) -> String {
+    match (setting, value) {
+        ("threshold", Value::Number(n)) => format!("value {n}"),
+        ("threshold", Value::String(s)) if s.trim().parse::<f64>().is_ok() => {
+            format!("value {}", s.trim())
+        }
+        ("labeled_file", Value::String(s)) => std::fs::canonicalize(s)
+            .map(|p| p.display().to_string())
+            .unwrap_or_else(|_| s.clone()),
+        (_, Value::String(s)) => s.clone(),
+        (_, Value::Array(items)) => items
+            .iter()
+            .map(|v| v.as_str().map_or_else(|| v.to_string(), str::to_string))
+            .collect::<Vec<_>>()
+            .join(","),
+        (_, other) => other.to_string(),
+    }
+}
+
+/// The settings that differ. A setting the previous summary does not record (earlier
+/// versions, or no fitted weights so no features) is not compared; one recorded before but
+/// absent now (e.g. features when weights are no longer fitted) is "none".
+fn setting_changes(previous: &Value, current: &Value) -> Vec<SettingChange> {
+    SETTINGS
+        .iter()
+        .filter_map(|&(setting, pointer)| {
+            let before = previous.pointer(pointer).filter(|v| !v.is_null())?;
+            let before = setting_text(setting, before);
+            let now = current
+                .pointer(pointer)
+                .filter(|v| !v.is_null())
+                .map_or_else(|| "none".to_string(), |v| setting_text(setting, v));
+            let same = match (before.parse::<f64>(), now.parse::<f64>()) {
+                (Ok(a), Ok(b)) => a == b,
+                _ => before == now,
+            };
+            (!same).then_some(SettingChange {
+                setting,
+                previous: before,
+                current: now,
+            })
+        })
+        .collect()
 }
 
 fn previous_file(dir: &Path, name: &str) -> PathBuf {
@@ -94,6 +165,8 @@ fn read_previous(dir: &Path) -> Result<(Vec<PreviousUnit>, Value), Failure> {
         column("selected")?,
     );
     let mut units = Vec::new();
+    // Line of each id seen, to name both lines of a duplicate.
+    let mut seen: std::collections::HashMap<String, u64> = std::collections::HashMap::new();
     for record in reader.records() {
         let record = record.map_err(|e| bad(e.to_string()))?;
         let line = record.position().map_or(0, |p| p.line());
@@ -103,12 +176,28 @@ fn read_previous(dir: &Path) -> Result<(Vec<PreviousUnit>, Value), Failure> {
                 .and_then(|v| v.trim().parse::<f64>().ok())
                 .ok_or_else(|| bad(format!("line {line}: `{}` is not a number", &record[index])))
         };
+        if let Some(first) = seen.insert(record[id].to_string(), line) {
+            return Err(bad(format!(
+                "line {line}: id `{}` is also on line {first}; a run's candidates.csv lists \
+                 each pool unit once",
+                &record[id]
+            )));
+        }
+        let chosen = match &record[selected] {
+            "true" => true,
+            "false" => false,
+            other => {
+                return Err(bad(format!(
+                    "line {line}: column `selected` is `{other}`, expected true or false"
+                )))
+            }
+        };
         units.push(PreviousUnit {
             id: record[id].to_string(),
             score: number(score)?,
             weight: number(weight)?,
             p_value: number(p)?,
-            selected: &record[selected] == "true",
+            selected: chosen,
         });
     }
     let summary_path = previous_file(dir, "summary.json");
@@ -122,7 +211,39 @@ fn read_previous(dir: &Path) -> Result<(Vec<PreviousUnit>, Value), Failure> {
                 summary_path.display()
             ))
         })?;
+    // Every summary.json since the first version has these keys (folders of earlier
+    // versions stay readable); `{"hello": 1}` is not a run's summary.
+    for key in ["fdr", "selected_count"] {
+        if summary.get(key).and_then(Value::as_f64).is_none() {
+            return Err(Failure::Input(format!(
+                "{}: no number `{key}`, so it is not the summary.json of a weighbridge run. \
+                 Hint: --previous must be the output folder of an earlier `select`, \
+                 `rescreen` or `demo` run.",
+                summary_path.display()
+            )));
+        }
+    }
     Ok((units, summary))
+}
+
+/// `--out` must not be `--previous`: the new run would replace the one it is compared
+/// with, and the next rescreen would compare a run with itself. Compared after
+/// canonicalizing (`./round1`, `round1/` and a symlink to it are the same folder); an
+/// `--out` that does not exist yet cannot be `--previous`, which must exist.
+fn refuse_out_is_previous(out: &Path, previous: &Path) -> Result<(), Failure> {
+    let same = match (std::fs::canonicalize(out), std::fs::canonicalize(previous)) {
+        (Ok(out), Ok(previous)) => out == previous,
+        _ => false,
+    };
+    if same {
+        return Err(Failure::Input(format!(
+            "--out {} is the --previous folder: the new run would overwrite the run it is \
+             compared with. Hint: give a new --out folder, e.g. --out {}-next.",
+            out.display(),
+            previous.display().to_string().trim_end_matches('/')
+        )));
+    }
+    Ok(())
 }
 
 /// A number from a summary by JSON pointer (e.g. "/shift/auc").
@@ -133,8 +254,25 @@ fn number_at(summary: &Value, pointer: &str) -> Option<f64> {
 /// Run `rescreen`.
 pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     let previous_dir = args.previous.clone();
-    let config = SelectConfig::try_from(args.selection)?;
+    let mut selection = args.selection;
+    // Not select's default: `rescreen --previous weighbridge-out` must not overwrite the
+    // run it compares with.
+    selection
+        .out
+        .get_or_insert_with(|| PathBuf::from("weighbridge-rescreen"));
+    let config = SelectConfig::try_from(selection)?;
     config.refuse_batch_design("rescreen")?;
+    refuse_out_is_previous(&config.out, &previous_dir)?;
+    let folder = open_output(
+        &config.out,
+        config.force,
+        &[
+            &config.labeled_path,
+            &config.pool_path,
+            &previous_file(&previous_dir, "candidates.csv"),
+            &previous_file(&previous_dir, "summary.json"),
+        ],
+    )?;
     let (previous, previous_summary) = read_previous(&previous_dir)?;
     let (labeled, pool) = read_inputs(&config)?;
     let weighting = obtain_run_weights(&config, &labeled, &pool)?;
@@ -202,7 +340,21 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     .filter(|m| m.previous.is_some() || m.current.is_some())
     .collect();
 
+    let setting_changes = setting_changes(&previous_summary, &current_summary);
     let mut warnings = Vec::new();
+    if !setting_changes.is_empty() {
+        warnings.push(format!(
+            "settings differ from the previous run ({}): the units newly selected and dropped \
+             below changed partly or wholly because of these settings, not only because the \
+             pool grew; rerun with the previous settings to see what the new units alone \
+             changed.",
+            setting_changes
+                .iter()
+                .map(|c| format!("{} {} -> {}", c.setting, c.previous, c.current))
+                .collect::<Vec<_>>()
+                .join("; ")
+        ));
+    }
     if counts.new_poorly_covered > 0 {
         warnings.push(format!(
             "{} of {} new pool units sit where the labeled set gives little support \
@@ -214,8 +366,15 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     if counts.dropped_pool_grew > 0 {
         warnings.push(format!(
             "{} previously selected units dropped only because the pool grew ({} -> {} units): \
-             their p-values did not move, but the BH line q k / m is stricter at every rank.",
-            counts.dropped_pool_grew, counts.previous_pool, counts.current_pool
+             their p-values did not move, but the BH line q k / m is stricter at every rank{}.",
+            counts.dropped_pool_grew,
+            counts.previous_pool,
+            counts.current_pool,
+            if setting_changes.is_empty() {
+                ""
+            } else {
+                " (or the changed settings moved it)"
+            }
         ));
     }
     warnings.extend(summary.warnings.iter().cloned());
@@ -225,6 +384,7 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         previous_folder: previous_dir.display().to_string(),
         counts: &counts,
         diagnostics,
+        setting_changes,
         warnings,
     };
     let mut changes = csv::Writer::from_writer(Vec::new());
@@ -283,7 +443,7 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         serde_json::to_vec_pretty(&report)
             .map_err(|e| Failure::Internal(format!("cannot serialize the changes: {e}")))?,
     );
-    commit_outputs(files, &config.out)?;
+    commit_outputs(folder, files, "rescreen")?;
 
     if !config.quiet {
         let mut text = String::new();
@@ -339,4 +499,46 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         print_stdout(&text);
     }
     Ok(())
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use serde_json::json;
+
+    #[test]
+    fn setting_changes_name_each_difference_and_skip_unrecorded_ones() {
+        let previous = json!({
+            "fdr": 0.1, "procedure": "conditional", "pruning": "homogeneous",
+            "score": "clipped", "pvalues": "conservative",
+            "inputs": {"threshold": "6.5", "weights": "given in column w",
+                       "labeled_file": "no/such/labeled.csv"},
+        });
+        let mut current = previous.clone();
+        // An earlier version's bare threshold string equals this version's `value 6.5`.
+        current["inputs"]["threshold"] = json!("value 6.5");
+        current["fdr"] = json!(0.2);
+        current["shift"] = json!({"features": ["f1", "f2"]});
+        assert_eq!(
+            setting_changes(&previous, &current),
+            [SettingChange {
+                setting: "fdr",
+                previous: "0.1".to_string(),
+                current: "0.2".to_string()
+            }]
+        );
+        current["inputs"]["threshold"] = json!("value 7");
+        current["procedure"] = json!("bh");
+        let names: Vec<&str> = setting_changes(&previous, &current)
+            .iter()
+            .map(|c| c.setting)
+            .collect();
+        assert_eq!(names, ["threshold", "fdr", "procedure"]);
+        // Features recorded before, none now.
+        let fitted = json!({"shift": {"features": ["f1"]}});
+        let changes = setting_changes(&fitted, &json!({}));
+        assert_eq!(changes[0].previous, "f1");
+        assert_eq!(changes[0].current, "none");
+        assert!(setting_changes(&json!({}), &current).is_empty());
+    }
 }

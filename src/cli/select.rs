@@ -16,7 +16,7 @@ use super::common::{
     selection_report_page, shared_ids_warning, weighting_is_fitted,
 };
 pub use super::common::{SelectArgs, SelectConfig};
-use super::{commit_outputs, print_stdout, Failure, PhaseTimer, StepStatus};
+use super::{commit_outputs, open_output, print_stdout, Failure, PhaseTimer, StepStatus};
 
 /// Run the selection; a level no unit can reach is blamed on the labeled file by name.
 fn select_or_explain(
@@ -60,6 +60,11 @@ fn select_or_explain(
 pub fn run(args: SelectArgs) -> Result<(), Failure> {
     let mut timer = PhaseTimer::new();
     let config = SelectConfig::try_from(args)?;
+    let folder = open_output(
+        &config.out,
+        config.force,
+        &[&config.labeled_path, &config.pool_path],
+    )?;
     let status = StepStatus::new(config.quiet);
     status.step("reading the labeled and pool files");
     let (labeled, pool) = read_inputs(&config)?;
@@ -139,7 +144,7 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     }
     timer.mark("format outputs");
     status.step("writing the outputs");
-    commit_outputs(files, &config.out)?;
+    commit_outputs(folder, files, "select")?;
     timer.mark("write outputs");
     drop(status);
     if !config.quiet {

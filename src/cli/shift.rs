@@ -22,7 +22,7 @@ use crate::shift::weighting::{obtain_weights, WeightSource, Weighting};
 use crate::shift::ShiftParams;
 
 use super::common::{feature_selectors, report_pointer, weighting_failure, DelimiterArg, FitArgs};
-use super::{commit_outputs, print_stdout, Failure, PhaseTimer, StepStatus};
+use super::{commit_outputs, open_output, print_stdout, Failure, PhaseTimer, StepStatus};
 
 /// Bins of the weight histogram in weights.svg.
 const WEIGHT_PLOT_BINS: usize = 40;
@@ -101,6 +101,10 @@ pub struct ShiftArgs {
     /// Output folder (created if missing).
     #[arg(long, default_value = "weighbridge-shift", value_name = "DIR")]
     pub out: PathBuf,
+    /// Write into --out even if it holds files that no weighbridge run made (files of
+    /// other names are left alone; same-named ones are overwritten).
+    #[arg(long)]
+    pub force: bool,
     /// Field delimiter [default: tab for .tsv/.tab files, else comma].
     #[arg(long, value_enum)]
     pub delimiter: Option<DelimiterArg>,
@@ -121,6 +125,8 @@ pub struct ShiftConfig {
     pub read: ReadOptions,
     pub params: ShiftParams,
     pub out: PathBuf,
+    /// Write into a folder the tool did not make (`--force`).
+    pub force: bool,
     pub quiet: bool,
     /// Write report.html too.
     pub report: bool,
@@ -153,6 +159,7 @@ impl TryFrom<ShiftArgs> for ShiftConfig {
             read,
             params,
             out: a.out,
+            force: a.force,
             quiet: a.quiet,
             report: a.report,
         })
@@ -204,6 +211,11 @@ pub(crate) fn read_feature_table(
 pub fn run(args: ShiftArgs) -> Result<(), Failure> {
     let mut timer = PhaseTimer::new();
     let config = ShiftConfig::try_from(args)?;
+    let folder = open_output(
+        &config.out,
+        config.force,
+        &[&config.labeled_path, &config.pool_path],
+    )?;
     let status = StepStatus::new(config.quiet);
     status.step("reading the labeled and pool files");
     check_one_stdin(&[
@@ -273,7 +285,7 @@ pub fn run(args: ShiftArgs) -> Result<(), Failure> {
     files.add("balance.svg", balance.into_bytes());
     timer.mark("format outputs");
     status.step("writing the outputs");
-    commit_outputs(files, &config.out)?;
+    commit_outputs(folder, files, "shift")?;
     timer.mark("write outputs");
     drop(status);
     if !config.quiet {

@@ -11,17 +11,21 @@
 //! - [`errors`]: [`InputError`] and the wording of its messages;
 //! - [`source`]: [`Source`], an input read once (file, named pipe, or `-` for standard
 //!   input) that knows its line ends, so messages give editor lines without reopening;
-//! - [`output`]: [`write_atomic`] and [`OutputSet`].
+//! - [`output`]: [`write_atomic`] and [`OutputSet`];
+//! - [`folder`]: [`RunFolder`]: the output folder holds one run's outputs (lock, manifest,
+//!   stale files, leftovers of killed runs, refusing folders the tool did not make).
 
 pub mod columns;
 pub mod errors;
+pub mod folder;
 pub mod output;
 pub mod read;
 pub mod source;
 
 pub use columns::{check_same_features, resolve_features};
 pub use errors::InputError;
-pub use output::{write_atomic, OutputSet};
+pub use folder::{FolderError, Manifest, RunFolder, MANIFEST};
+pub use output::{abandon_temporaries, write_atomic, OutputSet};
 pub use read::{
     delimiter_for, parse_finite, read_id_list, read_units, read_units_choosing, ColumnKind,
     ReadOptions, Role, UnitTable,

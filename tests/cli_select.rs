@@ -1778,3 +1778,22 @@ fn bad_fit_weights_on_a_missing_feature() {
         .names("`nope`")
         .names("--features");
 }
+
+#[test]
+fn tiny_levels_print_briefly_and_blame_the_level() {
+    // `--fdr 1e-300` is valid but no unit can reach it: the message prints the level in a
+    // few digits (not 300 zeros) and names the level, not the weights, as the cause.
+    let dir = TempDir::new().unwrap();
+    let out = dir.path().join("out");
+    let output = select_files(
+        &fixture("labeled.csv"),
+        &fixture("pool.csv"),
+        &out,
+        "--threshold 6.5 --weight-column w --fdr 1e-300",
+    );
+    assert_eq!(output.status.code(), Some(2));
+    let stderr = text(&output.stderr);
+    assert!(stderr.contains("FDR level 1.00e-300"), "{stderr}");
+    assert!(stderr.len() < 600, "{stderr}");
+    assert!(stderr.contains("higher --fdr"), "{stderr}");
+}

@@ -474,7 +474,10 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         let _ = writeln!(
             text,
             "weighbridge {} audit of {} ({} listed units) at FDR {}",
-            summary.tool.version, summary.shortlist_file, outcome.listed_count, settings.fdr
+            summary.tool.version,
+            summary.shortlist_file,
+            outcome.listed_count,
+            crate::selection::level_text(settings.fdr)
         );
         let _ = writeln!(
             text,

@@ -367,7 +367,11 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
         let _ = writeln!(
             text,
             "weighbridge {} calibration check: {} replicates, strength {}, FDR {} ({})",
-            report.tool.version, outcome.replicates, outcome.strength, a.fdr, report.weights
+            report.tool.version,
+            outcome.replicates,
+            outcome.strength,
+            crate::selection::level_text(a.fdr),
+            report.weights
         );
         let _ = writeln!(text, "  shift: {}", outcome.tilt_description);
         let _ = writeln!(

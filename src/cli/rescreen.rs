@@ -457,7 +457,7 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
             counts.left_pool,
             counts.previously_selected,
             counts.selected,
-            outcome.settings.fdr
+            crate::selection::level_text(outcome.settings.fdr)
         );
         let _ = writeln!(
             text,

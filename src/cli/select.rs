@@ -30,13 +30,14 @@ fn select_or_explain(
             fdr,
             n_labeled,
             smallest_floor,
-        } if weighted => Failure::Input(format!(
-            "no pool unit can ever be selected at FDR level {fdr}: with the weights of {}, \
+        } if weighted && 1.0 / (n_labeled as f64 + 1.0) <= fdr => Failure::Input(format!(
+            "no pool unit can ever be selected at FDR level {}: with the weights of {}, \
              the smallest possible p-value w_j / (W + w_j) is {smallest_floor:.4} (W = total \
              weight of the {n_labeled} labeled rows). The pool's weights are large compared \
              with the labeled set's: the pool lies where the labeled set has little weight \
              (little overlap), so more labeled rows like the current ones will not help; \
              labeled rows like the pool, or a higher --fdr, will.",
+            crate::selection::level_text(fdr),
             match &config.weights {
                 WeightSource::Given { column } => format!("column {column}"),
                 _ => "the fit".to_string(),

@@ -235,7 +235,7 @@ pub fn unselectable_reason(outcome: &SelectionOutcome, j: usize) -> String {
          the FDR level {}: the labeled set has too little weight near this unit",
         w / (outcome.total_labeled_weight + w),
         w,
-        outcome.settings.fdr
+        crate::selection::level_text(outcome.settings.fdr)
     )
 }
 
@@ -323,7 +323,7 @@ pub fn text_summary(summary: &SelectSummary, ids: &[String], outcome: &Selection
         s.tool.version,
         s.selected_count,
         s.n_pool,
-        s.fdr,
+        crate::selection::level_text(s.fdr),
         procedure_words(s.procedure),
         s.pruning
             .map(|p| format!(", {p} pruning"))
@@ -768,7 +768,7 @@ fn weight_lines(s: &ShiftSummary, lines: &mut DiagnosticLines) {
         );
     }
     line(
-        &format!("unreachable at FDR {}", s.fdr),
+        &format!("unreachable at FDR {}", crate::selection::level_text(s.fdr)),
         format!(
             "{} of {} pool units (weight too large for the labeled set)",
             s.unreachable_count, s.pool_rows

@@ -19,3 +19,25 @@ pub mod level_curve;
 pub mod pipeline;
 pub mod pruning;
 pub mod resolution;
+
+/// An FDR level for people: as typed for ordinary levels (`0.1`, `0.05`), in scientific
+/// notation with three significant digits below 1e-4 (`1.00e-300`; Rust's `{}` would print
+/// every one of the 300 zeros).
+pub fn level_text(q: f64) -> String {
+    if q != 0.0 && q.is_finite() && q.abs() < 1e-4 {
+        format!("{q:.2e}")
+    } else {
+        format!("{q}")
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    #[test]
+    fn levels_print_briefly() {
+        assert_eq!(super::level_text(0.1), "0.1");
+        assert_eq!(super::level_text(0.05), "0.05");
+        assert_eq!(super::level_text(1e-300), "1.00e-300");
+        assert_eq!(super::level_text(1.23456e-7), "1.23e-7");
+    }
+}

@@ -134,10 +134,11 @@ pub enum SelectError {
     EmptyPool,
     /// No pool unit could be selected at this level whatever its outcome.
     #[error(
-        "no pool unit can ever be selected at FDR level {fdr}: the smallest possible p-value \
+        "no pool unit can ever be selected at FDR level {}: the smallest possible p-value \
          is {smallest_floor:.4} (a unit's p-value is at least w_j / (W + w_j); with equal \
          weights 1 / (n + 1) for n = {n_labeled} labeled units). Use a larger labeled set \
-         or a higher --fdr"
+         or a higher --fdr",
+        super::level_text(*fdr)
     )]
     LabeledSetTooSmall {
         fdr: f64,
@@ -507,6 +508,7 @@ pub const ESS_FRACTION_WARNING: f64 = 0.1;
 fn selection_warnings(o: &SelectionOutcome) -> Vec<String> {
     let m = o.scores.len();
     let q = o.settings.fdr;
+    let qt = super::level_text(q);
     let mut warnings = Vec::new();
     if o.unreachable_count > 0 {
         warnings.push(format!(
@@ -517,8 +519,8 @@ fn selection_warnings(o: &SelectionOutcome) -> Vec<String> {
             o.unreachable_count,
             m,
             100.0 * o.unreachable_count as f64 / m as f64,
-            q,
-            q
+            qt,
+            qt
         ));
     }
     let ess_fraction = o.labeled_ess / o.n_labeled as f64;
@@ -552,7 +554,7 @@ fn selection_warnings(o: &SelectionOutcome) -> Vec<String> {
     }
     if o.selected_count == 0 && o.unreachable_count == m {
         warnings.push(format!(
-            "empty shortlist: no pool unit can be selected at FDR {q} whatever its outcome: \
+            "empty shortlist: no pool unit can be selected at FDR {qt} whatever its outcome: \
              every unit's weight alone keeps its p-value above q (the smallest possible \
              p-value is {:.4}). {}",
             o.resolution.smallest_floor_pvalue,
@@ -567,7 +569,7 @@ fn selection_warnings(o: &SelectionOutcome) -> Vec<String> {
         ));
     } else if o.selected_count == 0 {
         warnings.push(format!(
-            "empty shortlist: no pool unit was selected at FDR {q}. BH on the weighted {} \
+            "empty shortlist: no pool unit was selected at FDR {qt}. BH on the weighted {} \
              p-values would select {}.",
             o.bh_pvalues.name(),
             o.bh_selected_count

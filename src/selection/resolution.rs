@@ -107,8 +107,10 @@ pub fn reading(r: &Resolution, m: usize, q: f64, depends_on_draw: bool) -> Strin
         "{} of {m} pool units have no labeled score at or below their own (for the clipped score: \
          predicted above every labeled inactive), so their \
          p-values sit at the floor w/(W+w) and the labeled set cannot rank them against each \
-         other. No BH line at FDR {q} can be met by fewer than {} units.",
-        r.floor_count, r.bh_needs_at_least
+         other. No BH line at FDR {} can be met by fewer than {} units.",
+        r.floor_count,
+        super::level_text(q),
+        r.bh_needs_at_least
     );
     if depends_on_draw {
         if let Some(first) = r.first_step_floor_count {

@@ -195,7 +195,7 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
                 s.unreachable_count,
                 100.0 * unreachable_share,
                 100.0 * UNREACHABLE_SHARE_HIGH,
-                s.fdr
+                crate::selection::level_text(s.fdr)
             ),
         ));
     }

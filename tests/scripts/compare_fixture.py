@@ -4,12 +4,15 @@
 Used by .ci/run. Two regenerations on one machine must agree byte for byte (the script is
 deterministic; .ci/run diffs them directly). A committed fixture may come from another
 machine, where numpy's and scikit-learn's vectorized math (exp, log, pow, summation order
-of SIMD kernels) can differ in the last bits of a float. So here the files are split into
-tokens: numbers must agree to a relative tolerance of 1e-9 (absolute 1e-12 near zero), every
+of SIMD kernels) can differ in the last bits of a float, and an iterative solver started
+from such a value stops at a slightly different point within its tolerance (seen:
+scikit-learn's lbfgs coefficients in shift_reference.json moved by a relative 3e-9). So here
+the files are split into tokens: numbers must agree to a relative tolerance of 1e-6
+(absolute 1e-9 near zero) — the precision the Rust tests ask of those references — and every
 other token exactly. A library that now says something else differs far more than that.
 
 Usage: compare_fixture.py COMMITTED FRESH
-Exit 0 when they agree (prints "exactly" or "within 1e-9"), 1 otherwise with the first
+Exit 0 when they agree (prints "exactly" or "within 1e-6"), 1 otherwise with the first
 differences.
 """
 
@@ -19,7 +22,7 @@ import sys
 
 NUMBER = re.compile(r"[-+]?(?:\d+\.\d*|\.\d+|\d+)(?:[eE][-+]?\d+)?|[-+]?(?:inf|nan)\b")
 TOKEN = re.compile(NUMBER.pattern + r"|\s+|.", re.DOTALL)
-REL, ABS = 1e-9, 1e-12
+REL, ABS = 1e-6, 1e-9
 
 
 def tokens(text):
@@ -60,7 +63,7 @@ def main():
         for line in bad:
             print("  " + line, file=sys.stderr)
         return 1
-    print(f"reproduced {committed} within a relative 1e-9 (last-bit float differences only)")
+    print(f"reproduced {committed} within a relative 1e-6 (float differences of another CPU only)")
     return 0
 
 

@@ -685,4 +685,17 @@ fn rescreen_names_each_setting_that_differs_from_the_previous_run() {
     let first = changed["warnings"][0].as_str().unwrap();
     assert!(first.contains("fdr 0.1 -> 0.3"), "{first}");
     assert!(stdout.contains("fdr 0.1 -> 0.3"), "{stdout}");
+    // Each unit whose selection changed names the changed setting in changes.csv too.
+    let csv = fs::read_to_string(dir.path().join("changed").join("changes.csv")).unwrap();
+    let newly: Vec<&str> = csv
+        .lines()
+        .filter(|l| l.contains(",newly selected,"))
+        .collect();
+    assert!(!newly.is_empty());
+    assert!(
+        newly.iter().all(|l| l.contains("settings changed (fdr)")),
+        "{newly:?}"
+    );
+    let same_csv = fs::read_to_string(dir.path().join("same").join("changes.csv")).unwrap();
+    assert!(!same_csv.contains("settings changed"));
 }

@@ -11,7 +11,7 @@ use serde_json::Value;
 use crate::io::OutputSet;
 use crate::report::{add_shift, candidates_csv, select_summary, shift_section, RunInputs};
 use crate::selection::pipeline::run_selection;
-use crate::workflows::rescreen::{compare, ChangeCounts, CurrentUnit, PreviousUnit};
+use crate::workflows::rescreen::{compare, Change, ChangeCounts, CurrentUnit, PreviousUnit};
 
 use super::common::{
     obtain_run_weights, read_inputs, reliability_gate, report_pointer, selection_inputs,
@@ -341,6 +341,23 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     .collect();
 
     let setting_changes = setting_changes(&previous_summary, &current_summary);
+    // Each unit whose selection changed is attributed to the changed settings too.
+    let mut rows = rows;
+    if !setting_changes.is_empty() {
+        let names: Vec<&str> = setting_changes.iter().map(|c| c.setting).collect();
+        for row in rows.iter_mut().filter(|r| {
+            matches!(
+                r.change,
+                Change::NewlySelected | Change::Dropped | Change::NewSelected
+            )
+        }) {
+            row.why = if row.why.is_empty() {
+                format!("settings changed ({})", names.join(", "))
+            } else {
+                format!("settings changed ({}); {}", names.join(", "), row.why)
+            };
+        }
+    }
     let mut warnings = Vec::new();
     if !setting_changes.is_empty() {
         warnings.push(format!(

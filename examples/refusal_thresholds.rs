@@ -17,40 +17,18 @@
 use weighbridge::check::{
     calibration_check, CheckOptions, CheckWeights, ReplicateDiagnostics, Tilt,
 };
-use weighbridge::demo::{generate, FEATURES, LABELED_MEAN, THRESHOLD};
+use weighbridge::demo::{labeled_table, THRESHOLD};
 use weighbridge::select::SelectOptions;
 use weighbridge::shift::reliability::{AUC_NO_OVERLAP, ESS_FRACTION_FLOOR};
 use weighbridge::shift::ShiftParams;
-use weighbridge::table::{Role, UnitTable};
+use weighbridge::table::UnitTable;
 
 const ROWS: usize = 2000;
 const REPLICATES: usize = 150;
 const FDR: f64 = 0.2;
 
 fn labeled(seed: u64) -> (UnitTable, Vec<f64>) {
-    let set = generate(ROWS, 10, seed).labeled;
-    let mut features = Vec::with_capacity(ROWS * FEATURES.len());
-    for f in 0..FEATURES.len() {
-        features.extend(set.features.iter().map(|x| x[f]));
-    }
-    // The demo's true log density ratio pool / labeled is -b'x + constant.
-    let log_ratio = set
-        .features
-        .iter()
-        .map(|x| -LABELED_MEAN.iter().zip(x).map(|(b, v)| b * v).sum::<f64>())
-        .collect();
-    let table = UnitTable {
-        path: "demo".into(),
-        role: Role::Labeled,
-        ids: set.ids.clone(),
-        outcome: Some(set.outcome.clone()),
-        prediction: set.prediction.clone(),
-        threshold: None,
-        weight: None,
-        feature_names: FEATURES.iter().map(|s| s.to_string()).collect(),
-        features,
-    };
-    (table, log_ratio)
+    labeled_table(ROWS, seed)
 }
 
 fn mean_se(values: &[f64]) -> String {

@@ -956,35 +956,12 @@ fn summarize(
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::workflows::demo::{generate, FEATURES, LABELED_MEAN, THRESHOLD};
+    use crate::workflows::demo::{labeled_table, THRESHOLD};
 
     /// The demo's labeled set as a table (invented data; here the reference is the FDR
     /// guarantee itself, Jin & Candes 2023, checked by simulation).
     fn demo_labeled(rows: usize, seed: u64) -> (UnitTable, Vec<f64>) {
-        let s = generate(rows, 10, seed);
-        let set = s.labeled;
-        let mut features = Vec::with_capacity(rows * 5);
-        for f in 0..5 {
-            features.extend(set.features.iter().map(|x| x[f]));
-        }
-        // Tilt toward the real pool: its log density ratio, -b'x (src/demo.rs).
-        let tilt = set
-            .features
-            .iter()
-            .map(|x| -LABELED_MEAN.iter().zip(x).map(|(b, v)| b * v).sum::<f64>())
-            .collect();
-        let table = UnitTable {
-            path: "demo".into(),
-            role: Role::Labeled,
-            ids: set.ids.clone(),
-            outcome: Some(set.outcome.clone()),
-            prediction: set.prediction.clone(),
-            threshold: None,
-            weight: None,
-            feature_names: FEATURES.iter().map(|s| s.to_string()).collect(),
-            features,
-        };
-        (table, tilt)
+        labeled_table(rows, seed)
     }
 
     fn options(weights: CheckWeights, replicates: usize, strength: f64) -> CheckOptions {

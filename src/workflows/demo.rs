@@ -162,6 +162,35 @@ pub fn generate(n_labeled: usize, n_pool: usize, seed: u64) -> DemoScenario {
     DemoScenario { labeled, pool }
 }
 
+/// The scenario's labeled set of `rows` compounds (seed `seed`) as a table with features
+/// f1..f5, and each row's true log density ratio pool / labeled up to a constant, `-b'x`
+/// with b = [`LABELED_MEAN`] (both sets are normal with unit variances): the tilt of the
+/// calibration-check studies.
+pub fn labeled_table(rows: usize, seed: u64) -> (crate::io::UnitTable, Vec<f64>) {
+    let set = generate(rows, 10, seed).labeled;
+    let mut features = Vec::with_capacity(rows * FEATURES.len());
+    for f in 0..FEATURES.len() {
+        features.extend(set.features.iter().map(|x| x[f]));
+    }
+    let log_ratio = set
+        .features
+        .iter()
+        .map(|x| -LABELED_MEAN.iter().zip(x).map(|(b, v)| b * v).sum::<f64>())
+        .collect();
+    let table = crate::io::UnitTable {
+        path: "demo".into(),
+        role: crate::io::Role::Labeled,
+        ids: set.ids,
+        outcome: Some(set.outcome),
+        prediction: set.prediction,
+        threshold: None,
+        weight: None,
+        feature_names: FEATURES.iter().map(|s| s.to_string()).collect(),
+        features,
+    };
+    (table, log_ratio)
+}
+
 /// Realized false discovery proportion of a selection, from the pool's true outcomes.
 pub fn false_discovery_proportion(pool: &DemoSet, selected: &[bool]) -> (usize, usize) {
     let chosen = selected.iter().filter(|&&s| s).count();

@@ -12,6 +12,10 @@ use serde_json::Value;
 use weighbridge::shift::boosted::{cross_fit, BoostedParams};
 use weighbridge::shift::roc_auc;
 
+#[path = "common/ranks.rs"]
+mod ranks;
+use ranks::spearman;
+
 /// Tolerances and bounds, in one place.
 mod tol {
     /// |our out-of-fold AUC - scikit-learn's (fold seed 0)|. scikit-learn's own out-of-fold
@@ -51,40 +55,6 @@ fn floats(v: &Value) -> Vec<f64> {
 
 fn num(v: &Value) -> f64 {
     v.as_f64().expect("number")
-}
-
-/// Midranks (ties share the mean of their positions, 1-based).
-fn midranks(v: &[f64]) -> Vec<f64> {
-    let mut order: Vec<usize> = (0..v.len()).collect();
-    order.sort_by(|&a, &b| v[a].total_cmp(&v[b]));
-    let mut ranks = vec![0.0; v.len()];
-    let mut i = 0;
-    while i < order.len() {
-        let mut j = i;
-        while j + 1 < order.len() && v[order[j + 1]] == v[order[i]] {
-            j += 1;
-        }
-        let rank = (i + j) as f64 / 2.0 + 1.0;
-        for &k in &order[i..=j] {
-            ranks[k] = rank;
-        }
-        i = j + 1;
-    }
-    ranks
-}
-
-/// Spearman's rho: Pearson correlation of the midranks (scipy.stats.spearmanr's definition).
-fn spearman(a: &[f64], b: &[f64]) -> f64 {
-    let (ra, rb) = (midranks(a), midranks(b));
-    let n = a.len() as f64;
-    let (ma, mb) = (ra.iter().sum::<f64>() / n, rb.iter().sum::<f64>() / n);
-    let (mut ab, mut aa, mut bb) = (0.0, 0.0, 0.0);
-    for (x, y) in ra.iter().zip(&rb) {
-        ab += (x - ma) * (y - mb);
-        aa += (x - ma) * (x - ma);
-        bb += (y - mb) * (y - mb);
-    }
-    ab / (aa * bb).sqrt()
 }
 
 #[test]

@@ -13,6 +13,10 @@ use rand_distr::{Distribution, StandardNormal};
 use serde_json::Value;
 use tempfile::TempDir;
 
+#[path = "common/ranks.rs"]
+mod ranks;
+use ranks::spearman;
+
 /// Labeled x0 ~ N(0, 1), pool x0 ~ N(0, 0.6^2), two noise features; returns the labeled
 /// rows' true log ratio up to a constant, -x0^2 (1/0.72 - 1/2).
 fn write_case(dir: &Path) -> Vec<f64> {
@@ -60,33 +64,6 @@ fn shift(dir: &Path, out: &str, extra: &[&str]) -> Output {
         .args(extra)
         .output()
         .expect("run weighbridge")
-}
-
-fn spearman(a: &[f64], b: &[f64]) -> f64 {
-    fn ranks(v: &[f64]) -> Vec<f64> {
-        let mut idx: Vec<usize> = (0..v.len()).collect();
-        idx.sort_by(|&i, &j| v[i].total_cmp(&v[j]));
-        let mut r = vec![0.0; v.len()];
-        let mut i = 0;
-        while i < idx.len() {
-            let mut j = i;
-            while j + 1 < idx.len() && v[idx[j + 1]] == v[idx[i]] {
-                j += 1;
-            }
-            for k in i..=j {
-                r[idx[k]] = (i + j) as f64 / 2.0;
-            }
-            i = j + 1;
-        }
-        r
-    }
-    let (ra, rb) = (ranks(a), ranks(b));
-    let n = a.len() as f64;
-    let (ma, mb) = (ra.iter().sum::<f64>() / n, rb.iter().sum::<f64>() / n);
-    let cov: f64 = ra.iter().zip(&rb).map(|(x, y)| (x - ma) * (y - mb)).sum();
-    let va: f64 = ra.iter().map(|x| (x - ma) * (x - ma)).sum();
-    let vb: f64 = rb.iter().map(|y| (y - mb) * (y - mb)).sum();
-    cov / (va * vb).sqrt()
 }
 
 /// Labeled weights from weights.csv, in row order.

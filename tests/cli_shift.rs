@@ -23,6 +23,10 @@ use std::process::{Command, Output};
 use serde_json::Value;
 use tempfile::TempDir;
 
+#[path = "common/ranks.rs"]
+mod ranks;
+use ranks::spearman;
+
 /// Every tolerance of this file, in one place.
 mod tolerance {
     /// Weights and probabilities against scikit-learn: our Newton solver stops at gradient
@@ -771,34 +775,6 @@ fn help_states_defaults_costs_and_an_example() {
 // ---------------------------------------------------------------------------------------
 // The demo's weights: fitted vs the true density ratio
 // ---------------------------------------------------------------------------------------
-
-/// Spearman (1904) rank correlation: Pearson correlation of midranks.
-fn spearman(a: &[f64], b: &[f64]) -> f64 {
-    fn ranks(v: &[f64]) -> Vec<f64> {
-        let mut order: Vec<usize> = (0..v.len()).collect();
-        order.sort_by(|&i, &j| v[i].total_cmp(&v[j]));
-        let mut r = vec![0.0; v.len()];
-        let mut i = 0;
-        while i < order.len() {
-            let mut j = i;
-            while j + 1 < order.len() && v[order[j + 1]] == v[order[i]] {
-                j += 1;
-            }
-            for &k in &order[i..=j] {
-                r[k] = (i + j) as f64 / 2.0 + 1.0;
-            }
-            i = j + 1;
-        }
-        r
-    }
-    let (ra, rb) = (ranks(a), ranks(b));
-    let n = a.len() as f64;
-    let (ma, mb) = (ra.iter().sum::<f64>() / n, rb.iter().sum::<f64>() / n);
-    let cov: f64 = ra.iter().zip(&rb).map(|(x, y)| (x - ma) * (y - mb)).sum();
-    let va: f64 = ra.iter().map(|x| (x - ma) * (x - ma)).sum();
-    let vb: f64 = rb.iter().map(|y| (y - mb) * (y - mb)).sum();
-    cov / (va * vb).sqrt()
-}
 
 #[test]
 fn the_spearman_helper_matches_scipy() {

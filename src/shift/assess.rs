@@ -891,25 +891,10 @@ mod tests {
         assert!(ranked.summary.fit.heavy_tailed_features.is_empty());
     }
 
-    /// Spearman rank correlation: Pearson correlation of mid-ranks (the textbook definition).
+    /// Spearman rank correlation: Pearson correlation of mid-ranks (the textbook definition),
+    /// on the mid-ranks the AUC code uses.
     fn spearman(a: &[f64], b: &[f64]) -> f64 {
-        fn ranks(v: &[f64]) -> Vec<f64> {
-            let mut idx: Vec<usize> = (0..v.len()).collect();
-            idx.sort_by(|&i, &j| v[i].total_cmp(&v[j]));
-            let mut r = vec![0.0; v.len()];
-            let mut i = 0;
-            while i < idx.len() {
-                let mut j = i;
-                while j + 1 < idx.len() && v[idx[j + 1]] == v[idx[i]] {
-                    j += 1;
-                }
-                for k in i..=j {
-                    r[idx[k]] = (i + j) as f64 / 2.0;
-                }
-                i = j + 1;
-            }
-            r
-        }
+        let ranks = diagnostics::midranks;
         let (ra, rb) = (ranks(a), ranks(b));
         let n = a.len() as f64;
         let (ma, mb) = (ra.iter().sum::<f64>() / n, rb.iter().sum::<f64>() / n);

@@ -24,7 +24,7 @@ use super::{FeatureView, ShiftError, ShiftOptions};
 const Z_975: f64 = 1.959_963_984_540_054;
 
 /// Midranks (1-based, ties get the average rank) of `values`.
-fn midranks(values: &[f64]) -> Vec<f64> {
+pub(crate) fn midranks(values: &[f64]) -> Vec<f64> {
     let mut order: Vec<usize> = (0..values.len()).collect();
     order.sort_unstable_by(|&a, &b| values[a].total_cmp(&values[b]));
     let mut ranks = vec![0.0; values.len()];

@@ -184,6 +184,7 @@ fn load(d: &Dataset) -> Result<(UnitTable, UnitTable), String> {
         weight_column: None,
         features: vec![d.features.into()],
         delimiter: None,
+        keep_columns: Vec::new(),
     };
     let labeled_read = ReadOptions {
         outcome: Some("y".into()),

@@ -83,6 +83,7 @@ fn read_options(d: &Dataset, outcome: Option<&str>) -> ReadOptions {
         weight_column: None,
         features: vec![d.features.into()],
         delimiter: None,
+        keep_columns: Vec::new(),
     }
 }
 

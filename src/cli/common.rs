@@ -137,6 +137,7 @@ impl InputArgs {
             weight_column,
             features: feature_selectors(features),
             delimiter: delimiter.map(DelimiterArg::byte),
+            keep_columns: Vec::new(),
         };
         let labeled = ReadOptions {
             outcome: Some(self.outcome.clone()),
@@ -315,6 +316,8 @@ pub struct SelectConfig {
     pub batch_design: Option<PathBuf>,
     /// `--allow-missing-batch`.
     pub allow_missing_batch: bool,
+    /// Which side of the threshold is interesting (`--lower-is-better`: below).
+    pub direction: crate::conformal::score::Direction,
 }
 
 impl SelectConfig {
@@ -410,6 +413,7 @@ impl TryFrom<SelectArgs> for SelectConfig {
             allow_unreliable_weights: a.allow_unreliable_weights,
             batch_design: a.batch_design,
             allow_missing_batch: a.allow_missing_batch,
+            direction: crate::conformal::score::Direction::Above,
         })
     }
 }

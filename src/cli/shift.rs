@@ -152,6 +152,7 @@ impl TryFrom<ShiftArgs> for ShiftConfig {
             weight_column: None,
             features: feature_selectors(&a.features),
             delimiter: a.delimiter.map(DelimiterArg::byte),
+            keep_columns: Vec::new(),
         };
         Ok(ShiftConfig {
             labeled_path: a.labeled,

@@ -65,6 +65,27 @@ impl ScoreKind {
     }
 }
 
+/// Which side of the threshold makes a unit interesting: `Above` (the default, "outcome
+/// exceeds c") or `Below` (`--lower-is-better`: "outcome below c", for potency in nM,
+/// clearance, toxicity).
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
+#[serde(rename_all = "lowercase")]
+pub enum Direction {
+    #[default]
+    Above,
+    Below,
+}
+
+impl Direction {
+    /// "above" or "below", as outputs and messages say it ("below 100").
+    pub fn word(self) -> &'static str {
+        match self {
+            Direction::Above => "above",
+            Direction::Below => "below",
+        }
+    }
+}
+
 /// Thresholds: one value for every unit, or one per unit.
 #[derive(Clone, Copy, Debug)]
 pub enum Thresholds<'a> {

@@ -28,6 +28,6 @@ pub use folder::{FolderError, Manifest, RunFolder, MANIFEST};
 pub use output::{abandon_temporaries, write_atomic, OutputSet};
 pub use read::{
     delimiter_for, parse_finite, read_id_list, read_units, read_units_choosing, ColumnKind,
-    ReadOptions, Role, UnitTable,
+    KeptColumns, ReadOptions, Role, UnitTable,
 };
 pub use source::{check_one_stdin, Source};

@@ -95,6 +95,8 @@ pub struct ReadOptions {
     pub features: Vec<String>,
     /// Field delimiter. `None`: tab if the file name ends in .tsv/.tab, else comma.
     pub delimiter: Option<u8>,
+    /// Columns copied verbatim to the outputs (`--keep-columns`), in this order.
+    pub keep_columns: Vec<String>,
 }
 
 impl ReadOptions {
@@ -108,6 +110,34 @@ impl ReadOptions {
             weight_column: None,
             features: Vec::new(),
             delimiter: None,
+            keep_columns: Vec::new(),
+        }
+    }
+}
+
+/// Columns copied verbatim from the input to the outputs (`--keep-columns`): their names
+/// and their cells, row-major (row `r`, kept column `k` at `values[r * names.len() + k]`).
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct KeptColumns {
+    pub names: Vec<String>,
+    pub values: Vec<String>,
+}
+
+impl KeptColumns {
+    /// The kept cells of row `r`, in `names` order (empty when nothing is kept).
+    pub fn row(&self, r: usize) -> &[String] {
+        let k = self.names.len();
+        &self.values[r * k..(r + 1) * k]
+    }
+
+    /// The kept cells of rows `rows`, in that order.
+    pub fn subset(&self, rows: &[usize]) -> KeptColumns {
+        KeptColumns {
+            names: self.names.clone(),
+            values: rows
+                .iter()
+                .flat_map(|&r| self.row(r).iter().cloned())
+                .collect(),
         }
     }
 }
@@ -125,6 +155,8 @@ pub struct UnitTable {
     pub feature_names: Vec<String>,
     /// Column-major: feature f of row r is features[f * n_rows + r].
     pub features: Vec<f64>,
+    /// Pass-through columns (`--keep-columns`); empty unless asked for.
+    pub kept: KeptColumns,
 }
 
 impl UnitTable {
@@ -718,6 +750,7 @@ fn finish_table(
         weight: finish(weight, &columns.weight),
         feature_names: columns.feature_names,
         features: features.into_column_major(),
+        kept: KeptColumns::default(),
     })
 }
 

@@ -121,6 +121,7 @@ pub fn feature_view(table: &UnitTable) -> Result<FeatureView<'_>, ShiftError> {
 ///     weight: None,
 ///     feature_names: vec![],
 ///     features: vec![],
+///     kept: Default::default(),
 /// };
 /// let (labeled, pool) = (table(Role::Labeled, 3), table(Role::Pool, 4));
 /// let weighting = obtain_weights(&WeightSource::None, &labeled, &pool).unwrap();
@@ -378,6 +379,7 @@ mod tests {
             weight,
             feature_names: vec!["x".to_string()],
             features: feature,
+            kept: Default::default(),
         }
     }
 

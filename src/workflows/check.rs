@@ -377,6 +377,7 @@ pub(crate) fn subset(table: &UnitTable, rows: &[usize], role: Role) -> UnitTable
         weight: None,
         feature_names: table.feature_names.clone(),
         features,
+        kept: table.kept.subset(rows),
     }
 }
 

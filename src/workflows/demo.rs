@@ -187,6 +187,7 @@ pub fn labeled_table(rows: usize, seed: u64) -> (crate::io::UnitTable, Vec<f64>)
         weight: None,
         feature_names: FEATURES.iter().map(|s| s.to_string()).collect(),
         features,
+        kept: Default::default(),
     };
     (table, log_ratio)
 }

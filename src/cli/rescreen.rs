@@ -298,6 +298,8 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     }
     summary.warnings.extend(shared_ids_warning(&labeled, &pool));
     summary.unreliable_weights = unreliable;
+    summary.dropped_missing_outcome_count = labeled.dropped_missing_outcome;
+    summary.censored_outcome_count = labeled.censored_outcomes;
 
     let current: Vec<CurrentUnit<'_>> = (0..pool.len())
         .map(|j| CurrentUnit {

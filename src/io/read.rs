@@ -19,6 +19,7 @@ use std::path::{Path, PathBuf};
 
 use super::columns::{ChosenColumns, Column, Header};
 use super::errors::{shown, InputError};
+use super::outcome::{classify, decide_censored, MissingOutcome, OutcomeCell, OutcomeCells};
 use super::source::{display_path, Source};
 
 /// Which file a table came from; used in messages ("labeled file", "pool file").
@@ -28,6 +29,9 @@ pub enum Role {
     Pool,
     /// A list of ids chosen earlier (`audit --shortlist`).
     Shortlist,
+    /// One table holding both (`--table`): rows with an outcome are labeled, the others
+    /// the pool.
+    Table,
 }
 
 impl fmt::Display for Role {
@@ -36,6 +40,7 @@ impl fmt::Display for Role {
             Role::Labeled => "labeled file",
             Role::Pool => "pool file",
             Role::Shortlist => "shortlist file",
+            Role::Table => "table",
         })
     }
 }
@@ -49,6 +54,8 @@ pub enum ColumnKind {
     Threshold,
     Weight,
     Feature,
+    /// A column copied verbatim to the outputs (`--keep-columns`).
+    Kept,
 }
 
 impl ColumnKind {
@@ -61,6 +68,7 @@ impl ColumnKind {
             ColumnKind::Threshold => "threshold",
             ColumnKind::Weight => "weight",
             ColumnKind::Feature => "feature value",
+            ColumnKind::Kept => "kept column",
         }
     }
 
@@ -73,6 +81,7 @@ impl ColumnKind {
             ColumnKind::Threshold => "--threshold-column",
             ColumnKind::Weight => "--weight-column",
             ColumnKind::Feature => "--features",
+            ColumnKind::Kept => "--keep-columns",
         }
     }
 }
@@ -95,8 +104,12 @@ pub struct ReadOptions {
     pub features: Vec<String>,
     /// Field delimiter. `None`: tab if the file name ends in .tsv/.tab, else comma.
     pub delimiter: Option<u8>,
-    /// Columns copied verbatim to the outputs (`--keep-columns`), in this order.
+    /// Columns copied verbatim to the outputs (`--keep-columns`), in this order. Required
+    /// in a pool file and a one-table input; a labeled file reads those it has.
     pub keep_columns: Vec<String>,
+    /// How labeled outcome cells that are not plain numbers are read (missing-value
+    /// tokens, censored values); defaults to [`OutcomeCells::default`].
+    pub outcome_cells: OutcomeCells,
 }
 
 impl ReadOptions {
@@ -111,6 +124,7 @@ impl ReadOptions {
             features: Vec::new(),
             delimiter: None,
             keep_columns: Vec::new(),
+            outcome_cells: OutcomeCells::default(),
         }
     }
 }
@@ -157,6 +171,12 @@ pub struct UnitTable {
     pub features: Vec<f64>,
     /// Pass-through columns (`--keep-columns`); empty unless asked for.
     pub kept: KeptColumns,
+    /// Labeled rows left out because their outcome was a missing-value token
+    /// (`--missing-outcome drop`); 0 for a pool.
+    pub dropped_missing_outcome: usize,
+    /// Labeled outcomes given as censored values (`>x`, `<=x`, ...) and decided by their
+    /// bound; 0 for a pool.
+    pub censored_outcomes: usize,
 }
 
 impl UnitTable {
@@ -185,16 +205,22 @@ impl UnitTable {
 }
 
 /// The field delimiter for `path`: `explicit` if given, else tab for names ending in
-/// `.tsv` or `.tab` (any case), else comma.
+/// `.tsv` or `.tab` (any case; also before a `.gz` or `.zst` ending, as in `x.tsv.gz`),
+/// else comma.
 pub fn delimiter_for(path: &Path, explicit: Option<u8>) -> u8 {
     if let Some(delimiter) = explicit {
         return delimiter;
     }
-    let tabbed = path
-        .extension()
-        .and_then(|ext| ext.to_str())
-        .is_some_and(|ext| ext.eq_ignore_ascii_case("tsv") || ext.eq_ignore_ascii_case("tab"));
-    if tabbed {
+    let name = path
+        .file_name()
+        .and_then(|name| name.to_str())
+        .unwrap_or_default()
+        .to_ascii_lowercase();
+    let name = [".gz", ".zst"]
+        .iter()
+        .find_map(|ending| name.strip_suffix(ending))
+        .unwrap_or(&name);
+    if name.ends_with(".tsv") || name.ends_with(".tab") {
         b'\t'
     } else {
         b','
@@ -440,13 +466,15 @@ fn id_cell(
 ///
 /// Reads the whole file into memory: about 8 bytes per number plus the ids.
 /// Header names and cells are trimmed of ASCII whitespace; a UTF-8 byte order mark, blank
-/// lines and CRLF line ends are accepted.
+/// lines and CRLF line ends are accepted; gzip and Zstandard files are decompressed
+/// ([`Source::open`]).
 ///
 /// # Errors
 /// Every bad input is an [`InputError`] variant naming the file, line and column: file
 /// cannot be opened, empty file, no data rows, missing or doubled column, non-numeric,
 /// empty, NaN or infinite cell, empty or non-UTF-8 id, duplicate id, weight <= 0, wrong
-/// number of fields, feature selection that does not resolve.
+/// number of fields, feature selection that does not resolve, a missing or undecidable
+/// censored outcome (see [`OutcomeCells`]).
 pub fn read_units(path: &Path, role: Role, options: &ReadOptions) -> Result<UnitTable, InputError> {
     read_units_choosing(path, role, options, |_| None)
 }
@@ -465,6 +493,62 @@ pub fn read_units_choosing(
     options: &ReadOptions,
     choose: impl FnOnce(&[String]) -> Option<String>,
 ) -> Result<UnitTable, InputError> {
+    let (table, _) = read_file(path, role, options, None, choose)?;
+    Ok(table)
+}
+
+/// Read one table holding both the labeled rows and the pool (`--table`), once, from start
+/// to end (standard input works): a row whose outcome cell is empty, or one of
+/// `untested_markers` (trimmed, ignoring ASCII case), is a pool row; every other row is
+/// labeled and its outcome is read as in a labeled file (missing-value tokens, censored
+/// values: `options.outcome_cells`, where an empty cell means untested instead). Both
+/// tables keep the file's row order; messages name the file and its editor lines.
+///
+/// `options.outcome` names the outcome column (required). Returns `(labeled, pool)`, with
+/// roles [`Role::Labeled`] and [`Role::Pool`] and the same path.
+///
+/// # Errors
+/// As [`read_units`]; also [`InputError::TableSideEmpty`] when no row is labeled or no row
+/// is untested, and [`InputError::DuplicateId`] for an id on two rows of either kind.
+pub fn read_table(
+    path: &Path,
+    options: &ReadOptions,
+    untested_markers: &[String],
+) -> Result<(UnitTable, UnitTable), InputError> {
+    read_table_choosing(path, options, untested_markers, |_| None)
+}
+
+/// [`read_table`] with the prediction column chosen from the header, as in
+/// [`read_units_choosing`].
+///
+/// # Errors
+/// As [`read_table`].
+///
+/// # Panics
+/// If `options.outcome` is `None`.
+pub fn read_table_choosing(
+    path: &Path,
+    options: &ReadOptions,
+    untested_markers: &[String],
+    choose: impl FnOnce(&[String]) -> Option<String>,
+) -> Result<(UnitTable, UnitTable), InputError> {
+    assert!(
+        options.outcome.is_some(),
+        "a one-table read needs the outcome column to tell labeled rows from the pool"
+    );
+    let (labeled, pool) = read_file(path, Role::Table, options, Some(untested_markers), choose)?;
+    Ok((labeled, pool.expect("a one-table read returns the pool")))
+}
+
+/// The one reader behind [`read_units`] and [`read_table`]: with `untested` (a one-table
+/// read) the rows are split into a labeled table and a pool.
+fn read_file(
+    path: &Path,
+    role: Role,
+    options: &ReadOptions,
+    untested: Option<&[String]>,
+    choose: impl FnOnce(&[String]) -> Option<String>,
+) -> Result<(UnitTable, Option<UnitTable>), InputError> {
     let shown_path = display_path(path);
     let (mut reader, delimiter, file_len) = open_table(path, &shown_path, options.delimiter)?;
     let header = read_header(&mut reader, &shown_path, role, delimiter)?;
@@ -475,18 +559,26 @@ pub fn read_units_choosing(
         })?,
         None => header.choose_columns(options)?,
     };
+    let rules = RowRules {
+        cells: &options.outcome_cells,
+        untested,
+    };
     let rows = read_rows(
         &mut reader,
         &shown_path,
         delimiter,
         &header.names,
         &columns,
+        &rules,
         file_len,
     )?;
     let header_line = header.line;
-    let mut table = finish_table(&shown_path, role, header_line, columns, rows)?;
+    let (mut table, mut pool) = finish_table(&shown_path, role, header_line, columns, rows)?;
     table.path = path.to_path_buf();
-    Ok(table)
+    if let Some(pool) = pool.as_mut() {
+        pool.path = path.to_path_buf();
+    }
+    Ok((table, pool))
 }
 
 /// Open `path` for reading (not a directory; `-` is standard input) with the delimiter it
@@ -496,13 +588,26 @@ fn open_table(
     shown_path: &Path,
     explicit_delimiter: Option<u8>,
 ) -> Result<(csv::Reader<Source>, u8, u64), InputError> {
-    let source = Source::open(path).map_err(|source| InputError::Open {
-        path: shown_path.to_path_buf(),
-        source,
-    })?;
+    let source = Source::open(path).map_err(|source| open_error(shown_path, source))?;
     let file_len = source.len_hint();
     let delimiter = delimiter_for(path, explicit_delimiter);
     Ok((csv_reader(delimiter, source), delimiter, file_len))
+}
+
+/// Why an input could not be opened: a binary format that is not a table (named, with what
+/// to do), or the operating system's reason.
+pub(crate) fn open_error(shown_path: &Path, source: std::io::Error) -> InputError {
+    if source.kind() == std::io::ErrorKind::InvalidData {
+        InputError::NotText {
+            path: shown_path.to_path_buf(),
+            message: source.to_string(),
+        }
+    } else {
+        InputError::Open {
+            path: shown_path.to_path_buf(),
+            source,
+        }
+    }
 }
 
 /// The header row: its editor line and its names, trimmed (each must be UTF-8).
@@ -550,16 +655,30 @@ fn read_header<'a>(
 struct Rows {
     ids: Vec<String>,
     prediction: Vec<f64>,
+    /// NaN for the untested rows of a one-table read.
     outcome: Vec<f64>,
     threshold: Vec<f64>,
     weight: Vec<f64>,
     features: FeatureBuffer,
+    /// Kept cells, row-major.
+    kept: Vec<String>,
+    /// One-table read: whether each row is untested (a pool row).
+    untested: Vec<bool>,
+    dropped_missing_outcome: usize,
+    censored_outcomes: usize,
     lines: RowLines,
 }
 
+/// How a row's outcome cell is read: the assay conventions and, in a one-table read, the
+/// markers of untested rows.
+struct RowRules<'a> {
+    cells: &'a OutcomeCells,
+    untested: Option<&'a [String]>,
+}
+
 /// Editor line of every data row, stored compactly: row `r` is on line `r + shift`, and the
-/// shift changes only at blank lines and quoted line breaks, so only the changes are kept.
-/// Used to name both lines of a repeated id without reading the file again.
+/// shift changes only at blank lines, quoted line breaks and dropped rows, so only the
+/// changes are kept. Used to name both lines of a repeated id without reading the file again.
 #[derive(Default)]
 struct RowLines {
     /// `(first row, shift)`, increasing in row.
@@ -597,12 +716,16 @@ impl Rows {
             threshold: Vec::new(),
             weight: Vec::new(),
             features: FeatureBuffer::new(feature_count),
+            kept: Vec::new(),
+            untested: Vec::new(),
+            dropped_missing_outcome: 0,
+            censored_outcomes: 0,
             lines: RowLines::default(),
         }
     }
 
     /// Size every chosen column for `estimate` rows.
-    fn reserve(&mut self, estimate: usize, columns: &ChosenColumns) {
+    fn reserve(&mut self, estimate: usize, columns: &ChosenColumns, split: bool) {
         self.ids.reserve(estimate);
         self.prediction.reserve(estimate);
         if columns.outcome.is_some() {
@@ -614,28 +737,66 @@ impl Rows {
         if columns.weight.is_some() {
             self.weight.reserve(estimate);
         }
+        if split {
+            self.untested.reserve(estimate);
+        }
         self.features.reserve_rows(estimate);
     }
 
     /// Parse one record's chosen cells (id, prediction, outcome, threshold, weight, features,
-    /// in that order, so the first bad cell is the one reported).
+    /// kept columns, in that order, so the first bad cell is the one reported). A labeled row
+    /// whose outcome is a missing-value token is skipped (and counted) under
+    /// `--missing-outcome drop` before any other cell is looked at.
     fn push(
         &mut self,
         path: &Path,
         line: u64,
         record: &csv::ByteRecord,
         columns: &ChosenColumns,
+        rules: &RowRules<'_>,
     ) -> Result<(), InputError> {
+        let outcome_cell = columns.outcome.as_ref().map(|column| {
+            classify(
+                record.get(column.index).unwrap_or_default(),
+                rules.cells,
+                rules.untested,
+            )
+        });
+        if outcome_cell == Some(OutcomeCell::Missing)
+            && rules.cells.missing == MissingOutcome::Drop
+            && !rules.cells.tested_only
+        {
+            self.dropped_missing_outcome += 1;
+            return Ok(());
+        }
         self.lines.note(self.ids.len(), line);
         self.ids.push(id_cell(path, line, record, &columns.id)?);
         self.prediction
             .push(number_cell(path, line, record, &columns.prediction)?);
-        if let Some(column) = &columns.outcome {
-            self.outcome.push(number_cell(path, line, record, column)?);
+        // A censored outcome is decided against this row's threshold, read first then.
+        let censored =
+            matches!(outcome_cell, Some(OutcomeCell::Censored(..))) && !rules.cells.tested_only;
+        let mut threshold = None;
+        if let (Some(column), true) = (&columns.threshold, censored) {
+            threshold = Some(number_cell(path, line, record, column)?);
+        }
+        if let (Some(column), Some(cell)) = (&columns.outcome, outcome_cell) {
+            let value = if rules.cells.tested_only {
+                f64::NAN
+            } else {
+                self.outcome_value(path, line, record, column, cell, threshold, rules)?
+            };
+            self.outcome.push(value);
+            if rules.untested.is_some() {
+                self.untested.push(cell == OutcomeCell::Untested);
+            }
         }
         if let Some(column) = &columns.threshold {
-            self.threshold
-                .push(number_cell(path, line, record, column)?);
+            let value = match threshold {
+                Some(value) => value,
+                None => number_cell(path, line, record, column)?,
+            };
+            self.threshold.push(value);
         }
         if let Some(column) = &columns.weight {
             self.weight.push(weight_cell(path, line, record, column)?);
@@ -646,7 +807,98 @@ impl Rows {
                 .set(f, number_cell(path, line, record, column)?);
         }
         self.features.finish_row();
+        for column in &columns.kept {
+            self.kept.push(kept_cell(path, line, record, column)?);
+        }
         Ok(())
+    }
+
+    /// The outcome to store for a classified cell (NaN for an untested row), or the located
+    /// error: a missing value under `--missing-outcome error`, an unreadable cell, a censored
+    /// value its bound does not decide or that the score cannot use.
+    #[allow(clippy::too_many_arguments)]
+    fn outcome_value(
+        &mut self,
+        path: &Path,
+        line: u64,
+        record: &csv::ByteRecord,
+        column: &Column,
+        cell: OutcomeCell,
+        row_threshold: Option<f64>,
+        rules: &RowRules<'_>,
+    ) -> Result<f64, InputError> {
+        let text = || shown(record.get(column.index).unwrap_or_default().trim_ascii());
+        match cell {
+            OutcomeCell::Value(value) => Ok(value),
+            OutcomeCell::Untested => Ok(f64::NAN),
+            OutcomeCell::Missing => Err(InputError::MissingOutcome {
+                path: path.to_path_buf(),
+                line,
+                column: column.name.clone(),
+                value: text(),
+                one_table: rules.untested.is_some(),
+            }),
+            OutcomeCell::Unreadable => match number_error(path, line, record, column) {
+                error @ InputError::NotFinite { .. } => Err(error),
+                _ => Err(InputError::UnreadableOutcome {
+                    path: path.to_path_buf(),
+                    line,
+                    column: column.name.clone(),
+                    value: text(),
+                    one_table: rules.untested.is_some(),
+                }),
+            },
+            OutcomeCell::Censored(bound, x) => {
+                let problem = match rules.cells.censored {
+                    None => Err(
+                        "censored values are not accepted here (they need a threshold and a \
+                         direction to be decided)"
+                            .to_string(),
+                    ),
+                    Some(rule) if rule.score_needs_value => Err(
+                        "the residual score (--score residual) needs the measured value itself, \
+                         not a bound"
+                            .to_string(),
+                    ),
+                    Some(rule) => match row_threshold.or(rule.threshold) {
+                        Some(c) => decide_censored(bound, x, c, rule.direction),
+                        None => Err("no threshold is known for this row".to_string()),
+                    },
+                };
+                match problem {
+                    Ok(value) => {
+                        self.censored_outcomes += 1;
+                        Ok(value)
+                    }
+                    Err(problem) => Err(InputError::CensoredOutcome {
+                        path: path.to_path_buf(),
+                        line,
+                        column: column.name.clone(),
+                        value: text(),
+                        problem,
+                        residual: rules.cells.censored.is_some_and(|r| r.score_needs_value),
+                    }),
+                }
+            }
+        }
+    }
+}
+
+/// A kept cell, verbatim (it must be UTF-8).
+fn kept_cell(
+    path: &Path,
+    line: u64,
+    record: &csv::ByteRecord,
+    column: &Column,
+) -> Result<String, InputError> {
+    let cell = record.get(column.index).unwrap_or_default();
+    match std::str::from_utf8(cell) {
+        Ok(text) => Ok(text.to_owned()),
+        Err(_) => Err(InputError::InvalidUtf8 {
+            path: path.to_path_buf(),
+            line,
+            column: column.name.clone(),
+        }),
     }
 }
 
@@ -657,10 +909,12 @@ fn read_rows(
     delimiter: u8,
     header_names: &[String],
     columns: &ChosenColumns,
+    rules: &RowRules<'_>,
     file_len: u64,
 ) -> Result<Rows, InputError> {
     let mut rows = Rows::new(columns.features.len());
     let mut record = csv::ByteRecord::new();
+    let mut reserved = false;
     loop {
         match reader.read_byte_record(&mut record) {
             Ok(true) => {}
@@ -677,13 +931,14 @@ fn read_rows(
                 ));
             }
         }
-        if rows.ids.is_empty() {
+        if !reserved {
             // Size every column from the file length and this row's length; generous,
             // since untouched capacity is never paged in, but bounded.
             let row_bytes = (record.as_slice().len() + record.len()).max(1) as u64;
             let estimate = (file_len / row_bytes).saturating_mul(5) / 4 + 16;
             let estimate = estimate.min(file_len / 2 + 16).min(MAX_RESERVED_ROWS) as usize;
-            rows.reserve(estimate, columns);
+            rows.reserve(estimate, columns, rules.untested.is_some());
+            reserved = true;
         }
         let line = match record.position() {
             Some(position) => {
@@ -693,19 +948,30 @@ fn read_rows(
             }
             None => 0,
         };
-        rows.push(path, line, &record, columns)?;
+        rows.push(path, line, &record, columns, rules)?;
     }
     Ok(rows)
 }
 
-/// Check the rows as a whole (at least one, ids unique) and build the table.
+/// The rows `keep` of a column-major feature buffer of `n` rows and `width` features.
+fn feature_rows(features: &[f64], n: usize, width: usize, keep: &[usize]) -> Vec<f64> {
+    let mut out = Vec::with_capacity(width * keep.len());
+    for f in 0..width {
+        let column = &features[f * n..(f + 1) * n];
+        out.extend(keep.iter().map(|&r| column[r]));
+    }
+    out
+}
+
+/// Check the rows as a whole (at least one, ids unique) and build the table; a one-table
+/// read ([`Role::Table`]) is split into the labeled table and the pool.
 fn finish_table(
     path: &Path,
     role: Role,
     header_line: u64,
     columns: ChosenColumns,
     rows: Rows,
-) -> Result<UnitTable, InputError> {
+) -> Result<(UnitTable, Option<UnitTable>), InputError> {
     let Rows {
         mut ids,
         mut prediction,
@@ -713,6 +979,10 @@ fn finish_table(
         threshold,
         weight,
         features,
+        kept,
+        untested,
+        dropped_missing_outcome,
+        censored_outcomes,
         lines,
     } = rows;
     if ids.is_empty() {
@@ -740,7 +1010,11 @@ fn finish_table(
             values
         })
     };
-    Ok(UnitTable {
+    let kept = KeptColumns {
+        names: columns.kept.iter().map(|c| c.name.clone()).collect(),
+        values: kept,
+    };
+    let whole = UnitTable {
         path: path.to_path_buf(),
         role,
         ids,
@@ -750,8 +1024,164 @@ fn finish_table(
         weight: finish(weight, &columns.weight),
         feature_names: columns.feature_names,
         features: features.into_column_major(),
-        kept: KeptColumns::default(),
-    })
+        kept,
+        dropped_missing_outcome,
+        censored_outcomes,
+    };
+    if role != Role::Table {
+        return Ok((whole, None));
+    }
+    let (pool_rows, labeled_rows): (Vec<usize>, Vec<usize>) =
+        (0..whole.len()).partition(|&r| untested[r]);
+    let outcome_name = columns.outcome.as_ref().map_or("", |c| c.name.as_str());
+    for (rows, labeled) in [(&labeled_rows, true), (&pool_rows, false)] {
+        if rows.is_empty() {
+            return Err(InputError::TableSideEmpty {
+                path: path.to_path_buf(),
+                header_line,
+                column: outcome_name.to_string(),
+                labeled,
+            });
+        }
+    }
+    let part = |rows: &[usize], role: Role| {
+        let pick = |values: &Option<Vec<f64>>| {
+            values
+                .as_ref()
+                .map(|v| rows.iter().map(|&r| v[r]).collect::<Vec<f64>>())
+        };
+        UnitTable {
+            path: whole.path.clone(),
+            role,
+            ids: rows.iter().map(|&r| whole.ids[r].clone()).collect(),
+            outcome: match role {
+                Role::Labeled => pick(&whole.outcome),
+                _ => None,
+            },
+            prediction: rows.iter().map(|&r| whole.prediction[r]).collect(),
+            threshold: pick(&whole.threshold),
+            weight: pick(&whole.weight),
+            feature_names: whole.feature_names.clone(),
+            features: feature_rows(
+                &whole.features,
+                whole.len(),
+                whole.feature_names.len(),
+                rows,
+            ),
+            kept: whole.kept.subset(rows),
+            dropped_missing_outcome: match role {
+                Role::Labeled => whole.dropped_missing_outcome,
+                _ => 0,
+            },
+            censored_outcomes: match role {
+                Role::Labeled => whole.censored_outcomes,
+                _ => 0,
+            },
+        }
+    };
+    Ok((
+        part(&labeled_rows, Role::Labeled),
+        Some(part(&pool_rows, Role::Pool)),
+    ))
+}
+
+/// What the first rows of a table hold, column by column (`weighbridge columns`).
+#[derive(Clone, Debug, PartialEq)]
+pub struct ColumnOverview {
+    /// Editor line of the header.
+    pub header_line: u64,
+    /// Header names, in order.
+    pub names: Vec<String>,
+    /// Data rows looked at.
+    pub rows_read: usize,
+    /// Whether those were all the rows.
+    pub complete: bool,
+    /// Per column: cells that are finite numbers.
+    pub numeric: Vec<usize>,
+    /// Per column: censored values such as `>10000` or `<=1`.
+    pub censored: Vec<usize>,
+    /// Per column: empty cells.
+    pub empty: Vec<usize>,
+    /// Per column: the first non-empty cell, if any.
+    pub example: Vec<Option<String>>,
+}
+
+/// Count what the first `max_rows` data rows of `path` hold per column (numbers, censored
+/// values, empty cells) and keep one example cell each. Reads the file as the other
+/// readers do (delimiter by extension or `delimiter`, `-`, .gz/.zst) and stops after
+/// `max_rows` rows.
+///
+/// # Errors
+/// The file cannot be opened, is empty, has a non-UTF-8 header, or a row up to `max_rows`
+/// is malformed (wrong number of fields).
+pub fn column_overview(
+    path: &Path,
+    delimiter: Option<u8>,
+    max_rows: usize,
+) -> Result<ColumnOverview, InputError> {
+    let shown_path = display_path(path);
+    let (mut reader, delimiter, _) = open_table(path, &shown_path, delimiter)?;
+    let header = read_header(&mut reader, &shown_path, Role::Table, delimiter)?;
+    let width = header.names.len();
+    let mut overview = ColumnOverview {
+        header_line: header.line,
+        names: header.names.clone(),
+        rows_read: 0,
+        complete: false,
+        numeric: vec![0; width],
+        censored: vec![0; width],
+        empty: vec![0; width],
+        example: vec![None; width],
+    };
+    let cells = OutcomeCells {
+        missing_values: Vec::new(),
+        ..OutcomeCells::default()
+    };
+    let mut record = csv::ByteRecord::new();
+    while overview.rows_read < max_rows {
+        match reader.read_byte_record(&mut record) {
+            Ok(true) => {}
+            Ok(false) => {
+                overview.complete = true;
+                break;
+            }
+            Err(error) => {
+                let reached_line = reader.position().line();
+                return Err(csv_error(
+                    reader.get_ref(),
+                    &shown_path,
+                    delimiter,
+                    &header.names,
+                    reached_line,
+                    error,
+                ));
+            }
+        }
+        if let Some(position) = record.position() {
+            reader.get_mut().forget_before(position.byte());
+        }
+        overview.rows_read += 1;
+        for (c, raw) in record.iter().enumerate() {
+            let cell = raw.trim_ascii();
+            if cell.is_empty() {
+                overview.empty[c] += 1;
+                continue;
+            }
+            match classify(cell, &cells, None) {
+                OutcomeCell::Value(_) => overview.numeric[c] += 1,
+                OutcomeCell::Censored(..) => overview.censored[c] += 1,
+                _ => {}
+            }
+            if overview.example[c].is_none() {
+                overview.example[c] = Some(shown(cell));
+            }
+        }
+    }
+    if !overview.complete {
+        // Exactly `max_rows` rows: tell whether there are more.
+        overview.complete = matches!(reader.read_byte_record(&mut record), Ok(false));
+    }
+    Ok(overview)
 }
 
 fn id_hash(id: &str) -> u64 {
@@ -803,10 +1233,7 @@ pub fn read_id_list(
     delimiter: Option<u8>,
 ) -> Result<Vec<(String, u64)>, InputError> {
     let shown_path = display_path(path);
-    let source = Source::open(path).map_err(|source| InputError::Open {
-        path: shown_path.clone(),
-        source,
-    })?;
+    let source = Source::open(path).map_err(|source| open_error(&shown_path, source))?;
     let delimiter = delimiter_for(path, delimiter);
     let path = shown_path.as_path();
     let mut reader = csv::ReaderBuilder::new()

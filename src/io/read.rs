@@ -2213,3 +2213,448 @@ mod tests {
         }
     }
 }
+
+#[cfg(test)]
+mod one_table_and_conventions_tests {
+    //! One-table reads, assay conventions, kept columns and compressed inputs. Expected
+    //! rows, counts and lines are read off the literal inputs by hand (header = line 1);
+    //! compressed inputs are checked against the same text read plain.
+    use super::*;
+    use crate::conformal::score::Direction;
+    use crate::io::outcome::CensoredRule;
+    use std::fs;
+    use std::io::Write as _;
+    use tempfile::TempDir;
+
+    fn write(dir: &TempDir, name: &str, content: &[u8]) -> PathBuf {
+        let path = dir.path().join(name);
+        fs::write(&path, content).unwrap();
+        path
+    }
+
+    fn options(threshold: Option<f64>, direction: Direction) -> ReadOptions {
+        ReadOptions {
+            outcome: Some("y".to_string()),
+            features: vec!["a..b".to_string()],
+            outcome_cells: OutcomeCells {
+                censored: Some(CensoredRule {
+                    direction,
+                    threshold,
+                    score_needs_value: false,
+                }),
+                ..OutcomeCells::default()
+            },
+            ..ReadOptions::new("pred")
+        }
+    }
+
+    const TABLE: &str = "id,y,pred,a,b,series\n\
+                         u1,7.5,7.0,1,2,S1\n\
+                         p1,,6.0,3,4,S2\n\
+                         u2,5.0,5.5,5,6,S1\n\
+                         \n\
+                         p2,untested,8.0,7,8,S3\n\
+                         u3,>8,6.9,9,10,S2\n";
+
+    #[test]
+    fn a_table_splits_into_labeled_rows_and_the_pool_in_file_order() {
+        let dir = TempDir::new().unwrap();
+        let path = write(&dir, "assays.csv", TABLE.as_bytes());
+        let read = ReadOptions {
+            keep_columns: vec!["series".to_string()],
+            ..options(Some(6.5), Direction::Above)
+        };
+        let (labeled, pool) = read_table(&path, &read, &["UNTESTED".to_string()]).unwrap();
+        assert_eq!(labeled.ids, ["u1", "u2", "u3"]);
+        assert_eq!(labeled.role, Role::Labeled);
+        assert_eq!(labeled.outcome.as_deref(), Some(&[7.5, 5.0, 8.0][..]));
+        assert_eq!(labeled.prediction, [7.0, 5.5, 6.9]);
+        assert_eq!(labeled.feature_column(1), [2.0, 6.0, 10.0]);
+        assert_eq!(labeled.censored_outcomes, 1);
+        assert_eq!(pool.ids, ["p1", "p2"]);
+        assert_eq!(pool.role, Role::Pool);
+        assert!(pool.outcome.is_none());
+        assert_eq!(pool.prediction, [6.0, 8.0]);
+        assert_eq!(pool.feature_column(0), [3.0, 7.0]);
+        assert_eq!(pool.feature_names, ["a", "b"]);
+        assert_eq!(pool.kept.names, ["series"]);
+        assert_eq!(pool.kept.row(1), ["S3"]);
+        assert_eq!(labeled.kept.row(2), ["S2"]);
+        assert_eq!(
+            (pool.dropped_missing_outcome, pool.censored_outcomes),
+            (0, 0)
+        );
+    }
+
+    #[test]
+    fn table_errors_name_the_file_and_the_editor_line() {
+        let dir = TempDir::new().unwrap();
+        // An id on a labeled and on a pool row: a duplicate, lines 2 and 4.
+        let path = write(
+            &dir,
+            "t.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,,1,1,1\nx,,1,1,1\n",
+        );
+        let error = read_table(&path, &options(Some(0.5), Direction::Above), &[]).unwrap_err();
+        assert!(
+            matches!(
+                error,
+                InputError::DuplicateId {
+                    line: 4,
+                    first_line: 2,
+                    ..
+                }
+            ),
+            "{error}"
+        );
+        // A bad cell after a blank line: line 5 of the table.
+        let path = write(
+            &dir,
+            "t.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,,1,1,1\n\nz,,1,q,1\n",
+        );
+        let message = read_table(&path, &options(Some(0.5), Direction::Above), &[])
+            .unwrap_err()
+            .to_string();
+        assert!(message.contains("t.csv line 5, column `a`"), "{message}");
+        // No pool rows, no labeled rows.
+        let path = write(&dir, "t.csv", b"id,y,pred,a,b\nx,1,1,1,1\n");
+        let error = read_table(&path, &options(Some(0.5), Direction::Above), &[]).unwrap_err();
+        assert!(
+            matches!(error, InputError::TableSideEmpty { labeled: false, .. }),
+            "{error}"
+        );
+        assert!(
+            error.to_string().contains("no pool (untested) rows"),
+            "{error}"
+        );
+        let path = write(&dir, "t.csv", b"id,y,pred,a,b\nx,,1,1,1\n");
+        let error = read_table(&path, &options(Some(0.5), Direction::Above), &[]).unwrap_err();
+        assert!(
+            matches!(error, InputError::TableSideEmpty { labeled: true, .. }),
+            "{error}"
+        );
+        // Junk in the outcome: the hint lists what an outcome cell may hold.
+        let path = write(
+            &dir,
+            "t.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,pending,1,1,1\n",
+        );
+        let error = read_table(&path, &options(Some(0.5), Direction::Above), &[]).unwrap_err();
+        let message = error.to_string();
+        assert!(
+            matches!(error, InputError::UnreadableOutcome { line: 3, .. }),
+            "{message}"
+        );
+        assert!(message.contains("--untested-marker"), "{message}");
+    }
+
+    #[test]
+    fn missing_outcomes_stop_or_are_dropped_and_counted() {
+        let dir = TempDir::new().unwrap();
+        let content = b"id,y,pred,a,b\nx,1,1,1,1\ny,NA,1,1,1\nz,,2,q,1\nw,2,3,1,1\n";
+        let path = write(&dir, "labeled.csv", content);
+        let error =
+            read_units(&path, Role::Labeled, &options(Some(0.5), Direction::Above)).unwrap_err();
+        let message = error.to_string();
+        assert!(
+            matches!(error, InputError::MissingOutcome { line: 3, .. }),
+            "{message}"
+        );
+        assert!(
+            message.contains("labeled.csv line 3, column `y`: `NA`")
+                && message.contains("--missing-outcome drop"),
+            "{message}"
+        );
+        // Dropped rows are not read further (z's bad feature cell is never looked at).
+        let mut drop = options(Some(0.5), Direction::Above);
+        drop.outcome_cells.missing = MissingOutcome::Drop;
+        let table = read_units(&path, Role::Labeled, &drop).unwrap();
+        assert_eq!(table.ids, ["x", "w"]);
+        assert_eq!(table.dropped_missing_outcome, 2);
+        assert_eq!(table.outcome.as_deref(), Some(&[1.0, 2.0][..]));
+        // A duplicate id after dropped rows still gets its editor lines.
+        let path = write(
+            &dir,
+            "labeled.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,NA,1,1,1\nx,2,1,1,1\n",
+        );
+        let error = read_units(&path, Role::Labeled, &drop).unwrap_err();
+        assert!(
+            matches!(
+                error,
+                InputError::DuplicateId {
+                    line: 4,
+                    first_line: 2,
+                    ..
+                }
+            ),
+            "{error}"
+        );
+        // In a table, NA is missing but the empty cell is untested; the hint offers the marker.
+        let path = write(
+            &dir,
+            "t.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,NA,1,1,1\nz,,1,1,1\n",
+        );
+        let message = read_table(&path, &options(Some(0.5), Direction::Above), &[])
+            .unwrap_err()
+            .to_string();
+        assert!(message.contains("--untested-marker 'NA'"), "{message}");
+        let (labeled, pool) = read_table(&path, &drop, &[]).unwrap();
+        assert_eq!((labeled.ids.len(), labeled.dropped_missing_outcome), (1, 1));
+        assert_eq!(pool.ids, ["z"]);
+    }
+
+    #[test]
+    fn censored_outcomes_decided_per_row_or_located_errors() {
+        let dir = TempDir::new().unwrap();
+        // Per-row thresholds: >7 at c = 6.5 is above; <5 at c = 6 is not; >7 at c = 8 is not
+        // decided (line 4).
+        let content = b"id,y,pred,c,a,b\nx,>7,1,6.5,1,1\ny,<5,1,6,1,1\nz,>7,1,8,1,1\n";
+        let path = write(&dir, "labeled.csv", content);
+        let read = ReadOptions {
+            threshold_column: Some("c".to_string()),
+            ..options(None, Direction::Above)
+        };
+        let error = read_units(&path, Role::Labeled, &read).unwrap_err();
+        let message = error.to_string();
+        assert!(
+            matches!(error, InputError::CensoredOutcome { line: 4, .. }),
+            "{message}"
+        );
+        assert!(
+            message.contains("`>7`") && message.contains("threshold 8"),
+            "{message}"
+        );
+        let path = write(
+            &dir,
+            "labeled.csv",
+            b"id,y,pred,c,a,b\nx,>7,1,6.5,1,1\ny,<5,1,6,1,1\n",
+        );
+        let table = read_units(&path, Role::Labeled, &read).unwrap();
+        assert_eq!(table.outcome.as_deref(), Some(&[7.0, 5.0][..]));
+        assert_eq!(table.censored_outcomes, 2);
+        // Lower is better: <1 nM at 100 is below; >5 at 100 is not decided.
+        let path = write(
+            &dir,
+            "labeled.csv",
+            b"id,y,pred,a,b\nx,<1,1,1,1\ny,>5,1,1,1\n",
+        );
+        let message = read_units(
+            &path,
+            Role::Labeled,
+            &options(Some(100.0), Direction::Below),
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(
+            message.contains("line 3") && message.contains("below 100"),
+            "{message}"
+        );
+        // The residual score needs the value.
+        let mut residual = options(Some(0.5), Direction::Above);
+        residual.outcome_cells.censored = Some(CensoredRule {
+            direction: Direction::Above,
+            threshold: Some(0.5),
+            score_needs_value: true,
+        });
+        let path = write(
+            &dir,
+            "labeled.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,>5,1,1,1\n",
+        );
+        let message = read_units(&path, Role::Labeled, &residual)
+            .unwrap_err()
+            .to_string();
+        assert!(
+            message.contains("line 3") && message.contains("--score residual"),
+            "{message}"
+        );
+    }
+
+    #[test]
+    fn kept_columns_are_required_in_the_pool_only() {
+        let dir = TempDir::new().unwrap();
+        let read = ReadOptions {
+            keep_columns: vec!["smiles".to_string(), "series".to_string()],
+            ..ReadOptions::new("pred")
+        };
+        let path = write(
+            &dir,
+            "pool.csv",
+            b"id,pred,series,smiles\na,1, S1 ,C(=O)O\nb,2,S2,CC\n",
+        );
+        let pool = read_units(&path, Role::Pool, &read).unwrap();
+        assert_eq!(pool.kept.names, ["smiles", "series"]);
+        // Verbatim: spaces kept.
+        assert_eq!(pool.kept.row(0), ["C(=O)O", " S1 "]);
+        let labeled_read = ReadOptions {
+            outcome: Some("y".to_string()),
+            ..read.clone()
+        };
+        let path = write(&dir, "labeled.csv", b"id,y,pred,series\na,1,1,S1\n");
+        let labeled = read_units(&path, Role::Labeled, &labeled_read).unwrap();
+        assert_eq!(labeled.kept.names, ["series"]);
+        assert_eq!(labeled.kept.row(0), ["S1"]);
+        let path = write(&dir, "pool.csv", b"id,pred,Series\na,1,S1\n");
+        let error = read_units(&path, Role::Pool, &read).unwrap_err();
+        let message = error.to_string();
+        assert!(
+            matches!(
+                error,
+                InputError::MissingColumn {
+                    kind: ColumnKind::Kept,
+                    ..
+                }
+            ),
+            "{message}"
+        );
+        assert!(message.contains("--keep-columns"), "{message}");
+    }
+
+    #[test]
+    fn unknown_columns_suggest_the_right_name() {
+        let dir = TempDir::new().unwrap();
+        let path = write(&dir, "labeled.csv", b"compound_id,pIC50,pred\na,1,1\n");
+        let read = ReadOptions {
+            id: "compound_id".to_string(),
+            outcome: Some("pic50".to_string()),
+            ..ReadOptions::new("pred")
+        };
+        let message = read_units(&path, Role::Labeled, &read)
+            .unwrap_err()
+            .to_string();
+        assert!(message.contains("did you mean `pIC50`?"), "{message}");
+        assert!(message.contains("its columns are"), "{message}");
+        // Many columns: the suggestion, the first twenty and where to see them all.
+        let names: Vec<String> = (0..30).map(|i| format!("col{i}")).collect();
+        let header = format!("id,pred,{},Target\n", names.join(","));
+        let row = format!("a,1,{},1\n", vec!["0"; 30].join(","));
+        let path = write(&dir, "labeled.csv", format!("{header}{row}").as_bytes());
+        let read = ReadOptions {
+            outcome: Some("target".to_string()),
+            ..ReadOptions::new("pred")
+        };
+        let message = read_units(&path, Role::Labeled, &read)
+            .unwrap_err()
+            .to_string();
+        assert!(message.contains("did you mean `Target`?"), "{message}");
+        assert!(message.contains("weighbridge columns"), "{message}");
+    }
+
+    fn gzip(bytes: &[u8]) -> Vec<u8> {
+        let mut encoder = flate2::write::GzEncoder::new(Vec::new(), flate2::Compression::fast());
+        encoder.write_all(bytes).unwrap();
+        encoder.finish().unwrap()
+    }
+
+    fn zstd(bytes: &[u8]) -> Vec<u8> {
+        ruzstd::encoding::compress_to_vec(bytes, ruzstd::encoding::CompressionLevel::Fastest)
+    }
+
+    #[test]
+    fn gzip_and_zstd_read_as_the_plain_text_with_its_lines() {
+        let dir = TempDir::new().unwrap();
+        let plain = TABLE.as_bytes();
+        let read = options(Some(6.5), Direction::Above);
+        let reference =
+            read_table(&write(&dir, "t.csv", plain), &read, &["untested".into()]).unwrap();
+        // Two gzip members, two zstd frames with a skippable frame between them, and
+        // misnamed files (the first bytes decide).
+        let half = plain.len() / 2;
+        let two_members = [gzip(&plain[..half]), gzip(&plain[half..])].concat();
+        let skippable = [
+            &0x184D_2A50u32.to_le_bytes()[..],
+            &3u32.to_le_bytes(),
+            b"abc",
+        ]
+        .concat();
+        let two_frames = [zstd(&plain[..half]), skippable, zstd(&plain[half..])].concat();
+        for (name, bytes) in [
+            ("t.csv.gz", gzip(plain)),
+            ("t.gz.csv", two_members),
+            ("t.csv.zst", zstd(plain)),
+            ("t.csv", two_frames),
+        ] {
+            let path = write(&dir, name, &bytes);
+            let (labeled, pool) = read_table(&path, &read, &["untested".into()]).unwrap();
+            assert_eq!(labeled.ids, reference.0.ids, "{name}");
+            assert_eq!(labeled.outcome, reference.0.outcome, "{name}");
+            assert_eq!(pool.ids, reference.1.ids, "{name}");
+            assert_eq!(pool.features, reference.1.features, "{name}");
+        }
+        // A bad cell after a blank line keeps the line of the decompressed text.
+        let bad = b"id,pred\na,1\n\nb,x\n";
+        for bytes in [gzip(bad), zstd(bad)] {
+            let path = write(&dir, "pool.csv.gz", &bytes);
+            let message = read_units(&path, Role::Pool, &ReadOptions::new("pred"))
+                .unwrap_err()
+                .to_string();
+            assert!(
+                message.contains("pool.csv.gz line 4, column `pred`"),
+                "{message}"
+            );
+        }
+        // Cut short: a read error naming the format.
+        let cut = gzip(TABLE.as_bytes());
+        let path = write(&dir, "t.csv.gz", &cut[..cut.len() - 12]);
+        let message = read_table(&path, &read, &["untested".into()])
+            .unwrap_err()
+            .to_string();
+        assert!(
+            message.contains("gzip data is damaged or cut short"),
+            "{message}"
+        );
+        // A tab-separated file stays tab-separated when compressed.
+        let path = write(&dir, "pool.tsv.zst", &zstd(b"id\tpred\na\t0.5\n"));
+        let table = read_units(&path, Role::Pool, &ReadOptions::new("pred")).unwrap();
+        assert_eq!(table.prediction, [0.5]);
+        assert_eq!(delimiter_for(Path::new("x.TSV.GZ"), None), b'\t');
+        assert_eq!(delimiter_for(Path::new("x.csv.zst"), None), b',');
+    }
+
+    #[test]
+    fn other_binary_formats_are_named() {
+        let dir = TempDir::new().unwrap();
+        for (bytes, needle) in [
+            (&b"PK\x03\x04\x14\x00\x06\x00rest"[..], "ZIP archive"),
+            (b"PAR1\x15\x04\x15", "Parquet"),
+            (b"BZh91AY&SY", "bzip2"),
+            (b"\xfd7zXZ\x00\x00\x04", "xz"),
+            (b"\xff\xfei\x00d\x00", "UTF-16"),
+            (b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1\x00", ".xls"),
+        ] {
+            let path = write(&dir, "input.csv", bytes);
+            let error = read_units(&path, Role::Pool, &ReadOptions::new("pred")).unwrap_err();
+            let message = error.to_string();
+            assert!(matches!(error, InputError::NotText { .. }), "{message}");
+            assert!(
+                message.contains(needle) && message.contains("Hint:"),
+                "{needle}: {message}"
+            );
+            assert!(message.contains("input.csv"), "{message}");
+        }
+    }
+
+    #[test]
+    fn column_overview_counts_the_first_rows() {
+        let dir = TempDir::new().unwrap();
+        let path = write(&dir, "t.csv.gz", &gzip(TABLE.as_bytes()));
+        let overview = column_overview(&path, None, 1000).unwrap();
+        assert_eq!(overview.names, ["id", "y", "pred", "a", "b", "series"]);
+        assert_eq!(overview.rows_read, 5);
+        assert!(overview.complete);
+        // y: 7.5, 5.0 numeric; >8 censored; one empty; `untested` other.
+        assert_eq!(
+            (overview.numeric[1], overview.censored[1], overview.empty[1]),
+            (2, 1, 1)
+        );
+        assert_eq!(overview.numeric[2], 5);
+        assert_eq!(overview.example[5].as_deref(), Some("S1"));
+        let overview = column_overview(&path, None, 2).unwrap();
+        assert_eq!((overview.rows_read, overview.complete), (2, false));
+        let overview = column_overview(&path, None, 5).unwrap();
+        assert_eq!((overview.rows_read, overview.complete), (5, true));
+    }
+}

@@ -382,6 +382,13 @@ pub(crate) fn input_files(
 ) -> Result<InputFiles, Failure> {
     const FORMS: &str = "give either --table FILE (one table: rows with an empty outcome are \
                          the pool) or both --labeled FILE and --pool FILE";
+    if table.is_none() && !untested_markers.is_empty() {
+        return Err(Failure::Input(
+            "--untested-marker applies to --table only (with two files the pool file holds \
+             the untested units). Hint: drop --untested-marker, or give one --table FILE."
+                .to_string(),
+        ));
+    }
     match (labeled, pool, table) {
         (None, None, Some(path)) => Ok(InputFiles::Table {
             path: path.clone(),

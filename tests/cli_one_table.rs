@@ -577,6 +577,30 @@ fn input_forms_are_exclusive_with_clear_errors() {
         );
         assert!(!out.exists());
     }
+    // shift: --outcome only splits a --table.
+    let output = run(
+        &[
+            "shift",
+            "--labeled",
+            &labeled,
+            "--pool",
+            &pool,
+            "--features",
+            "f1..f5",
+            "--outcome",
+            "y",
+            "--out",
+            s(&out),
+        ],
+        None,
+    );
+    assert_eq!(output.status.code(), Some(2));
+    assert!(
+        stderr(&output).contains("--outcome applies to --table only"),
+        "{}",
+        stderr(&output)
+    );
+    assert!(!out.exists());
     // The labeled fixture as a table has no pool rows: the error says how rows are told apart.
     let output = run(
         &[

@@ -94,7 +94,8 @@ pub enum CheckWeightsArg {
 pub struct CheckArgs {
     #[command(flatten)]
     pub input: InputArgs,
-    /// Feature columns in both files: a comma list of names and/or ranges like `f1..f32`.
+    /// Feature columns in both files: a comma list of names and/or ranges like `f1..f32`
+    /// or `MolWt..TPSA` (every column from MolWt to TPSA in the header).
     #[arg(long, value_name = "LIST", required = true)]
     pub features: Vec<String>,
     #[command(flatten)]

@@ -426,7 +426,8 @@ pub struct SelectArgs {
     #[arg(long, conflicts_with = "weight_column", requires = "features")]
     pub fit_weights: bool,
     /// With --fit-weights: feature columns in both files, a comma list of names and/or
-    /// ranges such as `f1..f32`.
+    /// ranges: `f1..f32` (f1, f2, ..., f32) or `MolWt..TPSA` (every column from MolWt to
+    /// TPSA in the header; `weighbridge columns FILE` shows the order).
     #[arg(long, value_name = "LIST", requires = "fit_weights")]
     pub features: Vec<String>,
     #[command(flatten)]

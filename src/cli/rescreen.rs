@@ -152,10 +152,13 @@ fn read_previous(dir: &Path) -> Result<(Vec<PreviousUnit>, Value), Failure> {
     let mut reader = csv::Reader::from_path(&candidates).map_err(|e| bad(e.to_string()))?;
     let header = reader.headers().map_err(|e| bad(e.to_string()))?.clone();
     let column = |name: &str| {
-        header
-            .iter()
-            .position(|h| h == name)
-            .ok_or_else(|| bad(format!("no column `{name}`")))
+        header.iter().position(|h| h == name).ok_or_else(|| {
+            let names: Vec<String> = header.iter().map(String::from).collect();
+            bad(format!(
+                "no column `{name}`{}",
+                crate::io::errors::did_you_mean(name, &names)
+            ))
+        })
     };
     let (id, score, weight, p, selected) = (
         column("id")?,

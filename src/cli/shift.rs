@@ -100,8 +100,9 @@ pub struct ShiftArgs {
     /// ignoring case; repeat for several. Example: --untested-marker untested.
     #[arg(long, value_name = "TOKEN", requires = "table")]
     pub untested_marker: Vec<String>,
-    /// Feature columns, in both files: a comma list of names and/or ranges such as
-    /// `f1..f32` (every column f1, f2, ..., f32).
+    /// Feature columns, in both files: a comma list of names and/or ranges: `f1..f32`
+    /// (every column f1, f2, ..., f32) or `MolWt..TPSA` (every column from MolWt to TPSA
+    /// in the header; `weighbridge columns FILE` shows the order).
     #[arg(long, value_name = "LIST", required = true)]
     pub features: Vec<String>,
     /// Id column (both files).
@@ -187,6 +188,13 @@ impl TryFrom<ShiftArgs> for ShiftConfig {
                 ..OutcomeCells::default()
             },
         };
+        if a.table.is_none() && a.outcome.is_some() {
+            return Err(Failure::Input(
+                "--outcome applies to --table only here (it tells tested rows from untested \
+                 ones). Hint: drop --outcome, or give one --table FILE."
+                    .to_string(),
+            ));
+        }
         let inputs = input_files(
             a.labeled.as_ref(),
             a.pool.as_ref(),

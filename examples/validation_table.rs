@@ -185,6 +185,7 @@ fn load(d: &Dataset) -> Result<(UnitTable, UnitTable), String> {
         features: vec![d.features.into()],
         delimiter: None,
         keep_columns: Vec::new(),
+        outcome_cells: Default::default(),
     };
     let labeled_read = ReadOptions {
         outcome: Some("y".into()),

@@ -84,6 +84,7 @@ fn read_options(d: &Dataset, outcome: Option<&str>) -> ReadOptions {
         features: vec![d.features.into()],
         delimiter: None,
         keep_columns: Vec::new(),
+        outcome_cells: Default::default(),
     }
 }
 

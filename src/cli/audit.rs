@@ -304,11 +304,9 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         &[&config.labeled_path, &config.pool_path, &shortlist_path],
     )?;
     let status = StepStatus::new(config.quiet);
-    check_one_stdin(&[
-        ("--shortlist", &shortlist_path),
-        ("--labeled", &config.labeled_path),
-        ("--pool", &config.pool_path),
-    ])?;
+    let mut inputs = vec![("--shortlist", shortlist_path.as_path())];
+    inputs.extend(config.inputs.flags());
+    check_one_stdin(&inputs)?;
     status.step("reading the labeled and pool files");
     let (labeled, pool) = read_inputs(&config)?;
     let listed_ids = read_id_list(

@@ -10,7 +10,7 @@ use serde::Serialize;
 
 use crate::conformal::pvalue::PValueKind;
 use crate::conformal::score::ScoreKind;
-use crate::io::{check_one_stdin, check_same_features, read_units, OutputSet, Role};
+use crate::io::{check_same_features, OutputSet};
 use crate::report::{tool_info, ToolInfo};
 use crate::selection::pipeline::{Procedure, SelectOptions};
 use crate::shift::reliability::percent_two_significant;
@@ -94,7 +94,8 @@ pub enum CheckWeightsArg {
 pub struct CheckArgs {
     #[command(flatten)]
     pub input: InputArgs,
-    /// Feature columns in both files: a comma list of names and/or ranges like `f1..f32`.
+    /// Feature columns in both files: a comma list of names and/or ranges like `f1..f32`
+    /// or `MolWt..TPSA` (every column from MolWt to TPSA in the header).
     #[arg(long, value_name = "LIST", required = true)]
     pub features: Vec<String>,
     #[command(flatten)]
@@ -267,11 +268,17 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
     };
     check_fdr.check()?;
     let params = a.fit.params(a.seed, a.fdr)?;
-    let (labeled_read, pool_read) = a.input.read_options(None, &a.features, a.delimiter);
-    check_one_stdin(&[("--labeled", &a.input.labeled), ("--pool", &a.input.pool)])?;
-    let folder = open_output(&a.out, a.force, &[&a.input.labeled, &a.input.pool])?;
-    let labeled = read_units(&a.input.labeled, Role::Labeled, &labeled_read)?;
-    let pool = read_units(&a.input.pool, Role::Pool, &pool_read)?;
+    let setup = a
+        .input
+        .setup(None, &a.features, a.delimiter, &[], select.score)?;
+    let select = SelectOptions {
+        direction: setup.direction,
+        ..select
+    };
+    let labeled_path = setup.files.labeled_path().to_path_buf();
+    let pool_path = setup.files.pool_path().to_path_buf();
+    let folder = open_output(&a.out, a.force, &setup.files.paths())?;
+    let (labeled, pool) = setup.files.read(&setup.labeled_read, &setup.pool_read)?;
     check_same_features(&labeled, &pool)?;
 
     // The real shift: the classifier's fitted log-weight at the labeled rows (it differs
@@ -283,7 +290,7 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
         &labeled,
         &pool,
     )
-    .map_err(|e| weighting_failure(e, &a.input.labeled, &a.input.pool))?;
+    .map_err(|e| weighting_failure(e, &labeled_path, &pool_path))?;
     let real_fit = real.fitted().expect("fitted weights were asked for");
     let log_weight: Vec<f64> = real_fit
         .assessment
@@ -335,8 +342,8 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
 
     let report = CheckReport {
         tool: tool_info(),
-        labeled_file: a.input.labeled.display().to_string(),
-        pool_file: a.input.pool.display().to_string(),
+        labeled_file: labeled_path.display().to_string(),
+        pool_file: pool_path.display().to_string(),
         fdr: a.fdr,
         score: select.score.name(),
         bh_pvalues: select.pvalues.unwrap_or(PValueKind::Randomized).name(),

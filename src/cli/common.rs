@@ -12,8 +12,11 @@ use clap::{Args, ValueEnum};
 use linfa::ParamGuard;
 
 use crate::conformal::pvalue::PValueKind;
-use crate::conformal::score::{ScoreKind, Thresholds};
-use crate::io::{check_one_stdin, check_same_features, read_units, ReadOptions, Role, UnitTable};
+use crate::conformal::score::{Direction, ScoreKind, Thresholds};
+use crate::io::{
+    check_one_stdin, check_same_features, read_table, read_units, CensoredRule, MissingOutcome,
+    OutcomeCells, ReadOptions, Role, UnitTable,
+};
 use crate::report::html::{selection_report, shift_part, WeightsMethod};
 use crate::report::UnreliableMark;
 use crate::selection::pipeline::{LabeledInput, PoolInput, Procedure, SelectOptions};
@@ -59,9 +62,27 @@ Outputs in --out (written all at once; nothing is written when an input is bad):
                   the shift diagnostics (`shift`)
   report.html     with --report: one self-contained page (no scripts, no external files)
 
+Inputs: two files (--labeled, --pool) or one table (--table: rows whose outcome is empty
+are the pool, the others labeled). Files may be gzip (.gz) or Zstandard (.zst) compressed
+(recognised by their first bytes); `-` reads one input from standard input. A labeled
+outcome may be censored (>10000, <1, >=x, <=x): accepted with the clipped score where the
+bound decides the side of the threshold, counted in summary.json
+`censored_outcome_count`. NA and N/A (--missing-values) mark a labeled row without a value:
+an error, or with --missing-outcome drop left out and counted
+(`dropped_missing_outcome_count`). `weighbridge columns FILE` lists a file's columns.
+
 Exit codes: 0 success, 2 bad usage or input, 1 internal failure.
 
 Examples:
+  # one assay export: potency in nM (lower is better), untested rows leave IC50_nM empty
+  weighbridge select --table assays.csv --id compound_id --outcome IC50_nM \\
+      --prediction predicted_IC50_nM --lower-is-better --threshold 100 \\
+      --fit-weights --features MolWt..TPSA --keep-columns smiles,series --out shortlist
+
+  # a compressed pool from standard input; labeled rows with NA outcomes left out
+  zcat pool.csv.gz | weighbridge select --labeled labeled.csv --pool - \\
+      --threshold 6.5 --missing-outcome drop --out shortlist
+
   # weights given in column w, one threshold for every unit
   weighbridge select --labeled fixtures/labeled.csv --pool fixtures/pool.csv \\
       --threshold 6.5 --weight-column w --fdr 0.1 --out shortlist
@@ -85,27 +106,142 @@ Examples:
         .multiple(false)
 ))]
 pub struct InputArgs {
-    /// Labeled file (CSV, or TSV by extension): units with measured outcome and prediction.
-    #[arg(long, value_name = "FILE")]
-    pub labeled: PathBuf,
+    /// Labeled file (CSV, or TSV by extension; .gz and .zst are decompressed; `-` reads
+    /// standard input): units with measured outcome and prediction. Give --labeled and
+    /// --pool, or --table.
+    #[arg(long, value_name = "FILE", conflicts_with = "table")]
+    pub labeled: Option<PathBuf>,
     /// Pool file: untested units with predictions.
+    #[arg(long, value_name = "FILE", conflicts_with = "table")]
+    pub pool: Option<PathBuf>,
+    /// One table holding both, as assay exports are: rows whose outcome cell is empty (or an
+    /// --untested-marker) are the pool, every other row is labeled. Read once, so `-`
+    /// (standard input) works. Example: --table assays.csv --outcome pIC50.
     #[arg(long, value_name = "FILE")]
-    pub pool: PathBuf,
+    pub table: Option<PathBuf>,
+    /// With --table: a token that also means "not tested" in the outcome column (besides
+    /// the empty cell), ignoring case; repeat for several. Example: --untested-marker
+    /// untested --untested-marker ND.
+    #[arg(long, value_name = "TOKEN", requires = "table")]
+    pub untested_marker: Vec<String>,
     /// Id column (both files).
     #[arg(long, default_value = "id", value_name = "NAME")]
     pub id: String,
-    /// Outcome column (labeled file only).
+    /// Outcome column (labeled file only; with --table it also tells labeled rows from
+    /// the pool).
     #[arg(long, default_value = "y", value_name = "NAME")]
     pub outcome: String,
     /// Prediction column (both files).
     #[arg(long, default_value = "pred", value_name = "NAME")]
     pub prediction: String,
-    /// One threshold for every unit: a unit is interesting when its outcome exceeds it.
+    /// One threshold for every unit: a unit is interesting when its outcome exceeds it
+    /// (is below it with --lower-is-better).
     #[arg(long, value_name = "VALUE", allow_negative_numbers = true)]
     pub threshold: Option<f64>,
     /// Per-unit thresholds, a column present in both files.
     #[arg(long, value_name = "NAME")]
     pub threshold_column: Option<String>,
+    /// A unit is interesting when its outcome is BELOW the threshold (potency in nM,
+    /// clearance, toxicity). Outcomes, predictions and thresholds stay in your units.
+    /// Example: --lower-is-better --threshold 100 (shortlist units likely below 100 nM).
+    #[arg(long)]
+    pub lower_is_better: bool,
+    /// Comma list of tokens that mean "assayed, but no value" in a labeled outcome cell
+    /// (ignoring case); an empty item is the empty cell. Replaces the default, `NA,N/A`
+    /// plus the empty cell with two files (with --table an empty outcome means untested
+    /// instead, and an --untested-marker is never a missing value). Example:
+    /// --missing-values NA,N/A,nd,
+    #[arg(long, value_name = "LIST")]
+    pub missing_values: Option<String>,
+    /// What a labeled row whose outcome is a missing-value token does: `error` stops with
+    /// its file and line, `drop` leaves the row out and counts it (summary.json
+    /// `dropped_missing_outcome_count`). Example: --missing-outcome drop.
+    #[arg(long, value_enum, default_value_t = MissingOutcomeArg::Error, value_name = "WHAT")]
+    pub missing_outcome: MissingOutcomeArg,
+}
+
+/// `--missing-outcome`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq, ValueEnum)]
+pub enum MissingOutcomeArg {
+    /// Stop with a located error (the default).
+    Error,
+    /// Leave such rows out and count them.
+    Drop,
+}
+
+/// Where a run's labeled rows and pool come from.
+#[derive(Clone, Debug)]
+pub enum InputFiles {
+    /// `--labeled FILE --pool FILE`.
+    Two { labeled: PathBuf, pool: PathBuf },
+    /// `--table FILE`: one table, split by the outcome cell.
+    Table {
+        path: PathBuf,
+        untested_markers: Vec<String>,
+    },
+}
+
+impl InputFiles {
+    /// The labeled file (the table in one-table mode).
+    pub fn labeled_path(&self) -> &Path {
+        match self {
+            InputFiles::Two { labeled, .. } => labeled,
+            InputFiles::Table { path, .. } => path,
+        }
+    }
+
+    /// The pool file (the table in one-table mode).
+    pub fn pool_path(&self) -> &Path {
+        match self {
+            InputFiles::Two { pool, .. } => pool,
+            InputFiles::Table { path, .. } => path,
+        }
+    }
+
+    /// Each input with the flag that named it (for the one-standard-input check).
+    pub fn flags(&self) -> Vec<(&'static str, &Path)> {
+        match self {
+            InputFiles::Two { labeled, pool } => vec![("--labeled", labeled), ("--pool", pool)],
+            InputFiles::Table { path, .. } => vec![("--table", path)],
+        }
+    }
+
+    /// The files read (for the output folder, which never removes them).
+    pub fn paths(&self) -> Vec<&Path> {
+        self.flags().into_iter().map(|(_, path)| path).collect()
+    }
+
+    /// Read the labeled rows and the pool: two files, or one table read once.
+    ///
+    /// # Errors
+    /// A located [`crate::io::InputError`], or standard input given twice.
+    pub(crate) fn read(
+        &self,
+        labeled_read: &ReadOptions,
+        pool_read: &ReadOptions,
+    ) -> Result<(UnitTable, UnitTable), Failure> {
+        check_one_stdin(&self.flags())?;
+        match self {
+            InputFiles::Two { labeled, pool } => {
+                let labeled = read_units(labeled, Role::Labeled, labeled_read)?;
+                let pool = read_units(pool, Role::Pool, pool_read)?;
+                Ok((labeled, pool))
+            }
+            InputFiles::Table {
+                path,
+                untested_markers,
+            } => Ok(read_table(path, labeled_read, untested_markers)?),
+        }
+    }
+}
+
+/// The inputs of a run as [`InputArgs::setup`] resolves them.
+#[derive(Clone, Debug)]
+pub struct InputSetup {
+    pub files: InputFiles,
+    pub labeled_read: ReadOptions,
+    pub pool_read: ReadOptions,
+    pub direction: Direction,
 }
 
 impl InputArgs {
@@ -122,14 +258,94 @@ impl InputArgs {
         }
     }
 
-    /// How to read the labeled and the pool file with these columns.
-    pub(crate) fn read_options(
+    /// Exactly one input form: `--table FILE`, or `--labeled FILE --pool FILE`.
+    ///
+    /// # Errors
+    /// [`Failure::Input`] naming what is missing and the two forms.
+    pub(crate) fn files(&self) -> Result<InputFiles, Failure> {
+        input_files(
+            self.labeled.as_ref(),
+            self.pool.as_ref(),
+            self.table.as_ref(),
+            &self.untested_marker,
+        )
+    }
+
+    /// The missing-value tokens in force (see `--missing-values`).
+    ///
+    /// # Errors
+    /// [`Failure::Input`] when an explicit list names the empty cell in one-table mode or
+    /// shares a token with --untested-marker.
+    fn missing_values(&self, one_table: bool) -> Result<Vec<String>, Failure> {
+        let markers: Vec<String> = self
+            .untested_marker
+            .iter()
+            .map(|m| m.trim().to_ascii_lowercase())
+            .collect();
+        let Some(list) = &self.missing_values else {
+            return Ok(crate::io::outcome::DEFAULT_MISSING_VALUES
+                .iter()
+                .filter(|token| !(one_table && token.is_empty()))
+                .filter(|token| !markers.contains(&token.to_ascii_lowercase()))
+                .map(|token| token.to_string())
+                .collect());
+        };
+        let tokens: Vec<String> = list.split(',').map(|t| t.trim().to_string()).collect();
+        for token in &tokens {
+            if one_table && token.is_empty() {
+                return Err(Failure::Input(
+                    "--missing-values names the empty cell, but with --table an empty outcome \
+                     means \"not tested\" (the row is part of the pool). Hint: drop the empty \
+                     item from --missing-values (e.g. `--missing-values NA,N/A`)."
+                        .to_string(),
+                ));
+            }
+            if markers.contains(&token.to_ascii_lowercase()) {
+                return Err(Failure::Input(format!(
+                    "`{token}` is given both as an --untested-marker (the row is part of the \
+                     pool) and in --missing-values (assayed, no value). Hint: give it to one \
+                     of the two."
+                )));
+            }
+        }
+        Ok(tokens)
+    }
+
+    /// Resolve the input flags: which files, how to read them, which side is interesting.
+    /// `score` decides whether censored outcomes can be used (the residual score needs the
+    /// value itself).
+    ///
+    /// # Errors
+    /// [`Failure::Input`] for a bad combination of input flags.
+    pub(crate) fn setup(
         &self,
         weight_column: Option<String>,
         features: &[String],
         delimiter: Option<DelimiterArg>,
-    ) -> (ReadOptions, ReadOptions) {
-        let pool = ReadOptions {
+        keep_columns: &[String],
+        score: ScoreKind,
+    ) -> Result<InputSetup, Failure> {
+        let files = self.files()?;
+        let one_table = matches!(files, InputFiles::Table { .. });
+        let direction = if self.lower_is_better {
+            Direction::Below
+        } else {
+            Direction::Above
+        };
+        let outcome_cells = OutcomeCells {
+            missing_values: self.missing_values(one_table)?,
+            missing: match self.missing_outcome {
+                MissingOutcomeArg::Error => MissingOutcome::Error,
+                MissingOutcomeArg::Drop => MissingOutcome::Drop,
+            },
+            censored: Some(CensoredRule {
+                direction,
+                threshold: self.threshold,
+                score_needs_value: score == ScoreKind::Residual,
+            }),
+            tested_only: false,
+        };
+        let pool_read = ReadOptions {
             id: self.id.clone(),
             outcome: None,
             prediction: self.prediction.clone(),
@@ -137,13 +353,61 @@ impl InputArgs {
             weight_column,
             features: feature_selectors(features),
             delimiter: delimiter.map(DelimiterArg::byte),
-            keep_columns: Vec::new(),
+            keep_columns: keep_columns.to_vec(),
+            outcome_cells,
         };
-        let labeled = ReadOptions {
+        let labeled_read = ReadOptions {
             outcome: Some(self.outcome.clone()),
-            ..pool.clone()
+            ..pool_read.clone()
         };
-        (labeled, pool)
+        Ok(InputSetup {
+            files,
+            labeled_read,
+            pool_read,
+            direction,
+        })
+    }
+}
+
+/// Exactly one input form from the flags as typed: `--table FILE` (with its untested
+/// markers), or both `--labeled FILE` and `--pool FILE`.
+///
+/// # Errors
+/// [`Failure::Input`] naming what is missing and the two forms.
+pub(crate) fn input_files(
+    labeled: Option<&PathBuf>,
+    pool: Option<&PathBuf>,
+    table: Option<&PathBuf>,
+    untested_markers: &[String],
+) -> Result<InputFiles, Failure> {
+    const FORMS: &str = "give either --table FILE (one table: rows with an empty outcome are \
+                         the pool) or both --labeled FILE and --pool FILE";
+    if table.is_none() && !untested_markers.is_empty() {
+        return Err(Failure::Input(
+            "--untested-marker applies to --table only (with two files the pool file holds \
+             the untested units). Hint: drop --untested-marker, or give one --table FILE."
+                .to_string(),
+        ));
+    }
+    match (labeled, pool, table) {
+        (None, None, Some(path)) => Ok(InputFiles::Table {
+            path: path.clone(),
+            untested_markers: untested_markers.to_vec(),
+        }),
+        (Some(labeled), Some(pool), None) => Ok(InputFiles::Two {
+            labeled: labeled.clone(),
+            pool: pool.clone(),
+        }),
+        (Some(_), None, None) => Err(Failure::Input(format!(
+            "--labeled is given but --pool is not. Hint: {FORMS}."
+        ))),
+        (None, Some(_), None) => Err(Failure::Input(format!(
+            "--pool is given but --labeled is not. Hint: {FORMS}."
+        ))),
+        (None, None, None) => Err(Failure::Input(format!("no input is given. Hint: {FORMS}."))),
+        _ => Err(Failure::Input(format!(
+            "--table cannot be combined with --labeled or --pool. Hint: {FORMS}."
+        ))),
     }
 }
 
@@ -162,11 +426,17 @@ pub struct SelectArgs {
     #[arg(long, conflicts_with = "weight_column", requires = "features")]
     pub fit_weights: bool,
     /// With --fit-weights: feature columns in both files, a comma list of names and/or
-    /// ranges such as `f1..f32`.
+    /// ranges: `f1..f32` (f1, f2, ..., f32) or `MolWt..TPSA` (every column from MolWt to
+    /// TPSA in the header; `weighbridge columns FILE` shows the order).
     #[arg(long, value_name = "LIST", requires = "fit_weights")]
     pub features: Vec<String>,
     #[command(flatten)]
     pub fit: FitArgs,
+    /// Columns copied verbatim from the pool (or the --table) into the outputs, a comma
+    /// list; each must be in the pool; a labeled file may lack them. Example:
+    /// --keep-columns smiles,series.
+    #[arg(long, value_name = "LIST")]
+    pub keep_columns: Vec<String>,
     /// With --fit-weights: run even when the fitted weights are unreliable (Pareto k-hat
     /// above its threshold, effective sample size below 2% of the labeled rows, or
     /// domain-classifier AUC above 0.99), which otherwise stops the run with exit code 3.
@@ -296,8 +566,12 @@ pub const DEFAULT_OUT: &str = "weighbridge-out";
 /// Checked configuration of one `select` run.
 #[derive(Debug, Clone)]
 pub struct SelectConfig {
+    /// The labeled file (the table itself with `--table`).
     pub labeled_path: PathBuf,
+    /// The pool file (the table itself with `--table`).
     pub pool_path: PathBuf,
+    /// Two files or one table.
+    pub inputs: InputFiles,
     pub labeled_read: ReadOptions,
     pub pool_read: ReadOptions,
     pub threshold: Option<f64>,
@@ -359,6 +633,11 @@ impl TryFrom<SelectArgs> for SelectConfig {
                 ScoreArg::Clipped => ScoreKind::Clipped,
                 ScoreArg::Residual => ScoreKind::Residual,
             },
+            direction: if a.input.lower_is_better {
+                Direction::Below
+            } else {
+                Direction::Above
+            },
             seed: a.seed,
             level_curve: a.level_curve.then_some(true),
             empty_when_unreachable: a.allow_unreliable_weights,
@@ -395,14 +674,26 @@ impl TryFrom<SelectArgs> for SelectConfig {
         } else {
             WeightSource::None
         };
-        let (labeled_read, pool_read) =
-            a.input
-                .read_options(a.weight_column.clone(), &a.features, a.delimiter);
+        let setup = a.input.setup(
+            a.weight_column.clone(),
+            &a.features,
+            a.delimiter,
+            &feature_selectors(&a.keep_columns),
+            options.score,
+        )?;
+        if a.batch_design.is_some() && matches!(setup.files, InputFiles::Table { .. }) {
+            return Err(Failure::Input(
+                "--batch-design needs the two files (the assayed batch and the pool it was \
+                 drawn from) and does not read --table yet. Hint: give --labeled and --pool."
+                    .to_string(),
+            ));
+        }
         Ok(SelectConfig {
-            labeled_path: a.input.labeled,
-            pool_path: a.input.pool,
-            labeled_read,
-            pool_read,
+            labeled_path: setup.files.labeled_path().to_path_buf(),
+            pool_path: setup.files.pool_path().to_path_buf(),
+            inputs: setup.files,
+            labeled_read: setup.labeled_read,
+            pool_read: setup.pool_read,
             threshold: a.input.threshold,
             options,
             weights,
@@ -413,7 +704,7 @@ impl TryFrom<SelectArgs> for SelectConfig {
             allow_unreliable_weights: a.allow_unreliable_weights,
             batch_design: a.batch_design,
             allow_missing_batch: a.allow_missing_batch,
-            direction: crate::conformal::score::Direction::Above,
+            direction: setup.direction,
         })
     }
 }
@@ -457,12 +748,9 @@ pub(crate) fn thresholds_of(table: &UnitTable, constant: Option<f64>) -> Thresho
 /// Read both files with the configured columns (and the same feature columns in both when
 /// weights are fitted).
 pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable), Failure> {
-    check_one_stdin(&[
-        ("--labeled", &config.labeled_path),
-        ("--pool", &config.pool_path),
-    ])?;
-    let mut labeled = read_units(&config.labeled_path, Role::Labeled, &config.labeled_read)?;
-    let mut pool = read_units(&config.pool_path, Role::Pool, &config.pool_read)?;
+    let (mut labeled, mut pool) = config
+        .inputs
+        .read(&config.labeled_read, &config.pool_read)?;
     check_same_features(&labeled, &pool)?;
     rescale_given_weights(&mut labeled, &mut pool);
     Ok((labeled, pool))
@@ -832,7 +1120,11 @@ fn option_failure(e: ShiftError) -> Failure {
 /// Map a failure to obtain weights to an exit code and a message with a hint. `labeled` and
 /// `pool` name the files in messages.
 pub(crate) fn weighting_failure(e: WeightingError, labeled: &Path, pool: &Path) -> Failure {
-    let files = format!("{} and {}", labeled.display(), pool.display());
+    let files = if labeled == pool {
+        labeled.display().to_string()
+    } else {
+        format!("{} and {}", labeled.display(), pool.display())
+    };
     match e {
         WeightingError::Shift(ShiftError::AllConstant { dropped }) => Failure::Input(format!(
             "every selected feature is constant on the rows the classifier is fit on ({}) in \

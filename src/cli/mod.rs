@@ -10,6 +10,7 @@ pub mod audit;
 pub mod batch;
 pub(crate) mod batch_design;
 pub mod check;
+pub mod columns;
 pub mod common;
 pub mod demo;
 pub mod rescreen;
@@ -37,7 +38,7 @@ units whose outcome is likely above a threshold, so that on average at most a fr
 of the shortlist is not.\n\n\
 The shortlist guides which experiments to run next; it is not a safety, clinical or \
 regulatory decision.",
-    after_help = "Examples:\n  weighbridge demo\n  weighbridge select --labeled fixtures/labeled.csv --pool fixtures/pool.csv \\\n      --threshold 6.5 --weight-column w --fdr 0.1 --out shortlist"
+    after_help = "Examples:\n  weighbridge demo\n  weighbridge select --labeled fixtures/labeled.csv --pool fixtures/pool.csv \\\n      --threshold 6.5 --weight-column w --fdr 0.1 --out shortlist\n  weighbridge columns fixtures/labeled.csv"
 )]
 pub struct Cli {
     #[command(subcommand)]
@@ -60,6 +61,8 @@ enum Command {
     Rescreen(rescreen::RescreenArgs),
     /// Design a calibration batch: units to assay, drawn with known probabilities.
     Batch(batch::BatchArgs),
+    /// List a table's columns with their positions and what their first rows hold.
+    Columns(columns::ColumnsArgs),
 }
 
 /// Why a command failed, and so which exit code it gets.
@@ -217,6 +220,7 @@ pub fn main_entry() -> ExitCode {
         Command::Check(args) => check::run(args),
         Command::Rescreen(args) => rescreen::run(args),
         Command::Batch(args) => batch::run(args),
+        Command::Columns(args) => columns::run(args),
     };
     match result {
         Ok(()) => ExitCode::SUCCESS,

@@ -152,10 +152,13 @@ fn read_previous(dir: &Path) -> Result<(Vec<PreviousUnit>, Value), Failure> {
     let mut reader = csv::Reader::from_path(&candidates).map_err(|e| bad(e.to_string()))?;
     let header = reader.headers().map_err(|e| bad(e.to_string()))?.clone();
     let column = |name: &str| {
-        header
-            .iter()
-            .position(|h| h == name)
-            .ok_or_else(|| bad(format!("no column `{name}`")))
+        header.iter().position(|h| h == name).ok_or_else(|| {
+            let names: Vec<String> = header.iter().map(String::from).collect();
+            bad(format!(
+                "no column `{name}`{}",
+                crate::io::errors::did_you_mean(name, &names)
+            ))
+        })
     };
     let (id, score, weight, p, selected) = (
         column("id")?,
@@ -298,6 +301,8 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     }
     summary.warnings.extend(shared_ids_warning(&labeled, &pool));
     summary.unreliable_weights = unreliable;
+    summary.dropped_missing_outcome_count = labeled.dropped_missing_outcome;
+    summary.censored_outcome_count = labeled.censored_outcomes;
 
     let current: Vec<CurrentUnit<'_>> = (0..pool.len())
         .map(|j| CurrentUnit {

@@ -69,6 +69,7 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     let status = StepStatus::new(config.quiet);
     status.step("reading the labeled and pool files");
     let (labeled, pool) = read_inputs(&config)?;
+    let outcome_counts = (labeled.dropped_missing_outcome, labeled.censored_outcomes);
     // A calibration batch: the assayed units calibrate with the design's exact weights and
     // the drawn units leave the pool.
     let design = match &config.batch_design {
@@ -122,6 +123,10 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     }
     summary.warnings.extend(shared_ids_warning(labeled, pool));
     summary.unreliable_weights = unreliable;
+    (
+        summary.dropped_missing_outcome_count,
+        summary.censored_outcome_count,
+    ) = outcome_counts;
     let mut files = OutputSet::new();
     files.add(
         "candidates.csv",

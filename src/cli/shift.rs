@@ -10,8 +10,9 @@ use std::path::{Path, PathBuf};
 use clap::Args;
 
 use crate::io::{
-    check_one_stdin, check_same_features, read_units_choosing, resolve_features, ColumnKind,
-    InputError, OutputSet, ReadOptions, Role, UnitTable,
+    check_one_stdin, check_same_features, read_table_choosing, read_units_choosing,
+    resolve_features, ColumnKind, InputError, OutcomeCells, OutputSet, ReadOptions, Role,
+    UnitTable,
 };
 use crate::report::html::{shift_report_html, ShiftPart};
 use crate::report::plots::{balance_svg, overlap_svg, weights_svg};
@@ -21,7 +22,10 @@ use crate::report::{
 use crate::shift::weighting::{obtain_weights, WeightSource, Weighting};
 use crate::shift::ShiftParams;
 
-use super::common::{feature_selectors, report_pointer, weighting_failure, DelimiterArg, FitArgs};
+use super::common::{
+    feature_selectors, input_files, report_pointer, weighting_failure, DelimiterArg, FitArgs,
+    InputFiles,
+};
 use super::{commit_outputs, open_output, print_stdout, Failure, PhaseTimer, StepStatus};
 
 /// Bins of the weight histogram in weights.svg.
@@ -65,20 +69,40 @@ Examples:
 
   # a variance shift a linear classifier cannot see: add squared features
   weighbridge shift --labeled labeled.csv --pool pool.csv --features logp,mass,tpsa \\
-      --expand squares --out shift-report";
+      --expand squares --out shift-report
+
+  # one assay export (rows with an empty pIC50 are the pool), every column MolWt..TPSA
+  weighbridge shift --table assays.csv.gz --outcome pIC50 --id compound_id \\
+      --features MolWt..TPSA --out shift-report";
 
 /// Command-line arguments of `shift`, as typed.
 #[derive(Debug, Args)]
 #[command(after_long_help = SHIFT_HELP)]
 pub struct ShiftArgs {
-    /// Labeled file (CSV, or TSV by extension): units already measured.
-    #[arg(long, value_name = "FILE")]
-    pub labeled: PathBuf,
+    /// Labeled file (CSV, or TSV by extension; .gz and .zst are decompressed; `-` reads
+    /// standard input): units already measured. Give --labeled and --pool, or --table.
+    #[arg(long, value_name = "FILE", conflicts_with = "table")]
+    pub labeled: Option<PathBuf>,
     /// Pool file: untested units.
+    #[arg(long, value_name = "FILE", conflicts_with = "table")]
+    pub pool: Option<PathBuf>,
+    /// One table holding both: rows whose --outcome cell is empty (or an
+    /// --untested-marker) are the pool, every other row is labeled (the outcome's value is
+    /// not used here: `NA` or `>10000` count as tested). Example: --table assays.csv
+    /// --outcome pIC50.
     #[arg(long, value_name = "FILE")]
-    pub pool: PathBuf,
-    /// Feature columns, in both files: a comma list of names and/or ranges such as
-    /// `f1..f32` (every column f1, f2, ..., f32).
+    pub table: Option<PathBuf>,
+    /// With --table: the outcome column, which tells tested rows from untested ones
+    /// [default: y].
+    #[arg(long, value_name = "NAME", requires = "table")]
+    pub outcome: Option<String>,
+    /// With --table: a token that also means "not tested" (besides the empty cell),
+    /// ignoring case; repeat for several. Example: --untested-marker untested.
+    #[arg(long, value_name = "TOKEN", requires = "table")]
+    pub untested_marker: Vec<String>,
+    /// Feature columns, in both files: a comma list of names and/or ranges: `f1..f32`
+    /// (every column f1, f2, ..., f32) or `MolWt..TPSA` (every column from MolWt to TPSA
+    /// in the header; `weighbridge columns FILE` shows the order).
     #[arg(long, value_name = "LIST", required = true)]
     pub features: Vec<String>,
     /// Id column (both files).
@@ -120,8 +144,14 @@ pub struct ShiftArgs {
 /// Checked configuration of one `shift` run.
 #[derive(Debug, Clone)]
 pub struct ShiftConfig {
+    /// The labeled file (the table itself with `--table`).
     pub labeled_path: PathBuf,
+    /// The pool file (the table itself with `--table`).
     pub pool_path: PathBuf,
+    /// Two files or one table.
+    pub inputs: InputFiles,
+    /// With `--table`: the outcome column that tells tested rows from untested ones.
+    pub outcome: String,
     pub read: ReadOptions,
     pub params: ShiftParams,
     pub out: PathBuf,
@@ -153,10 +183,29 @@ impl TryFrom<ShiftArgs> for ShiftConfig {
             features: feature_selectors(&a.features),
             delimiter: a.delimiter.map(DelimiterArg::byte),
             keep_columns: Vec::new(),
+            outcome_cells: OutcomeCells {
+                tested_only: true,
+                ..OutcomeCells::default()
+            },
         };
+        if a.table.is_none() && a.outcome.is_some() {
+            return Err(Failure::Input(
+                "--outcome applies to --table only here (it tells tested rows from untested \
+                 ones). Hint: drop --outcome, or give one --table FILE."
+                    .to_string(),
+            ));
+        }
+        let inputs = input_files(
+            a.labeled.as_ref(),
+            a.pool.as_ref(),
+            a.table.as_ref(),
+            &a.untested_marker,
+        )?;
         Ok(ShiftConfig {
-            labeled_path: a.labeled,
-            pool_path: a.pool,
+            labeled_path: inputs.labeled_path().to_path_buf(),
+            pool_path: inputs.pool_path().to_path_buf(),
+            inputs,
+            outcome: a.outcome.unwrap_or_else(|| "y".to_string()),
             read,
             params,
             out: a.out,
@@ -180,6 +229,34 @@ pub(crate) fn read_feature_table(
     role: Role,
     base: &ReadOptions,
 ) -> Result<UnitTable, Failure> {
+    let (table, _) = read_features(path, role, base, None)?;
+    Ok(table)
+}
+
+/// [`read_feature_table`] for one table holding both sets (`--table`): rows whose `outcome`
+/// cell is empty or one of `markers` are the pool. Returns `(labeled, pool)`.
+fn read_feature_tables(
+    path: &Path,
+    base: &ReadOptions,
+    outcome: &str,
+    markers: &[String],
+) -> Result<(UnitTable, UnitTable), Failure> {
+    let options = ReadOptions {
+        outcome: Some(outcome.to_string()),
+        ..base.clone()
+    };
+    let (labeled, pool) = read_features(path, Role::Table, &options, Some(markers))?;
+    Ok((labeled, pool.expect("a one-table read returns the pool")))
+}
+
+/// The reader behind both: the stand-in prediction column, then `read_units_choosing` or,
+/// with `markers`, `read_table_choosing`.
+fn read_features(
+    path: &Path,
+    role: Role,
+    base: &ReadOptions,
+    markers: Option<&[String]>,
+) -> Result<(UnitTable, Option<UnitTable>), Failure> {
     let options = ReadOptions {
         prediction: base.id.clone(),
         ..base.clone()
@@ -192,7 +269,12 @@ pub(crate) fn read_feature_table(
         stand_in = chosen.clone();
         Some(chosen)
     };
-    let mut table = read_units_choosing(path, role, &options, choose).map_err(|mut e| {
+    let read = match markers {
+        None => read_units_choosing(path, role, &options, choose).map(|table| (table, None)),
+        Some(markers) => read_table_choosing(path, &options, markers, choose)
+            .map(|(labeled, pool)| (labeled, Some(pool))),
+    };
+    let (mut table, mut pool) = read.map_err(|mut e| {
         // A bad cell in the stand-in column is a bad feature value.
         if let InputError::NotANumber { kind, column, .. }
         | InputError::NotFinite { kind, column, .. }
@@ -205,7 +287,10 @@ pub(crate) fn read_feature_table(
         Failure::from(e)
     })?;
     table.prediction = Vec::new();
-    Ok(table)
+    if let Some(pool) = pool.as_mut() {
+        pool.prediction = Vec::new();
+    }
+    Ok((table, pool))
 }
 
 /// Run `shift`.
@@ -219,12 +304,17 @@ pub fn run(args: ShiftArgs) -> Result<(), Failure> {
     )?;
     let status = StepStatus::new(config.quiet);
     status.step("reading the labeled and pool files");
-    check_one_stdin(&[
-        ("--labeled", &config.labeled_path),
-        ("--pool", &config.pool_path),
-    ])?;
-    let labeled = read_feature_table(&config.labeled_path, Role::Labeled, &config.read)?;
-    let pool = read_feature_table(&config.pool_path, Role::Pool, &config.read)?;
+    check_one_stdin(&config.inputs.flags())?;
+    let (labeled, pool) = match &config.inputs {
+        InputFiles::Two { labeled, pool } => (
+            read_feature_table(labeled, Role::Labeled, &config.read)?,
+            read_feature_table(pool, Role::Pool, &config.read)?,
+        ),
+        InputFiles::Table {
+            path,
+            untested_markers,
+        } => read_feature_tables(path, &config.read, &config.outcome, untested_markers)?,
+    };
     check_same_features(&labeled, &pool)?;
     timer.mark("read inputs");
     status.step("fitting the domain classifier, cross-validated AUC and permutation test");

@@ -12,6 +12,15 @@
 //!
 //! Binary outcomes (0/1 with a predicted probability and threshold 0.5) need nothing
 //! special: the clipped score applies directly.
+//!
+//! Lower-is-better screens (`--lower-is-better`, [`Direction::Below`]: a unit is interesting
+//! when its outcome is *below* `c`, as for potency in nM) are handled here and only here: the
+//! scores are those of the same screen with every outcome, prediction and threshold negated
+//! (`y < c` is `-y > -c`), so every later step (p-values, BH, conditional calibration) is
+//! unchanged:
+//!
+//! * residual: `V = mu(x) - y`;
+//! * clipped: `V = +inf` if `y < c`, else `mu(x) - c`; for the pool `Vh_j = mu(X_j) - c_j`.
 
 use serde::Serialize;
 
@@ -63,6 +72,37 @@ impl ScoreKind {
     pub fn pool_score(self, c: f64, mu: f64) -> f64 {
         c - mu
     }
+
+    /// [`labeled_score`](Self::labeled_score) for a screen whose interesting side is
+    /// `direction`.
+    ///
+    /// # Formula
+    /// Above: as `labeled_score`. Below: the score of `(-y, -c, -mu)` above, i.e. residual
+    /// `mu - y`; clipped `+inf` if `y < c`, else `mu - c`.
+    ///
+    /// # Examples
+    /// ```
+    /// use weighbridge::conformal::score::{Direction, ScoreKind};
+    /// let below = Direction::Below;
+    /// assert_eq!(ScoreKind::Clipped.labeled_score_toward(below, 50.0, 100.0, 80.0), f64::INFINITY);
+    /// assert_eq!(ScoreKind::Clipped.labeled_score_toward(below, 150.0, 100.0, 80.0), -20.0);
+    /// assert_eq!(ScoreKind::Residual.labeled_score_toward(below, 150.0, 100.0, 80.0), -70.0);
+    /// ```
+    pub fn labeled_score_toward(self, direction: Direction, y: f64, c: f64, mu: f64) -> f64 {
+        match direction {
+            Direction::Above => self.labeled_score(y, c, mu),
+            Direction::Below => self.labeled_score(-y, -c, -mu),
+        }
+    }
+
+    /// [`pool_score`](Self::pool_score) for a screen whose interesting side is `direction`:
+    /// `c - mu` above, `mu - c` below.
+    pub fn pool_score_toward(self, direction: Direction, c: f64, mu: f64) -> f64 {
+        match direction {
+            Direction::Above => self.pool_score(c, mu),
+            Direction::Below => self.pool_score(-c, -mu),
+        }
+    }
 }
 
 /// Which side of the threshold makes a unit interesting: `Above` (the default, "outcome
@@ -82,6 +122,15 @@ impl Direction {
         match self {
             Direction::Above => "above",
             Direction::Below => "below",
+        }
+    }
+
+    /// Is outcome `y` on the interesting side of threshold `c` (strictly: equal is neither
+    /// above nor below)?
+    pub fn is_interesting(self, y: f64, c: f64) -> bool {
+        match self {
+            Direction::Above => y > c,
+            Direction::Below => y < c,
         }
     }
 }
@@ -106,12 +155,31 @@ impl Thresholds<'_> {
     }
 }
 
-/// Scores of all labeled units.
+/// Scores of all labeled units (interesting: above the threshold).
 ///
 /// # Panics
 /// If `outcome` and `prediction` (or per-unit thresholds) have different lengths.
 pub fn labeled_scores(
     kind: ScoreKind,
+    outcome: &[f64],
+    prediction: &[f64],
+    thresholds: Thresholds<'_>,
+) -> Vec<f64> {
+    labeled_scores_toward(kind, Direction::Above, outcome, prediction, thresholds)
+}
+
+/// Imputed scores of all pool units (`c_j - mu(X_j)`; interesting: above the threshold).
+pub fn pool_scores(kind: ScoreKind, prediction: &[f64], thresholds: Thresholds<'_>) -> Vec<f64> {
+    pool_scores_toward(kind, Direction::Above, prediction, thresholds)
+}
+
+/// Scores of all labeled units, for a screen whose interesting side is `direction`.
+///
+/// # Panics
+/// If `outcome` and `prediction` (or per-unit thresholds) have different lengths.
+pub fn labeled_scores_toward(
+    kind: ScoreKind,
+    direction: Direction,
     outcome: &[f64],
     prediction: &[f64],
     thresholds: Thresholds<'_>,
@@ -128,19 +196,24 @@ pub fn labeled_scores(
         .iter()
         .zip(prediction)
         .enumerate()
-        .map(|(i, (&y, &mu))| kind.labeled_score(y, thresholds.get(i), mu))
+        .map(|(i, (&y, &mu))| kind.labeled_score_toward(direction, y, thresholds.get(i), mu))
         .collect()
 }
 
-/// Imputed scores of all pool units (`c_j - mu(X_j)`).
-pub fn pool_scores(kind: ScoreKind, prediction: &[f64], thresholds: Thresholds<'_>) -> Vec<f64> {
+/// Imputed scores of all pool units (`c_j - mu(X_j)`; below: `mu(X_j) - c_j`).
+pub fn pool_scores_toward(
+    kind: ScoreKind,
+    direction: Direction,
+    prediction: &[f64],
+    thresholds: Thresholds<'_>,
+) -> Vec<f64> {
     if let Thresholds::PerUnit(values) = thresholds {
         assert_eq!(values.len(), prediction.len(), "threshold length");
     }
     prediction
         .iter()
         .enumerate()
-        .map(|(j, &mu)| kind.pool_score(thresholds.get(j), mu))
+        .map(|(j, &mu)| kind.pool_score_toward(direction, thresholds.get(j), mu))
         .collect()
 }
 
@@ -200,5 +273,51 @@ mod tests {
             Thresholds::PerUnit(&[0.0, 9.0]),
         );
         assert_eq!(p, vec![-0.5, 8.5]);
+    }
+
+    #[test]
+    fn lower_is_better_is_the_negated_screen() {
+        // Reference: the definition in the module documentation (negate y, c and mu and
+        // score as above), checked against hand values and over a grid.
+        let below = Direction::Below;
+        let clipped = ScoreKind::Clipped;
+        // Outcome 40 nM with threshold 100: below, interesting.
+        assert!(clipped
+            .labeled_score_toward(below, 40.0, 100.0, 70.0)
+            .is_infinite());
+        // Equal is not below.
+        assert_eq!(
+            clipped.labeled_score_toward(below, 100.0, 100.0, 70.0),
+            -30.0
+        );
+        assert_eq!(clipped.pool_score_toward(below, 100.0, 70.0), -30.0);
+        assert_eq!(
+            ScoreKind::Residual.labeled_score_toward(below, 40.0, 100.0, 70.0),
+            30.0
+        );
+        for kind in [ScoreKind::Clipped, ScoreKind::Residual] {
+            for step in -20..=20 {
+                let y = 100.0 + step as f64 * 7.5;
+                let (c, mu) = (100.0, 90.0 + step as f64);
+                assert_eq!(
+                    kind.labeled_score_toward(below, y, c, mu),
+                    kind.labeled_score(-y, -c, -mu)
+                );
+                assert_eq!(
+                    kind.labeled_score_toward(Direction::Above, y, c, mu),
+                    kind.labeled_score(y, c, mu)
+                );
+                assert_eq!(
+                    kind.pool_score_toward(below, c, mu),
+                    kind.pool_score(-c, -mu)
+                );
+                // Nonincreasing in y below (nondecreasing in -y).
+                let lower = kind.labeled_score_toward(below, y - 1.0, c, mu);
+                assert!(lower >= kind.labeled_score_toward(below, y, c, mu));
+            }
+        }
+        assert!(below.is_interesting(99.0, 100.0) && !below.is_interesting(100.0, 100.0));
+        assert!(Direction::Above.is_interesting(6.6, 6.5));
+        assert!(!Direction::Above.is_interesting(6.5, 6.5));
     }
 }

@@ -35,6 +35,8 @@ pub(super) struct ChosenColumns {
     pub(super) weight: Option<Column>,
     pub(super) feature_names: Vec<String>,
     pub(super) features: Vec<Column>,
+    /// `--keep-columns`, in the order given (a labeled file: those it has).
+    pub(super) kept: Vec<Column>,
 }
 
 impl Header<'_> {
@@ -80,7 +82,9 @@ impl Header<'_> {
         let id = self.column(&options.id, ColumnKind::Id)?;
         let prediction = self.column(&options.prediction, ColumnKind::Prediction)?;
         let outcome = match self.role {
-            Role::Labeled => optional_column(self, options.outcome.as_ref(), ColumnKind::Outcome)?,
+            Role::Labeled | Role::Table => {
+                optional_column(self, options.outcome.as_ref(), ColumnKind::Outcome)?
+            }
             Role::Pool | Role::Shortlist => None,
         };
         let threshold = optional_column(
@@ -101,6 +105,12 @@ impl Header<'_> {
             .iter()
             .map(|name| self.column(name, ColumnKind::Feature))
             .collect::<Result<Vec<_>, _>>()?;
+        let kept = options
+            .keep_columns
+            .iter()
+            .filter(|name| self.role != Role::Labeled || self.names.contains(name))
+            .map(|name| self.column(name, ColumnKind::Kept))
+            .collect::<Result<Vec<_>, _>>()?;
         Ok(ChosenColumns {
             id,
             prediction,
@@ -109,6 +119,7 @@ impl Header<'_> {
             weight,
             feature_names,
             features,
+            kept,
         })
     }
 }
@@ -131,16 +142,71 @@ fn numeric_suffix(name: &str) -> Option<(&str, u64)> {
     digits.parse().ok().map(|number| (prefix, number))
 }
 
+/// A range whose ends are both header names: every column from `from` to `to` in header
+/// order (first occurrences).
+fn positional_range(
+    selector: &str,
+    from: &str,
+    to: &str,
+    header: &[String],
+) -> Option<Result<Vec<String>, String>> {
+    let start = header.iter().position(|name| name == from)?;
+    let end = header.iter().position(|name| name == to)?;
+    if start > end {
+        return Some(Err(format!(
+            "range `{selector}` runs backwards: `{to}` is column {} and `{from}` column {} of the \
+             header; write `{to}..{from}`",
+            end + 1,
+            start + 1
+        )));
+    }
+    Some(Ok(header[start..=end].to_vec()))
+}
+
+/// Why a range cannot be read either way: names its first end that is not a column name
+/// (with a suggestion).
+fn range_end_error(selector: &str, from: &str, to: &str, header: &[String]) -> String {
+    let end = if header.iter().any(|name| name == from) {
+        to
+    } else {
+        from
+    };
+    format!(
+        "range `{selector}`: `{end}` is not a column name{}{}. A range is two column names \
+         (`MolWt..TPSA`: every column from MolWt to TPSA in the header) or two names with a \
+         numeric suffix (`f1..f32`)",
+        super::errors::did_you_mean(end, header),
+        if numeric_suffix(end).is_none() {
+            " and does not end in a number"
+        } else {
+            ""
+        }
+    )
+}
+
 fn expand_range(
     selector: &str,
     from: &str,
     to: &str,
     header: &[String],
 ) -> Result<Vec<String>, String> {
-    let (prefix, start) = numeric_suffix(from)
-        .ok_or_else(|| format!("range `{selector}`: `{from}` does not end in a number"))?;
-    let (end_prefix, end) = numeric_suffix(to)
-        .ok_or_else(|| format!("range `{selector}`: `{to}` does not end in a number"))?;
+    // Two numbered ends with one prefix keep their numeric meaning (every f2, ..., f31
+    // must exist, in number order), whatever the header order; other ranges of two
+    // column names go by position.
+    let numbered = matches!(
+        (numeric_suffix(from), numeric_suffix(to)),
+        (Some((a, _)), Some((b, _))) if a == b
+    );
+    if !numbered {
+        if let Some(range) = positional_range(selector, from, to, header) {
+            return range;
+        }
+    }
+    let (Some((prefix, start)), Some((end_prefix, end))) =
+        (numeric_suffix(from), numeric_suffix(to))
+    else {
+        return Err(range_end_error(selector, from, to, header));
+    };
     if prefix != end_prefix {
         return Err(format!(
             "range `{selector}`: both ends must share one prefix, got `{prefix}` and `{end_prefix}`"
@@ -190,9 +256,11 @@ fn expand_range(
 }
 /// Expand feature selectors against a header.
 ///
-/// A selector is a column name, or a range `f1..f5` meaning every header name with the same
-/// prefix and numeric suffix 1, 2, ..., 5 (compared as numbers, so `f01` counts as 1), each
-/// of which must exist. A selector that is itself a header name is taken as a name even if
+/// A selector is a column name, or a range `A..B`. Two ends with one prefix and a numeric
+/// suffix (`f1..f5`) mean every header name with that prefix and suffix 1, 2, ..., 5
+/// (compared as numbers, so `f01` counts as 1), each of which must exist, in number order.
+/// Otherwise, when both `A` and `B` are header names, the range is every column from `A`
+/// to `B` in header order (`MolWt..TPSA`). A selector that is itself a header name is taken as a name even if
 /// it contains `..`. Selectors are trimmed; the result keeps the order given. Plain names are
 /// not checked against the header here ([`read_units`](super::read_units) reports them as missing columns).
 ///
@@ -231,6 +299,84 @@ pub fn resolve_features(selectors: &[String], header: &[String]) -> Result<Vec<S
         }
     }
     Ok(chosen)
+}
+
+/// At most this many names are suggested for a mistyped column.
+const SUGGESTED: usize = 3;
+
+/// Header names close to `wanted`, best first (at most three): names equal to it ignoring
+/// case; else equal ignoring case and punctuation (`pred_pIC50` for `predpic50`); else the
+/// names nearest in edit distance (Levenshtein, ignoring case) if within a third of the
+/// name's length (at least 1); else names that contain it or that it contains (3 or more
+/// characters). Empty when nothing is close.
+pub fn suggest(wanted: &str, header: &[String]) -> Vec<String> {
+    let wanted = wanted.trim();
+    let lower = wanted.to_lowercase();
+    let pick = |keep: &dyn Fn(&str) -> bool| -> Vec<String> {
+        header
+            .iter()
+            .filter(|name| name.as_str() != wanted && keep(name))
+            .take(SUGGESTED)
+            .cloned()
+            .collect()
+    };
+    let same_case = pick(&|name| name.to_lowercase() == lower);
+    if !same_case.is_empty() {
+        return same_case;
+    }
+    let squashed = |text: &str| -> String {
+        text.chars()
+            .filter(|c| c.is_alphanumeric())
+            .flat_map(char::to_lowercase)
+            .collect()
+    };
+    let target = squashed(wanted);
+    if !target.is_empty() {
+        let same_letters = pick(&|name| squashed(name) == target);
+        if !same_letters.is_empty() {
+            return same_letters;
+        }
+    }
+    let limit = (lower.chars().count() / 3).max(1);
+    let distances: Vec<(usize, &String)> = header
+        .iter()
+        .filter(|name| name.as_str() != wanted)
+        .map(|name| (edit_distance(&lower, &name.to_lowercase()), name))
+        .collect();
+    if let Some(best) = distances.iter().map(|(d, _)| *d).min() {
+        if best <= limit {
+            return distances
+                .iter()
+                .filter(|(d, _)| *d == best)
+                .take(SUGGESTED)
+                .map(|(_, name)| (*name).clone())
+                .collect();
+        }
+    }
+    if lower.chars().count() >= 3 {
+        return pick(&|name| {
+            let name = name.to_lowercase();
+            name.chars().count() >= 3 && (name.contains(&lower) || lower.contains(&name))
+        });
+    }
+    Vec::new()
+}
+
+/// Levenshtein distance between two strings, by characters (insertions, deletions and
+/// substitutions each cost 1; the textbook two-row dynamic programme).
+fn edit_distance(a: &str, b: &str) -> usize {
+    let b: Vec<char> = b.chars().collect();
+    let mut previous: Vec<usize> = (0..=b.len()).collect();
+    let mut current = vec![0; b.len() + 1];
+    for (i, ca) in a.chars().enumerate() {
+        current[0] = i + 1;
+        for (j, &cb) in b.iter().enumerate() {
+            let substitution = previous[j] + usize::from(ca != cb);
+            current[j + 1] = substitution.min(previous[j + 1] + 1).min(current[j] + 1);
+        }
+        std::mem::swap(&mut previous, &mut current);
+    }
+    previous[b.len()]
 }
 
 /// Check that the labeled and pool tables chose the same feature columns (same order).
@@ -281,6 +427,70 @@ mod tests {
     }
 
     #[test]
+    fn ranges_of_column_names_go_by_position() {
+        let header = names(&[
+            "compound_id",
+            "pIC50",
+            "MolWt",
+            "LogP",
+            "HBD",
+            "TPSA",
+            "series",
+            "f1",
+            "f2",
+        ]);
+        let resolve = |selectors: &[&str]| resolve_features(&names(selectors), &header);
+        assert_eq!(
+            resolve(&["MolWt..TPSA"]).unwrap(),
+            ["MolWt", "LogP", "HBD", "TPSA"]
+        );
+        assert_eq!(resolve(&["LogP..LogP"]).unwrap(), ["LogP"]);
+        // Ends with different prefixes: by position, even for numbered names.
+        assert_eq!(resolve(&["TPSA..f1"]).unwrap(), ["TPSA", "series", "f1"]);
+        assert_eq!(resolve(&["f1..f2"]).unwrap(), ["f1", "f2"]);
+        // One prefix, numbered: by number, not position.
+        let shuffled = names(&["id", "f2", "x", "f1", "f3"]);
+        assert_eq!(
+            resolve_features(&names(&["f1..f3"]), &shuffled).unwrap(),
+            ["f1", "f2", "f3"]
+        );
+        let message = resolve(&["TPSA..MolWt"]).unwrap_err();
+        assert!(
+            message.contains("backwards") && message.contains("MolWt..TPSA"),
+            "{message}"
+        );
+        let message = resolve(&["MolWt..tpsa"]).unwrap_err();
+        assert!(message.contains("did you mean `TPSA`?"), "{message}");
+        let message = resolve(&["MolWt..TPSA", "LogP"]).unwrap_err();
+        assert!(message.contains("selected twice"), "{message}");
+    }
+
+    #[test]
+    fn suggestions_prefer_case_then_punctuation_then_edit_distance() {
+        // Expected names chosen by hand from the rules in `suggest`'s documentation.
+        let header = names(&[
+            "compound_id",
+            "pIC50",
+            "predicted_pIC50",
+            "MolWt",
+            "TPSA",
+            "series",
+        ]);
+        assert_eq!(suggest("pic50", &header), ["pIC50"]);
+        assert_eq!(suggest("PREDICTED_PIC50", &header), ["predicted_pIC50"]);
+        assert_eq!(suggest("predictedpic50", &header), ["predicted_pIC50"]);
+        assert_eq!(suggest("Molwt", &header), ["MolWt"]);
+        assert_eq!(suggest("MolWeight", &header), Vec::<String>::new());
+        assert_eq!(suggest("seires", &header), ["series"]);
+        assert_eq!(suggest("TPS", &header), ["TPSA"]);
+        assert_eq!(suggest("compound", &header), ["compound_id"]);
+        assert_eq!(suggest("zzz", &header), Vec::<String>::new());
+        assert_eq!(edit_distance("kitten", "sitting"), 3);
+        assert_eq!(edit_distance("", "abc"), 3);
+        assert_eq!(edit_distance("flaw", "lawn"), 2);
+    }
+
+    #[test]
     fn feature_ranges_that_fail() {
         let header = names(&["id", "f1", "f3", "f4", "g2", "h1", "h01"]);
         let fails = |selectors: &[&str], needle: &str| {
@@ -288,9 +498,15 @@ mod tests {
             assert!(message.contains(needle), "{selectors:?}: {message}");
         };
         fails(&["f1..f3"], "`f2`");
-        fails(&["f1..g2"], "prefix");
+        fails(&["f1..g9"], "prefix");
+        // Both ends are names with different prefixes: by position.
+        assert_eq!(
+            resolve_features(&names(&["f1..g2"]), &header).unwrap(),
+            ["f1", "f3", "f4", "g2"]
+        );
         fails(&["f4..f1"], "backwards");
         fails(&["f..f3"], "does not end in a number");
+        fails(&["id..g"], "`g` is not a column name; did you mean `g2`?");
         fails(&["h1..h1"], "several columns");
         fails(&["f1", "f1"], "selected twice");
         fails(&["f3..f4", "f4"], "`f4` is selected twice");

@@ -20,6 +20,9 @@ pub enum InputError {
         source: io::Error,
     },
 
+    #[error("{file}: {message}", file = .path.display())]
+    NotText { path: PathBuf, message: String },
+
     #[error("{file} line {line}: read error: {source}. Hint: check that the file is complete and readable.", file = .path.display())]
     Read {
         path: PathBuf,
@@ -38,7 +41,7 @@ pub enum InputError {
         header_line: u64,
     },
 
-    #[error("{file} line {header_line} (header): the {role} has no column `{column}` for the {what}; its columns are: {names}. Hint: {hint}", file = .path.display(), what = .kind.describe(), names = name_list(.available), hint = missing_column_hint(*.kind, .available))]
+    #[error("{file} line {header_line} (header): the {role} has no column `{column}` for the {what}{detail}. Hint: {hint}", file = .path.display(), what = .kind.describe(), detail = column_detail(.column, .available, .path), hint = missing_column_hint(*.kind, .available))]
     MissingColumn {
         path: PathBuf,
         role: Role,
@@ -81,6 +84,46 @@ pub enum InputError {
         line: u64,
         column: String,
         kind: ColumnKind,
+    },
+
+    #[error("{file} line {line}, column `{column}`: {shown_value} is a missing-value token, so this labeled row has no outcome. Hint: {hint}", file = .path.display(), shown_value = missing_shown(.value), hint = missing_outcome_hint(.value, *.one_table))]
+    MissingOutcome {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        value: String,
+        /// A one-table input (`--table`), where an empty cell means untested.
+        one_table: bool,
+    },
+
+    #[error("{file} line {line}, column `{column}`: outcome `{value}` is not a number. Hint: an outcome is a finite number like 6.5 or 1e-3, a censored value like >10000 or <=1 (decided by its bound when it can be), or a missing-value token (NA, N/A; set with --missing-values, then --missing-outcome drop leaves the row out){untested}; fix the cell or remove the row.", file = .path.display(), untested = if *.one_table { "; an empty cell or an --untested-marker token marks an untested (pool) row" } else { "" })]
+    UnreadableOutcome {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        value: String,
+        one_table: bool,
+    },
+
+    #[error("{file} line {line}, column `{column}`: censored outcome `{value}`: {problem}. Hint: {hint}", file = .path.display(), hint = if *.residual { "use the default --score clipped, which needs only the side of the threshold, or give the measured value" } else { "give the measured value, remove the row, or mark it as missing (NA) and pass --missing-outcome drop" })]
+    CensoredOutcome {
+        path: PathBuf,
+        line: u64,
+        column: String,
+        value: String,
+        /// Why the bound cannot be used, in the user's units and words.
+        problem: String,
+        /// The score needs the value (`--score residual`).
+        residual: bool,
+    },
+
+    #[error("{file} line {header_line} (header): the table has no {side} rows: {why}. Hint: {hint}", file = .path.display(), side = if *.labeled { "labeled" } else { "pool (untested)" }, why = if *.labeled { format!("every cell of the outcome column `{column}` is empty or an untested marker") } else { format!("every row has a value in the outcome column `{column}`") }, hint = if *.labeled { "check --outcome (the column with the measured values) and --untested-marker" } else { "rows to screen leave the outcome empty (or hold an --untested-marker token); for separate files use --labeled and --pool" })]
+    TableSideEmpty {
+        path: PathBuf,
+        header_line: u64,
+        column: String,
+        /// True: no labeled rows; false: no pool rows.
+        labeled: bool,
     },
 
     #[error("{file} line {line}, column `{column}`: the id is empty. Hint: every row needs a unique, non-empty id.", file = .path.display())]
@@ -136,7 +179,7 @@ pub enum InputError {
         delimiter: u8,
     },
 
-    #[error("{file} line {header_line} (header): feature selection failed: {message}. Hint: a range `f1..f32` needs every column f1, f2, ..., f32 in the header; otherwise list the feature names with --features.", file = .path.display())]
+    #[error("{file} line {header_line} (header): feature selection failed: {message}. Hint: a range of two column names (`MolWt..TPSA`) takes every column between them in the header; a numbered range `f1..f32` needs every column f1, f2, ..., f32; `weighbridge columns FILE` lists the columns.", file = .path.display())]
     FeatureSelection {
         path: PathBuf,
         header_line: u64,
@@ -199,6 +242,60 @@ pub(super) fn name_list(names: &[String]) -> String {
         text.push_str(&format!(" and {} more", names.len() - LISTED_NAMES));
     }
     text
+}
+
+/// "; did you mean `X`?" when a header name is close to `wanted` (see
+/// [`suggest`](super::columns::suggest)), then the header's names: all of them when there are
+/// at most twenty, else the first twenty and how to list them all.
+pub(super) fn column_detail(wanted: &str, available: &[String], path: &std::path::Path) -> String {
+    let mut text = did_you_mean(wanted, available);
+    if available.len() <= LISTED_NAMES {
+        text.push_str(&format!("; its columns are: {}", name_list(available)));
+    } else {
+        text.push_str(&format!(
+            "; it has {} columns, the first {LISTED_NAMES}: {} (`weighbridge columns {}` lists them all)",
+            available.len(),
+            name_list(available),
+            path.display()
+        ));
+    }
+    text
+}
+
+/// "; did you mean `X`?" (or "`X` or `Y`") for the names close to `wanted`; empty if none.
+pub(crate) fn did_you_mean(wanted: &str, available: &[String]) -> String {
+    let close = super::columns::suggest(wanted, available);
+    if close.is_empty() {
+        return String::new();
+    }
+    let names: Vec<String> = close
+        .iter()
+        .map(|name| format!("`{}`", shown_text(name)))
+        .collect();
+    format!("; did you mean {}?", names.join(" or "))
+}
+
+fn missing_shown(value: &str) -> String {
+    if value.is_empty() {
+        "the empty cell".to_string()
+    } else {
+        format!("`{value}`")
+    }
+}
+
+fn missing_outcome_hint(value: &str, one_table: bool) -> String {
+    let mut hint = String::from(
+        "fill in the measured value, or pass --missing-outcome drop to leave such rows out \
+         (their count goes into summary.json `dropped_missing_outcome_count`); the tokens are \
+         chosen with --missing-values (default NA,N/A and, with two files, the empty cell).",
+    );
+    if one_table {
+        hint.push_str(&format!(
+            " If `{value}` means \"not tested\" here, pass --untested-marker '{value}' to make \
+             such rows part of the pool."
+        ));
+    }
+    hint
 }
 
 fn missing_column_hint(kind: ColumnKind, available: &[String]) -> String {

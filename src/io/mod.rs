@@ -6,8 +6,10 @@
 //!
 //! - [`read`]: [`read_units`], [`read_id_list`], [`UnitTable`], [`ReadOptions`], the csv
 //!   reader and cell parsing;
-//! - [`columns`]: column selection ([`resolve_features`] with ranges such as `f1..f32`,
-//!   [`check_same_features`], header lookup);
+//! - [`columns`]: column selection ([`resolve_features`] with ranges such as `f1..f32` and
+//!   `MolWt..TPSA`, [`check_same_features`], header lookup, did-you-mean suggestions);
+//! - [`outcome`]: assay conventions in labeled outcome cells (missing-value tokens,
+//!   censored values, untested rows of a one-table input);
 //! - [`errors`]: [`InputError`] and the wording of its messages;
 //! - [`source`]: [`Source`], an input read once (file, named pipe, or `-` for standard
 //!   input) that knows its line ends, so messages give editor lines without reopening;
@@ -18,6 +20,7 @@
 pub mod columns;
 pub mod errors;
 pub mod folder;
+pub mod outcome;
 pub mod output;
 pub mod read;
 pub mod source;
@@ -25,9 +28,11 @@ pub mod source;
 pub use columns::{check_same_features, resolve_features};
 pub use errors::InputError;
 pub use folder::{FolderError, Manifest, RunFolder, MANIFEST};
+pub use outcome::{CensoredRule, MissingOutcome, OutcomeCells};
 pub use output::{abandon_temporaries, write_atomic, OutputSet};
 pub use read::{
-    delimiter_for, parse_finite, read_id_list, read_units, read_units_choosing, ColumnKind,
-    KeptColumns, ReadOptions, Role, UnitTable,
+    column_overview, delimiter_for, parse_finite, read_id_list, read_table, read_table_choosing,
+    read_units, read_units_choosing, ColumnKind, ColumnOverview, KeptColumns, ReadOptions, Role,
+    UnitTable,
 };
-pub use source::{check_one_stdin, Source};
+pub use source::{check_one_stdin, Format, Source};

@@ -19,6 +19,7 @@ use std::path::{Path, PathBuf};
 
 use super::columns::{ChosenColumns, Column, Header};
 use super::errors::{shown, InputError};
+use super::outcome::{classify, decide_censored, MissingOutcome, OutcomeCell, OutcomeCells};
 use super::source::{display_path, Source};
 
 /// Which file a table came from; used in messages ("labeled file", "pool file").
@@ -28,6 +29,9 @@ pub enum Role {
     Pool,
     /// A list of ids chosen earlier (`audit --shortlist`).
     Shortlist,
+    /// One table holding both (`--table`): rows with an outcome are labeled, the others
+    /// the pool.
+    Table,
 }
 
 impl fmt::Display for Role {
@@ -36,6 +40,7 @@ impl fmt::Display for Role {
             Role::Labeled => "labeled file",
             Role::Pool => "pool file",
             Role::Shortlist => "shortlist file",
+            Role::Table => "table",
         })
     }
 }
@@ -49,6 +54,8 @@ pub enum ColumnKind {
     Threshold,
     Weight,
     Feature,
+    /// A column copied verbatim to the outputs (`--keep-columns`).
+    Kept,
 }
 
 impl ColumnKind {
@@ -61,6 +68,7 @@ impl ColumnKind {
             ColumnKind::Threshold => "threshold",
             ColumnKind::Weight => "weight",
             ColumnKind::Feature => "feature value",
+            ColumnKind::Kept => "kept column",
         }
     }
 
@@ -73,6 +81,7 @@ impl ColumnKind {
             ColumnKind::Threshold => "--threshold-column",
             ColumnKind::Weight => "--weight-column",
             ColumnKind::Feature => "--features",
+            ColumnKind::Kept => "--keep-columns",
         }
     }
 }
@@ -95,8 +104,12 @@ pub struct ReadOptions {
     pub features: Vec<String>,
     /// Field delimiter. `None`: tab if the file name ends in .tsv/.tab, else comma.
     pub delimiter: Option<u8>,
-    /// Columns copied verbatim to the outputs (`--keep-columns`), in this order.
+    /// Columns copied verbatim to the outputs (`--keep-columns`), in this order. Required
+    /// in a pool file and a one-table input; a labeled file reads those it has.
     pub keep_columns: Vec<String>,
+    /// How labeled outcome cells that are not plain numbers are read (missing-value
+    /// tokens, censored values); defaults to [`OutcomeCells::default`].
+    pub outcome_cells: OutcomeCells,
 }
 
 impl ReadOptions {
@@ -111,6 +124,7 @@ impl ReadOptions {
             features: Vec::new(),
             delimiter: None,
             keep_columns: Vec::new(),
+            outcome_cells: OutcomeCells::default(),
         }
     }
 }
@@ -157,6 +171,12 @@ pub struct UnitTable {
     pub features: Vec<f64>,
     /// Pass-through columns (`--keep-columns`); empty unless asked for.
     pub kept: KeptColumns,
+    /// Labeled rows left out because their outcome was a missing-value token
+    /// (`--missing-outcome drop`); 0 for a pool.
+    pub dropped_missing_outcome: usize,
+    /// Labeled outcomes given as censored values (`>x`, `<=x`, ...) and decided by their
+    /// bound; 0 for a pool.
+    pub censored_outcomes: usize,
 }
 
 impl UnitTable {
@@ -185,16 +205,22 @@ impl UnitTable {
 }
 
 /// The field delimiter for `path`: `explicit` if given, else tab for names ending in
-/// `.tsv` or `.tab` (any case), else comma.
+/// `.tsv` or `.tab` (any case; also before a `.gz` or `.zst` ending, as in `x.tsv.gz`),
+/// else comma.
 pub fn delimiter_for(path: &Path, explicit: Option<u8>) -> u8 {
     if let Some(delimiter) = explicit {
         return delimiter;
     }
-    let tabbed = path
-        .extension()
-        .and_then(|ext| ext.to_str())
-        .is_some_and(|ext| ext.eq_ignore_ascii_case("tsv") || ext.eq_ignore_ascii_case("tab"));
-    if tabbed {
+    let name = path
+        .file_name()
+        .and_then(|name| name.to_str())
+        .unwrap_or_default()
+        .to_ascii_lowercase();
+    let name = [".gz", ".zst"]
+        .iter()
+        .find_map(|ending| name.strip_suffix(ending))
+        .unwrap_or(&name);
+    if name.ends_with(".tsv") || name.ends_with(".tab") {
         b'\t'
     } else {
         b','
@@ -440,13 +466,15 @@ fn id_cell(
 ///
 /// Reads the whole file into memory: about 8 bytes per number plus the ids.
 /// Header names and cells are trimmed of ASCII whitespace; a UTF-8 byte order mark, blank
-/// lines and CRLF line ends are accepted.
+/// lines and CRLF line ends are accepted; gzip and Zstandard files are decompressed
+/// ([`Source::open`]).
 ///
 /// # Errors
 /// Every bad input is an [`InputError`] variant naming the file, line and column: file
 /// cannot be opened, empty file, no data rows, missing or doubled column, non-numeric,
 /// empty, NaN or infinite cell, empty or non-UTF-8 id, duplicate id, weight <= 0, wrong
-/// number of fields, feature selection that does not resolve.
+/// number of fields, feature selection that does not resolve, a missing or undecidable
+/// censored outcome (see [`OutcomeCells`]).
 pub fn read_units(path: &Path, role: Role, options: &ReadOptions) -> Result<UnitTable, InputError> {
     read_units_choosing(path, role, options, |_| None)
 }
@@ -465,6 +493,62 @@ pub fn read_units_choosing(
     options: &ReadOptions,
     choose: impl FnOnce(&[String]) -> Option<String>,
 ) -> Result<UnitTable, InputError> {
+    let (table, _) = read_file(path, role, options, None, choose)?;
+    Ok(table)
+}
+
+/// Read one table holding both the labeled rows and the pool (`--table`), once, from start
+/// to end (standard input works): a row whose outcome cell is empty, or one of
+/// `untested_markers` (trimmed, ignoring ASCII case), is a pool row; every other row is
+/// labeled and its outcome is read as in a labeled file (missing-value tokens, censored
+/// values: `options.outcome_cells`, where an empty cell means untested instead). Both
+/// tables keep the file's row order; messages name the file and its editor lines.
+///
+/// `options.outcome` names the outcome column (required). Returns `(labeled, pool)`, with
+/// roles [`Role::Labeled`] and [`Role::Pool`] and the same path.
+///
+/// # Errors
+/// As [`read_units`]; also [`InputError::TableSideEmpty`] when no row is labeled or no row
+/// is untested, and [`InputError::DuplicateId`] for an id on two rows of either kind.
+pub fn read_table(
+    path: &Path,
+    options: &ReadOptions,
+    untested_markers: &[String],
+) -> Result<(UnitTable, UnitTable), InputError> {
+    read_table_choosing(path, options, untested_markers, |_| None)
+}
+
+/// [`read_table`] with the prediction column chosen from the header, as in
+/// [`read_units_choosing`].
+///
+/// # Errors
+/// As [`read_table`].
+///
+/// # Panics
+/// If `options.outcome` is `None`.
+pub fn read_table_choosing(
+    path: &Path,
+    options: &ReadOptions,
+    untested_markers: &[String],
+    choose: impl FnOnce(&[String]) -> Option<String>,
+) -> Result<(UnitTable, UnitTable), InputError> {
+    assert!(
+        options.outcome.is_some(),
+        "a one-table read needs the outcome column to tell labeled rows from the pool"
+    );
+    let (labeled, pool) = read_file(path, Role::Table, options, Some(untested_markers), choose)?;
+    Ok((labeled, pool.expect("a one-table read returns the pool")))
+}
+
+/// The one reader behind [`read_units`] and [`read_table`]: with `untested` (a one-table
+/// read) the rows are split into a labeled table and a pool.
+fn read_file(
+    path: &Path,
+    role: Role,
+    options: &ReadOptions,
+    untested: Option<&[String]>,
+    choose: impl FnOnce(&[String]) -> Option<String>,
+) -> Result<(UnitTable, Option<UnitTable>), InputError> {
     let shown_path = display_path(path);
     let (mut reader, delimiter, file_len) = open_table(path, &shown_path, options.delimiter)?;
     let header = read_header(&mut reader, &shown_path, role, delimiter)?;
@@ -475,18 +559,26 @@ pub fn read_units_choosing(
         })?,
         None => header.choose_columns(options)?,
     };
+    let rules = RowRules {
+        cells: &options.outcome_cells,
+        untested,
+    };
     let rows = read_rows(
         &mut reader,
         &shown_path,
         delimiter,
         &header.names,
         &columns,
+        &rules,
         file_len,
     )?;
     let header_line = header.line;
-    let mut table = finish_table(&shown_path, role, header_line, columns, rows)?;
+    let (mut table, mut pool) = finish_table(&shown_path, role, header_line, columns, rows)?;
     table.path = path.to_path_buf();
-    Ok(table)
+    if let Some(pool) = pool.as_mut() {
+        pool.path = path.to_path_buf();
+    }
+    Ok((table, pool))
 }
 
 /// Open `path` for reading (not a directory; `-` is standard input) with the delimiter it
@@ -496,13 +588,26 @@ fn open_table(
     shown_path: &Path,
     explicit_delimiter: Option<u8>,
 ) -> Result<(csv::Reader<Source>, u8, u64), InputError> {
-    let source = Source::open(path).map_err(|source| InputError::Open {
-        path: shown_path.to_path_buf(),
-        source,
-    })?;
+    let source = Source::open(path).map_err(|source| open_error(shown_path, source))?;
     let file_len = source.len_hint();
     let delimiter = delimiter_for(path, explicit_delimiter);
     Ok((csv_reader(delimiter, source), delimiter, file_len))
+}
+
+/// Why an input could not be opened: a binary format that is not a table (named, with what
+/// to do), or the operating system's reason.
+pub(crate) fn open_error(shown_path: &Path, source: std::io::Error) -> InputError {
+    if source.kind() == std::io::ErrorKind::InvalidData {
+        InputError::NotText {
+            path: shown_path.to_path_buf(),
+            message: source.to_string(),
+        }
+    } else {
+        InputError::Open {
+            path: shown_path.to_path_buf(),
+            source,
+        }
+    }
 }
 
 /// The header row: its editor line and its names, trimmed (each must be UTF-8).
@@ -550,16 +655,30 @@ fn read_header<'a>(
 struct Rows {
     ids: Vec<String>,
     prediction: Vec<f64>,
+    /// NaN for the untested rows of a one-table read.
     outcome: Vec<f64>,
     threshold: Vec<f64>,
     weight: Vec<f64>,
     features: FeatureBuffer,
+    /// Kept cells, row-major.
+    kept: Vec<String>,
+    /// One-table read: whether each row is untested (a pool row).
+    untested: Vec<bool>,
+    dropped_missing_outcome: usize,
+    censored_outcomes: usize,
     lines: RowLines,
 }
 
+/// How a row's outcome cell is read: the assay conventions and, in a one-table read, the
+/// markers of untested rows.
+struct RowRules<'a> {
+    cells: &'a OutcomeCells,
+    untested: Option<&'a [String]>,
+}
+
 /// Editor line of every data row, stored compactly: row `r` is on line `r + shift`, and the
-/// shift changes only at blank lines and quoted line breaks, so only the changes are kept.
-/// Used to name both lines of a repeated id without reading the file again.
+/// shift changes only at blank lines, quoted line breaks and dropped rows, so only the
+/// changes are kept. Used to name both lines of a repeated id without reading the file again.
 #[derive(Default)]
 struct RowLines {
     /// `(first row, shift)`, increasing in row.
@@ -597,12 +716,16 @@ impl Rows {
             threshold: Vec::new(),
             weight: Vec::new(),
             features: FeatureBuffer::new(feature_count),
+            kept: Vec::new(),
+            untested: Vec::new(),
+            dropped_missing_outcome: 0,
+            censored_outcomes: 0,
             lines: RowLines::default(),
         }
     }
 
     /// Size every chosen column for `estimate` rows.
-    fn reserve(&mut self, estimate: usize, columns: &ChosenColumns) {
+    fn reserve(&mut self, estimate: usize, columns: &ChosenColumns, split: bool) {
         self.ids.reserve(estimate);
         self.prediction.reserve(estimate);
         if columns.outcome.is_some() {
@@ -614,28 +737,66 @@ impl Rows {
         if columns.weight.is_some() {
             self.weight.reserve(estimate);
         }
+        if split {
+            self.untested.reserve(estimate);
+        }
         self.features.reserve_rows(estimate);
     }
 
     /// Parse one record's chosen cells (id, prediction, outcome, threshold, weight, features,
-    /// in that order, so the first bad cell is the one reported).
+    /// kept columns, in that order, so the first bad cell is the one reported). A labeled row
+    /// whose outcome is a missing-value token is skipped (and counted) under
+    /// `--missing-outcome drop` before any other cell is looked at.
     fn push(
         &mut self,
         path: &Path,
         line: u64,
         record: &csv::ByteRecord,
         columns: &ChosenColumns,
+        rules: &RowRules<'_>,
     ) -> Result<(), InputError> {
+        let outcome_cell = columns.outcome.as_ref().map(|column| {
+            classify(
+                record.get(column.index).unwrap_or_default(),
+                rules.cells,
+                rules.untested,
+            )
+        });
+        if outcome_cell == Some(OutcomeCell::Missing)
+            && rules.cells.missing == MissingOutcome::Drop
+            && !rules.cells.tested_only
+        {
+            self.dropped_missing_outcome += 1;
+            return Ok(());
+        }
         self.lines.note(self.ids.len(), line);
         self.ids.push(id_cell(path, line, record, &columns.id)?);
         self.prediction
             .push(number_cell(path, line, record, &columns.prediction)?);
-        if let Some(column) = &columns.outcome {
-            self.outcome.push(number_cell(path, line, record, column)?);
+        // A censored outcome is decided against this row's threshold, read first then.
+        let censored =
+            matches!(outcome_cell, Some(OutcomeCell::Censored(..))) && !rules.cells.tested_only;
+        let mut threshold = None;
+        if let (Some(column), true) = (&columns.threshold, censored) {
+            threshold = Some(number_cell(path, line, record, column)?);
+        }
+        if let (Some(column), Some(cell)) = (&columns.outcome, outcome_cell) {
+            let value = if rules.cells.tested_only {
+                f64::NAN
+            } else {
+                self.outcome_value(path, line, record, column, cell, threshold, rules)?
+            };
+            self.outcome.push(value);
+            if rules.untested.is_some() {
+                self.untested.push(cell == OutcomeCell::Untested);
+            }
         }
         if let Some(column) = &columns.threshold {
-            self.threshold
-                .push(number_cell(path, line, record, column)?);
+            let value = match threshold {
+                Some(value) => value,
+                None => number_cell(path, line, record, column)?,
+            };
+            self.threshold.push(value);
         }
         if let Some(column) = &columns.weight {
             self.weight.push(weight_cell(path, line, record, column)?);
@@ -646,7 +807,98 @@ impl Rows {
                 .set(f, number_cell(path, line, record, column)?);
         }
         self.features.finish_row();
+        for column in &columns.kept {
+            self.kept.push(kept_cell(path, line, record, column)?);
+        }
         Ok(())
+    }
+
+    /// The outcome to store for a classified cell (NaN for an untested row), or the located
+    /// error: a missing value under `--missing-outcome error`, an unreadable cell, a censored
+    /// value its bound does not decide or that the score cannot use.
+    #[allow(clippy::too_many_arguments)]
+    fn outcome_value(
+        &mut self,
+        path: &Path,
+        line: u64,
+        record: &csv::ByteRecord,
+        column: &Column,
+        cell: OutcomeCell,
+        row_threshold: Option<f64>,
+        rules: &RowRules<'_>,
+    ) -> Result<f64, InputError> {
+        let text = || shown(record.get(column.index).unwrap_or_default().trim_ascii());
+        match cell {
+            OutcomeCell::Value(value) => Ok(value),
+            OutcomeCell::Untested => Ok(f64::NAN),
+            OutcomeCell::Missing => Err(InputError::MissingOutcome {
+                path: path.to_path_buf(),
+                line,
+                column: column.name.clone(),
+                value: text(),
+                one_table: rules.untested.is_some(),
+            }),
+            OutcomeCell::Unreadable => match number_error(path, line, record, column) {
+                error @ InputError::NotFinite { .. } => Err(error),
+                _ => Err(InputError::UnreadableOutcome {
+                    path: path.to_path_buf(),
+                    line,
+                    column: column.name.clone(),
+                    value: text(),
+                    one_table: rules.untested.is_some(),
+                }),
+            },
+            OutcomeCell::Censored(bound, x) => {
+                let problem = match rules.cells.censored {
+                    None => Err(
+                        "censored values are not accepted here (they need a threshold and a \
+                         direction to be decided)"
+                            .to_string(),
+                    ),
+                    Some(rule) if rule.score_needs_value => Err(
+                        "the residual score (--score residual) needs the measured value itself, \
+                         not a bound"
+                            .to_string(),
+                    ),
+                    Some(rule) => match row_threshold.or(rule.threshold) {
+                        Some(c) => decide_censored(bound, x, c, rule.direction),
+                        None => Err("no threshold is known for this row".to_string()),
+                    },
+                };
+                match problem {
+                    Ok(value) => {
+                        self.censored_outcomes += 1;
+                        Ok(value)
+                    }
+                    Err(problem) => Err(InputError::CensoredOutcome {
+                        path: path.to_path_buf(),
+                        line,
+                        column: column.name.clone(),
+                        value: text(),
+                        problem,
+                        residual: rules.cells.censored.is_some_and(|r| r.score_needs_value),
+                    }),
+                }
+            }
+        }
+    }
+}
+
+/// A kept cell, verbatim (it must be UTF-8).
+fn kept_cell(
+    path: &Path,
+    line: u64,
+    record: &csv::ByteRecord,
+    column: &Column,
+) -> Result<String, InputError> {
+    let cell = record.get(column.index).unwrap_or_default();
+    match std::str::from_utf8(cell) {
+        Ok(text) => Ok(text.to_owned()),
+        Err(_) => Err(InputError::InvalidUtf8 {
+            path: path.to_path_buf(),
+            line,
+            column: column.name.clone(),
+        }),
     }
 }
 
@@ -657,10 +909,12 @@ fn read_rows(
     delimiter: u8,
     header_names: &[String],
     columns: &ChosenColumns,
+    rules: &RowRules<'_>,
     file_len: u64,
 ) -> Result<Rows, InputError> {
     let mut rows = Rows::new(columns.features.len());
     let mut record = csv::ByteRecord::new();
+    let mut reserved = false;
     loop {
         match reader.read_byte_record(&mut record) {
             Ok(true) => {}
@@ -677,13 +931,14 @@ fn read_rows(
                 ));
             }
         }
-        if rows.ids.is_empty() {
+        if !reserved {
             // Size every column from the file length and this row's length; generous,
             // since untouched capacity is never paged in, but bounded.
             let row_bytes = (record.as_slice().len() + record.len()).max(1) as u64;
             let estimate = (file_len / row_bytes).saturating_mul(5) / 4 + 16;
             let estimate = estimate.min(file_len / 2 + 16).min(MAX_RESERVED_ROWS) as usize;
-            rows.reserve(estimate, columns);
+            rows.reserve(estimate, columns, rules.untested.is_some());
+            reserved = true;
         }
         let line = match record.position() {
             Some(position) => {
@@ -693,19 +948,30 @@ fn read_rows(
             }
             None => 0,
         };
-        rows.push(path, line, &record, columns)?;
+        rows.push(path, line, &record, columns, rules)?;
     }
     Ok(rows)
 }
 
-/// Check the rows as a whole (at least one, ids unique) and build the table.
+/// The rows `keep` of a column-major feature buffer of `n` rows and `width` features.
+fn feature_rows(features: &[f64], n: usize, width: usize, keep: &[usize]) -> Vec<f64> {
+    let mut out = Vec::with_capacity(width * keep.len());
+    for f in 0..width {
+        let column = &features[f * n..(f + 1) * n];
+        out.extend(keep.iter().map(|&r| column[r]));
+    }
+    out
+}
+
+/// Check the rows as a whole (at least one, ids unique) and build the table; a one-table
+/// read ([`Role::Table`]) is split into the labeled table and the pool.
 fn finish_table(
     path: &Path,
     role: Role,
     header_line: u64,
     columns: ChosenColumns,
     rows: Rows,
-) -> Result<UnitTable, InputError> {
+) -> Result<(UnitTable, Option<UnitTable>), InputError> {
     let Rows {
         mut ids,
         mut prediction,
@@ -713,6 +979,10 @@ fn finish_table(
         threshold,
         weight,
         features,
+        kept,
+        untested,
+        dropped_missing_outcome,
+        censored_outcomes,
         lines,
     } = rows;
     if ids.is_empty() {
@@ -740,7 +1010,11 @@ fn finish_table(
             values
         })
     };
-    Ok(UnitTable {
+    let kept = KeptColumns {
+        names: columns.kept.iter().map(|c| c.name.clone()).collect(),
+        values: kept,
+    };
+    let whole = UnitTable {
         path: path.to_path_buf(),
         role,
         ids,
@@ -750,8 +1024,164 @@ fn finish_table(
         weight: finish(weight, &columns.weight),
         feature_names: columns.feature_names,
         features: features.into_column_major(),
-        kept: KeptColumns::default(),
-    })
+        kept,
+        dropped_missing_outcome,
+        censored_outcomes,
+    };
+    if role != Role::Table {
+        return Ok((whole, None));
+    }
+    let (pool_rows, labeled_rows): (Vec<usize>, Vec<usize>) =
+        (0..whole.len()).partition(|&r| untested[r]);
+    let outcome_name = columns.outcome.as_ref().map_or("", |c| c.name.as_str());
+    for (rows, labeled) in [(&labeled_rows, true), (&pool_rows, false)] {
+        if rows.is_empty() {
+            return Err(InputError::TableSideEmpty {
+                path: path.to_path_buf(),
+                header_line,
+                column: outcome_name.to_string(),
+                labeled,
+            });
+        }
+    }
+    let part = |rows: &[usize], role: Role| {
+        let pick = |values: &Option<Vec<f64>>| {
+            values
+                .as_ref()
+                .map(|v| rows.iter().map(|&r| v[r]).collect::<Vec<f64>>())
+        };
+        UnitTable {
+            path: whole.path.clone(),
+            role,
+            ids: rows.iter().map(|&r| whole.ids[r].clone()).collect(),
+            outcome: match role {
+                Role::Labeled => pick(&whole.outcome),
+                _ => None,
+            },
+            prediction: rows.iter().map(|&r| whole.prediction[r]).collect(),
+            threshold: pick(&whole.threshold),
+            weight: pick(&whole.weight),
+            feature_names: whole.feature_names.clone(),
+            features: feature_rows(
+                &whole.features,
+                whole.len(),
+                whole.feature_names.len(),
+                rows,
+            ),
+            kept: whole.kept.subset(rows),
+            dropped_missing_outcome: match role {
+                Role::Labeled => whole.dropped_missing_outcome,
+                _ => 0,
+            },
+            censored_outcomes: match role {
+                Role::Labeled => whole.censored_outcomes,
+                _ => 0,
+            },
+        }
+    };
+    Ok((
+        part(&labeled_rows, Role::Labeled),
+        Some(part(&pool_rows, Role::Pool)),
+    ))
+}
+
+/// What the first rows of a table hold, column by column (`weighbridge columns`).
+#[derive(Clone, Debug, PartialEq)]
+pub struct ColumnOverview {
+    /// Editor line of the header.
+    pub header_line: u64,
+    /// Header names, in order.
+    pub names: Vec<String>,
+    /// Data rows looked at.
+    pub rows_read: usize,
+    /// Whether those were all the rows.
+    pub complete: bool,
+    /// Per column: cells that are finite numbers.
+    pub numeric: Vec<usize>,
+    /// Per column: censored values such as `>10000` or `<=1`.
+    pub censored: Vec<usize>,
+    /// Per column: empty cells.
+    pub empty: Vec<usize>,
+    /// Per column: the first non-empty cell, if any.
+    pub example: Vec<Option<String>>,
+}
+
+/// Count what the first `max_rows` data rows of `path` hold per column (numbers, censored
+/// values, empty cells) and keep one example cell each. Reads the file as the other
+/// readers do (delimiter by extension or `delimiter`, `-`, .gz/.zst) and stops after
+/// `max_rows` rows.
+///
+/// # Errors
+/// The file cannot be opened, is empty, has a non-UTF-8 header, or a row up to `max_rows`
+/// is malformed (wrong number of fields).
+pub fn column_overview(
+    path: &Path,
+    delimiter: Option<u8>,
+    max_rows: usize,
+) -> Result<ColumnOverview, InputError> {
+    let shown_path = display_path(path);
+    let (mut reader, delimiter, _) = open_table(path, &shown_path, delimiter)?;
+    let header = read_header(&mut reader, &shown_path, Role::Table, delimiter)?;
+    let width = header.names.len();
+    let mut overview = ColumnOverview {
+        header_line: header.line,
+        names: header.names.clone(),
+        rows_read: 0,
+        complete: false,
+        numeric: vec![0; width],
+        censored: vec![0; width],
+        empty: vec![0; width],
+        example: vec![None; width],
+    };
+    let cells = OutcomeCells {
+        missing_values: Vec::new(),
+        ..OutcomeCells::default()
+    };
+    let mut record = csv::ByteRecord::new();
+    while overview.rows_read < max_rows {
+        match reader.read_byte_record(&mut record) {
+            Ok(true) => {}
+            Ok(false) => {
+                overview.complete = true;
+                break;
+            }
+            Err(error) => {
+                let reached_line = reader.position().line();
+                return Err(csv_error(
+                    reader.get_ref(),
+                    &shown_path,
+                    delimiter,
+                    &header.names,
+                    reached_line,
+                    error,
+                ));
+            }
+        }
+        if let Some(position) = record.position() {
+            reader.get_mut().forget_before(position.byte());
+        }
+        overview.rows_read += 1;
+        for (c, raw) in record.iter().enumerate() {
+            let cell = raw.trim_ascii();
+            if cell.is_empty() {
+                overview.empty[c] += 1;
+                continue;
+            }
+            match classify(cell, &cells, None) {
+                OutcomeCell::Value(_) => overview.numeric[c] += 1,
+                OutcomeCell::Censored(..) => overview.censored[c] += 1,
+                _ => {}
+            }
+            if overview.example[c].is_none() {
+                overview.example[c] = Some(shown(cell));
+            }
+        }
+    }
+    if !overview.complete {
+        // Exactly `max_rows` rows: tell whether there are more.
+        overview.complete = matches!(reader.read_byte_record(&mut record), Ok(false));
+    }
+    Ok(overview)
 }
 
 fn id_hash(id: &str) -> u64 {
@@ -803,10 +1233,7 @@ pub fn read_id_list(
     delimiter: Option<u8>,
 ) -> Result<Vec<(String, u64)>, InputError> {
     let shown_path = display_path(path);
-    let source = Source::open(path).map_err(|source| InputError::Open {
-        path: shown_path.clone(),
-        source,
-    })?;
+    let source = Source::open(path).map_err(|source| open_error(&shown_path, source))?;
     let delimiter = delimiter_for(path, delimiter);
     let path = shown_path.as_path();
     let mut reader = csv::ReaderBuilder::new()
@@ -1784,5 +2211,450 @@ mod tests {
                 .collect();
             assert_same_as_std(&junk);
         }
+    }
+}
+
+#[cfg(test)]
+mod one_table_and_conventions_tests {
+    //! One-table reads, assay conventions, kept columns and compressed inputs. Expected
+    //! rows, counts and lines are read off the literal inputs by hand (header = line 1);
+    //! compressed inputs are checked against the same text read plain.
+    use super::*;
+    use crate::conformal::score::Direction;
+    use crate::io::outcome::CensoredRule;
+    use std::fs;
+    use std::io::Write as _;
+    use tempfile::TempDir;
+
+    fn write(dir: &TempDir, name: &str, content: &[u8]) -> PathBuf {
+        let path = dir.path().join(name);
+        fs::write(&path, content).unwrap();
+        path
+    }
+
+    fn options(threshold: Option<f64>, direction: Direction) -> ReadOptions {
+        ReadOptions {
+            outcome: Some("y".to_string()),
+            features: vec!["a..b".to_string()],
+            outcome_cells: OutcomeCells {
+                censored: Some(CensoredRule {
+                    direction,
+                    threshold,
+                    score_needs_value: false,
+                }),
+                ..OutcomeCells::default()
+            },
+            ..ReadOptions::new("pred")
+        }
+    }
+
+    const TABLE: &str = "id,y,pred,a,b,series\n\
+                         u1,7.5,7.0,1,2,S1\n\
+                         p1,,6.0,3,4,S2\n\
+                         u2,5.0,5.5,5,6,S1\n\
+                         \n\
+                         p2,untested,8.0,7,8,S3\n\
+                         u3,>8,6.9,9,10,S2\n";
+
+    #[test]
+    fn a_table_splits_into_labeled_rows_and_the_pool_in_file_order() {
+        let dir = TempDir::new().unwrap();
+        let path = write(&dir, "assays.csv", TABLE.as_bytes());
+        let read = ReadOptions {
+            keep_columns: vec!["series".to_string()],
+            ..options(Some(6.5), Direction::Above)
+        };
+        let (labeled, pool) = read_table(&path, &read, &["UNTESTED".to_string()]).unwrap();
+        assert_eq!(labeled.ids, ["u1", "u2", "u3"]);
+        assert_eq!(labeled.role, Role::Labeled);
+        assert_eq!(labeled.outcome.as_deref(), Some(&[7.5, 5.0, 8.0][..]));
+        assert_eq!(labeled.prediction, [7.0, 5.5, 6.9]);
+        assert_eq!(labeled.feature_column(1), [2.0, 6.0, 10.0]);
+        assert_eq!(labeled.censored_outcomes, 1);
+        assert_eq!(pool.ids, ["p1", "p2"]);
+        assert_eq!(pool.role, Role::Pool);
+        assert!(pool.outcome.is_none());
+        assert_eq!(pool.prediction, [6.0, 8.0]);
+        assert_eq!(pool.feature_column(0), [3.0, 7.0]);
+        assert_eq!(pool.feature_names, ["a", "b"]);
+        assert_eq!(pool.kept.names, ["series"]);
+        assert_eq!(pool.kept.row(1), ["S3"]);
+        assert_eq!(labeled.kept.row(2), ["S2"]);
+        assert_eq!(
+            (pool.dropped_missing_outcome, pool.censored_outcomes),
+            (0, 0)
+        );
+    }
+
+    #[test]
+    fn table_errors_name_the_file_and_the_editor_line() {
+        let dir = TempDir::new().unwrap();
+        // An id on a labeled and on a pool row: a duplicate, lines 2 and 4.
+        let path = write(
+            &dir,
+            "t.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,,1,1,1\nx,,1,1,1\n",
+        );
+        let error = read_table(&path, &options(Some(0.5), Direction::Above), &[]).unwrap_err();
+        assert!(
+            matches!(
+                error,
+                InputError::DuplicateId {
+                    line: 4,
+                    first_line: 2,
+                    ..
+                }
+            ),
+            "{error}"
+        );
+        // A bad cell after a blank line: line 5 of the table.
+        let path = write(
+            &dir,
+            "t.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,,1,1,1\n\nz,,1,q,1\n",
+        );
+        let message = read_table(&path, &options(Some(0.5), Direction::Above), &[])
+            .unwrap_err()
+            .to_string();
+        assert!(message.contains("t.csv line 5, column `a`"), "{message}");
+        // No pool rows, no labeled rows.
+        let path = write(&dir, "t.csv", b"id,y,pred,a,b\nx,1,1,1,1\n");
+        let error = read_table(&path, &options(Some(0.5), Direction::Above), &[]).unwrap_err();
+        assert!(
+            matches!(error, InputError::TableSideEmpty { labeled: false, .. }),
+            "{error}"
+        );
+        assert!(
+            error.to_string().contains("no pool (untested) rows"),
+            "{error}"
+        );
+        let path = write(&dir, "t.csv", b"id,y,pred,a,b\nx,,1,1,1\n");
+        let error = read_table(&path, &options(Some(0.5), Direction::Above), &[]).unwrap_err();
+        assert!(
+            matches!(error, InputError::TableSideEmpty { labeled: true, .. }),
+            "{error}"
+        );
+        // Junk in the outcome: the hint lists what an outcome cell may hold.
+        let path = write(
+            &dir,
+            "t.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,pending,1,1,1\n",
+        );
+        let error = read_table(&path, &options(Some(0.5), Direction::Above), &[]).unwrap_err();
+        let message = error.to_string();
+        assert!(
+            matches!(error, InputError::UnreadableOutcome { line: 3, .. }),
+            "{message}"
+        );
+        assert!(message.contains("--untested-marker"), "{message}");
+    }
+
+    #[test]
+    fn missing_outcomes_stop_or_are_dropped_and_counted() {
+        let dir = TempDir::new().unwrap();
+        let content = b"id,y,pred,a,b\nx,1,1,1,1\ny,NA,1,1,1\nz,,2,q,1\nw,2,3,1,1\n";
+        let path = write(&dir, "labeled.csv", content);
+        let error =
+            read_units(&path, Role::Labeled, &options(Some(0.5), Direction::Above)).unwrap_err();
+        let message = error.to_string();
+        assert!(
+            matches!(error, InputError::MissingOutcome { line: 3, .. }),
+            "{message}"
+        );
+        assert!(
+            message.contains("labeled.csv line 3, column `y`: `NA`")
+                && message.contains("--missing-outcome drop"),
+            "{message}"
+        );
+        // Dropped rows are not read further (z's bad feature cell is never looked at).
+        let mut drop = options(Some(0.5), Direction::Above);
+        drop.outcome_cells.missing = MissingOutcome::Drop;
+        let table = read_units(&path, Role::Labeled, &drop).unwrap();
+        assert_eq!(table.ids, ["x", "w"]);
+        assert_eq!(table.dropped_missing_outcome, 2);
+        assert_eq!(table.outcome.as_deref(), Some(&[1.0, 2.0][..]));
+        // A duplicate id after dropped rows still gets its editor lines.
+        let path = write(
+            &dir,
+            "labeled.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,NA,1,1,1\nx,2,1,1,1\n",
+        );
+        let error = read_units(&path, Role::Labeled, &drop).unwrap_err();
+        assert!(
+            matches!(
+                error,
+                InputError::DuplicateId {
+                    line: 4,
+                    first_line: 2,
+                    ..
+                }
+            ),
+            "{error}"
+        );
+        // In a table, NA is missing but the empty cell is untested; the hint offers the marker.
+        let path = write(
+            &dir,
+            "t.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,NA,1,1,1\nz,,1,1,1\n",
+        );
+        let message = read_table(&path, &options(Some(0.5), Direction::Above), &[])
+            .unwrap_err()
+            .to_string();
+        assert!(message.contains("--untested-marker 'NA'"), "{message}");
+        let (labeled, pool) = read_table(&path, &drop, &[]).unwrap();
+        assert_eq!((labeled.ids.len(), labeled.dropped_missing_outcome), (1, 1));
+        assert_eq!(pool.ids, ["z"]);
+    }
+
+    #[test]
+    fn censored_outcomes_decided_per_row_or_located_errors() {
+        let dir = TempDir::new().unwrap();
+        // Per-row thresholds: >7 at c = 6.5 is above; <5 at c = 6 is not; >7 at c = 8 is not
+        // decided (line 4).
+        let content = b"id,y,pred,c,a,b\nx,>7,1,6.5,1,1\ny,<5,1,6,1,1\nz,>7,1,8,1,1\n";
+        let path = write(&dir, "labeled.csv", content);
+        let read = ReadOptions {
+            threshold_column: Some("c".to_string()),
+            ..options(None, Direction::Above)
+        };
+        let error = read_units(&path, Role::Labeled, &read).unwrap_err();
+        let message = error.to_string();
+        assert!(
+            matches!(error, InputError::CensoredOutcome { line: 4, .. }),
+            "{message}"
+        );
+        assert!(
+            message.contains("`>7`") && message.contains("threshold 8"),
+            "{message}"
+        );
+        let path = write(
+            &dir,
+            "labeled.csv",
+            b"id,y,pred,c,a,b\nx,>7,1,6.5,1,1\ny,<5,1,6,1,1\n",
+        );
+        let table = read_units(&path, Role::Labeled, &read).unwrap();
+        assert_eq!(table.outcome.as_deref(), Some(&[7.0, 5.0][..]));
+        assert_eq!(table.censored_outcomes, 2);
+        // Lower is better: <1 nM at 100 is below; >5 at 100 is not decided.
+        let path = write(
+            &dir,
+            "labeled.csv",
+            b"id,y,pred,a,b\nx,<1,1,1,1\ny,>5,1,1,1\n",
+        );
+        let message = read_units(
+            &path,
+            Role::Labeled,
+            &options(Some(100.0), Direction::Below),
+        )
+        .unwrap_err()
+        .to_string();
+        assert!(
+            message.contains("line 3") && message.contains("below 100"),
+            "{message}"
+        );
+        // The residual score needs the value.
+        let mut residual = options(Some(0.5), Direction::Above);
+        residual.outcome_cells.censored = Some(CensoredRule {
+            direction: Direction::Above,
+            threshold: Some(0.5),
+            score_needs_value: true,
+        });
+        let path = write(
+            &dir,
+            "labeled.csv",
+            b"id,y,pred,a,b\nx,1,1,1,1\ny,>5,1,1,1\n",
+        );
+        let message = read_units(&path, Role::Labeled, &residual)
+            .unwrap_err()
+            .to_string();
+        assert!(
+            message.contains("line 3") && message.contains("--score residual"),
+            "{message}"
+        );
+    }
+
+    #[test]
+    fn kept_columns_are_required_in_the_pool_only() {
+        let dir = TempDir::new().unwrap();
+        let read = ReadOptions {
+            keep_columns: vec!["smiles".to_string(), "series".to_string()],
+            ..ReadOptions::new("pred")
+        };
+        let path = write(
+            &dir,
+            "pool.csv",
+            b"id,pred,series,smiles\na,1, S1 ,C(=O)O\nb,2,S2,CC\n",
+        );
+        let pool = read_units(&path, Role::Pool, &read).unwrap();
+        assert_eq!(pool.kept.names, ["smiles", "series"]);
+        // Verbatim: spaces kept.
+        assert_eq!(pool.kept.row(0), ["C(=O)O", " S1 "]);
+        let labeled_read = ReadOptions {
+            outcome: Some("y".to_string()),
+            ..read.clone()
+        };
+        let path = write(&dir, "labeled.csv", b"id,y,pred,series\na,1,1,S1\n");
+        let labeled = read_units(&path, Role::Labeled, &labeled_read).unwrap();
+        assert_eq!(labeled.kept.names, ["series"]);
+        assert_eq!(labeled.kept.row(0), ["S1"]);
+        let path = write(&dir, "pool.csv", b"id,pred,Series\na,1,S1\n");
+        let error = read_units(&path, Role::Pool, &read).unwrap_err();
+        let message = error.to_string();
+        assert!(
+            matches!(
+                error,
+                InputError::MissingColumn {
+                    kind: ColumnKind::Kept,
+                    ..
+                }
+            ),
+            "{message}"
+        );
+        assert!(message.contains("--keep-columns"), "{message}");
+    }
+
+    #[test]
+    fn unknown_columns_suggest_the_right_name() {
+        let dir = TempDir::new().unwrap();
+        let path = write(&dir, "labeled.csv", b"compound_id,pIC50,pred\na,1,1\n");
+        let read = ReadOptions {
+            id: "compound_id".to_string(),
+            outcome: Some("pic50".to_string()),
+            ..ReadOptions::new("pred")
+        };
+        let message = read_units(&path, Role::Labeled, &read)
+            .unwrap_err()
+            .to_string();
+        assert!(message.contains("did you mean `pIC50`?"), "{message}");
+        assert!(message.contains("its columns are"), "{message}");
+        // Many columns: the suggestion, the first twenty and where to see them all.
+        let names: Vec<String> = (0..30).map(|i| format!("col{i}")).collect();
+        let header = format!("id,pred,{},Target\n", names.join(","));
+        let row = format!("a,1,{},1\n", vec!["0"; 30].join(","));
+        let path = write(&dir, "labeled.csv", format!("{header}{row}").as_bytes());
+        let read = ReadOptions {
+            outcome: Some("target".to_string()),
+            ..ReadOptions::new("pred")
+        };
+        let message = read_units(&path, Role::Labeled, &read)
+            .unwrap_err()
+            .to_string();
+        assert!(message.contains("did you mean `Target`?"), "{message}");
+        assert!(message.contains("weighbridge columns"), "{message}");
+    }
+
+    fn gzip(bytes: &[u8]) -> Vec<u8> {
+        let mut encoder = flate2::write::GzEncoder::new(Vec::new(), flate2::Compression::fast());
+        encoder.write_all(bytes).unwrap();
+        encoder.finish().unwrap()
+    }
+
+    fn zstd(bytes: &[u8]) -> Vec<u8> {
+        ruzstd::encoding::compress_to_vec(bytes, ruzstd::encoding::CompressionLevel::Fastest)
+    }
+
+    #[test]
+    fn gzip_and_zstd_read_as_the_plain_text_with_its_lines() {
+        let dir = TempDir::new().unwrap();
+        let plain = TABLE.as_bytes();
+        let read = options(Some(6.5), Direction::Above);
+        let reference =
+            read_table(&write(&dir, "t.csv", plain), &read, &["untested".into()]).unwrap();
+        // Two gzip members, two zstd frames with a skippable frame between them, and
+        // misnamed files (the first bytes decide).
+        let half = plain.len() / 2;
+        let two_members = [gzip(&plain[..half]), gzip(&plain[half..])].concat();
+        let skippable = [
+            &0x184D_2A50u32.to_le_bytes()[..],
+            &3u32.to_le_bytes(),
+            b"abc",
+        ]
+        .concat();
+        let two_frames = [zstd(&plain[..half]), skippable, zstd(&plain[half..])].concat();
+        for (name, bytes) in [
+            ("t.csv.gz", gzip(plain)),
+            ("t.gz.csv", two_members),
+            ("t.csv.zst", zstd(plain)),
+            ("t.csv", two_frames),
+        ] {
+            let path = write(&dir, name, &bytes);
+            let (labeled, pool) = read_table(&path, &read, &["untested".into()]).unwrap();
+            assert_eq!(labeled.ids, reference.0.ids, "{name}");
+            assert_eq!(labeled.outcome, reference.0.outcome, "{name}");
+            assert_eq!(pool.ids, reference.1.ids, "{name}");
+            assert_eq!(pool.features, reference.1.features, "{name}");
+        }
+        // A bad cell after a blank line keeps the line of the decompressed text.
+        let bad = b"id,pred\na,1\n\nb,x\n";
+        for bytes in [gzip(bad), zstd(bad)] {
+            let path = write(&dir, "pool.csv.gz", &bytes);
+            let message = read_units(&path, Role::Pool, &ReadOptions::new("pred"))
+                .unwrap_err()
+                .to_string();
+            assert!(
+                message.contains("pool.csv.gz line 4, column `pred`"),
+                "{message}"
+            );
+        }
+        // Cut short: a read error naming the format.
+        let cut = gzip(TABLE.as_bytes());
+        let path = write(&dir, "t.csv.gz", &cut[..cut.len() - 12]);
+        let message = read_table(&path, &read, &["untested".into()])
+            .unwrap_err()
+            .to_string();
+        assert!(
+            message.contains("gzip data is damaged or cut short"),
+            "{message}"
+        );
+        // A tab-separated file stays tab-separated when compressed.
+        let path = write(&dir, "pool.tsv.zst", &zstd(b"id\tpred\na\t0.5\n"));
+        let table = read_units(&path, Role::Pool, &ReadOptions::new("pred")).unwrap();
+        assert_eq!(table.prediction, [0.5]);
+        assert_eq!(delimiter_for(Path::new("x.TSV.GZ"), None), b'\t');
+        assert_eq!(delimiter_for(Path::new("x.csv.zst"), None), b',');
+    }
+
+    #[test]
+    fn other_binary_formats_are_named() {
+        let dir = TempDir::new().unwrap();
+        for (bytes, needle) in [
+            (&b"PK\x03\x04\x14\x00\x06\x00rest"[..], "ZIP archive"),
+            (b"PAR1\x15\x04\x15", "Parquet"),
+            (b"BZh91AY&SY", "bzip2"),
+            (b"\xfd7zXZ\x00\x00\x04", "xz"),
+            (b"\xff\xfei\x00d\x00", "UTF-16"),
+            (b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1\x00", ".xls"),
+        ] {
+            let path = write(&dir, "input.csv", bytes);
+            let error = read_units(&path, Role::Pool, &ReadOptions::new("pred")).unwrap_err();
+            let message = error.to_string();
+            assert!(matches!(error, InputError::NotText { .. }), "{message}");
+            assert!(
+                message.contains(needle) && message.contains("Hint:"),
+                "{needle}: {message}"
+            );
+            assert!(message.contains("input.csv"), "{message}");
+        }
+    }
+
+    #[test]
+    fn column_overview_counts_the_first_rows() {
+        let dir = TempDir::new().unwrap();
+        let path = write(&dir, "t.csv.gz", &gzip(TABLE.as_bytes()));
+        let overview = column_overview(&path, None, 1000).unwrap();
+        assert_eq!(overview.names, ["id", "y", "pred", "a", "b", "series"]);
+        assert_eq!(overview.rows_read, 5);
+        assert!(overview.complete);
+        // y: 7.5, 5.0 numeric; >8 censored; one empty; `untested` other.
+        assert_eq!(
+            (overview.numeric[1], overview.censored[1], overview.empty[1]),
+            (2, 1, 1)
+        );
+        assert_eq!(overview.numeric[2], 5);
+        assert_eq!(overview.example[5].as_deref(), Some("S1"));
+        let overview = column_overview(&path, None, 2).unwrap();
+        assert_eq!((overview.rows_read, overview.complete), (2, false));
+        let overview = column_overview(&path, None, 5).unwrap();
+        assert_eq!((overview.rows_read, overview.complete), (5, true));
     }
 }

@@ -11,10 +11,18 @@
 //! It also bounds a line's length ([`MAX_LINE_BYTES`]): a file of gigabytes without a line
 //! end (a sparse file, a dump of NUL bytes) would otherwise grow one csv record until memory
 //! runs out. The cap is an I/O error, which the reader reports at the line it reached.
+//!
+//! Compressed inputs are decompressed on the fly ([`Source::open`]): gzip (`.gz`, also
+//! several concatenated members as bgzip writes) and Zstandard (`.zst`, several frames and
+//! skippable frames included), recognised by their first bytes, so standard input and
+//! misnamed files work too. Line numbers are those of the decompressed text (what `zcat
+//! FILE | less` shows). Other binary formats a table is often saved in (ZIP and so .xlsx,
+//! old .xls, Parquet, bzip2, xz, 7z, UTF-16 text) are refused with the format's name and
+//! what to do ([`Format`]).
 
 use std::collections::VecDeque;
 use std::fs::File;
-use std::io::{self, Read};
+use std::io::{self, BufRead, BufReader, Read};
 use std::path::Path;
 
 /// The path that means standard input.
@@ -51,24 +59,45 @@ pub struct Source {
     prefix: Vec<u8>,
     /// Length of a regular file; 0 for pipes and standard input.
     len_hint: u64,
+    /// How the bytes were stored.
+    format: Format,
 }
 
 impl Source {
-    /// Open `path` (`-` for standard input). A directory is refused.
+    /// Open `path` (`-` for standard input), decompressing gzip and Zstandard data. A
+    /// directory is refused, and so is a binary format that is not a table (the error's
+    /// message names the format and what to do; its kind is `InvalidData`).
     pub fn open(path: &Path) -> io::Result<Source> {
-        if is_stdin(path) {
-            return Ok(Source::new(Box::new(io::stdin().lock())));
-        }
-        let file = File::open(path)?;
-        let metadata = file.metadata()?;
-        if metadata.is_dir() {
-            return Err(io::Error::other("it is a directory, not a file"));
-        }
-        let mut source = Source::new(Box::new(file));
-        if metadata.is_file() {
-            source.len_hint = metadata.len();
-        }
+        let (raw, len): (Box<dyn Read>, u64) = if is_stdin(path) {
+            (Box::new(io::stdin().lock()), 0)
+        } else {
+            let file = File::open(path)?;
+            let metadata = file.metadata()?;
+            if metadata.is_dir() {
+                return Err(io::Error::other("it is a directory, not a file"));
+            }
+            let len = if metadata.is_file() {
+                metadata.len()
+            } else {
+                0
+            };
+            (Box::new(file), len)
+        };
+        let (format, inner) = decompressed(raw)?;
+        let mut source = Source::new(inner);
+        // A compressed file's length says little about its text: assume the usual 5:1 of
+        // CSV (the estimate only sizes buffers).
+        source.len_hint = match format {
+            Format::Text => len,
+            _ => len.saturating_mul(5),
+        };
+        source.format = format;
         Ok(source)
+    }
+
+    /// What the input's first bytes showed: plain text, gzip or Zstandard.
+    pub fn format(&self) -> Format {
+        self.format
     }
 
     /// Wrap any reader (tests, in-memory data).
@@ -80,6 +109,7 @@ impl Source {
             line_start: 0,
             prefix: Vec::with_capacity(3),
             len_hint: 0,
+            format: Format::Text,
         }
     }
 
@@ -149,6 +179,243 @@ impl Source {
             "a line is longer than {} MiB without a line end (is this a table? a sparse or binary file ends up here)",
             MAX_LINE_BYTES >> 20
         ))
+    }
+}
+
+/// How an input's bytes are stored, from its first bytes.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Format {
+    /// Text (anything not recognised below is read as text).
+    Text,
+    /// gzip (`1f 8b`), decompressed.
+    Gzip,
+    /// Zstandard (`28 b5 2f fd`), decompressed.
+    Zstd,
+}
+
+impl Format {
+    /// "gzip", "Zstandard" or "plain text", for messages.
+    pub fn name(self) -> &'static str {
+        match self {
+            Format::Text => "plain text",
+            Format::Gzip => "gzip",
+            Format::Zstd => "Zstandard",
+        }
+    }
+}
+
+/// Bytes looked at to recognise a format (the longest signature below is 6 bytes).
+const SIGNATURE_BYTES: usize = 8;
+
+/// Binary formats that are not tables, by signature: the name and what to do.
+const REFUSED: &[(&[u8], &str, &str)] = &[
+    (
+        b"PK\x03\x04",
+        "a ZIP archive (an Excel .xlsx or LibreOffice .ods workbook is one)",
+        "save the sheet as CSV (in Excel: File > Save As > CSV UTF-8), or unzip the archive and give the CSV inside",
+    ),
+    (
+        b"PK\x05\x06",
+        "an empty ZIP archive",
+        "give the CSV or TSV file itself",
+    ),
+    (
+        b"\xd0\xcf\x11\xe0\xa1\xb1\x1a\xe1",
+        "an old Excel .xls workbook (OLE2 compound file)",
+        "save the sheet as CSV (in Excel: File > Save As > CSV UTF-8)",
+    ),
+    (
+        b"PAR1",
+        "a Parquet file, which weighbridge does not read",
+        "write it as CSV first, e.g. in Python: pandas.read_parquet(\"in.parquet\").to_csv(\"out.csv\", index=False)",
+    ),
+    (
+        b"ARROW1",
+        "an Arrow IPC (Feather) file, which weighbridge does not read",
+        "write it as CSV first, e.g. in Python: pandas.read_feather(\"in.feather\").to_csv(\"out.csv\", index=False)",
+    ),
+    (
+        b"BZh",
+        "bzip2-compressed data, which weighbridge does not decompress",
+        "decompress it (bunzip2 -k FILE) or recompress it with gzip or zstd, which weighbridge reads directly",
+    ),
+    (
+        b"\xfd7zXZ\x00",
+        "xz-compressed data, which weighbridge does not decompress",
+        "decompress it (unxz -k FILE) or recompress it with gzip or zstd, which weighbridge reads directly",
+    ),
+    (
+        b"7z\xbc\xaf\x27\x1c",
+        "a 7-Zip archive",
+        "extract the CSV file and give it instead",
+    ),
+    (
+        b"\x89HDF",
+        "an HDF5 file, which weighbridge does not read",
+        "export the table as CSV",
+    ),
+    (
+        b"\xff\xfe",
+        "UTF-16 text (little-endian byte order mark)",
+        "save the file as UTF-8 (in Excel: CSV UTF-8; or iconv -f UTF-16 -t UTF-8 FILE)",
+    ),
+    (
+        b"\xfe\xff",
+        "UTF-16 text (big-endian byte order mark)",
+        "save the file as UTF-8 (iconv -f UTF-16 -t UTF-8 FILE)",
+    ),
+];
+
+/// Recognise the format from the first bytes of `raw` and return a reader of the text:
+/// `raw` itself (its first bytes put back) or a decompressor over it.
+///
+/// # Errors
+/// A read error, or an `InvalidData` error naming a refused binary format and what to do.
+fn decompressed(mut raw: Box<dyn Read>) -> io::Result<(Format, Box<dyn Read>)> {
+    // Read up to SIGNATURE_BYTES (a pipe may deliver them one at a time).
+    let mut head = [0u8; SIGNATURE_BYTES];
+    let mut have = 0;
+    while have < SIGNATURE_BYTES {
+        match raw.read(&mut head[have..]) {
+            Ok(0) => break,
+            Ok(n) => have += n,
+            Err(e) if e.kind() == io::ErrorKind::Interrupted => {}
+            Err(e) => return Err(e),
+        }
+    }
+    let head = &head[..have];
+    if let Some((_, name, todo)) = REFUSED.iter().find(|(magic, _, _)| head.starts_with(magic)) {
+        return Err(io::Error::new(
+            io::ErrorKind::InvalidData,
+            format!("this is {name}, not a CSV/TSV table. Hint: {todo}."),
+        ));
+    }
+    let whole: Box<dyn Read> = Box::new(io::Cursor::new(head.to_vec()).chain(raw));
+    if head.starts_with(b"\x1f\x8b") {
+        let decoder = flate2::read::MultiGzDecoder::new(BufReader::with_capacity(1 << 16, whole));
+        return Ok((Format::Gzip, Box::new(Damaged::new(decoder, Format::Gzip))));
+    }
+    if head.starts_with(b"\x28\xb5\x2f\xfd") {
+        let frames = ZstdFrames::new(BufReader::with_capacity(1 << 16, whole));
+        return Ok((Format::Zstd, Box::new(Damaged::new(frames, Format::Zstd))));
+    }
+    Ok((Format::Text, whole))
+}
+
+/// A decompressor whose errors say which format was damaged.
+struct Damaged<R> {
+    inner: R,
+    format: Format,
+}
+
+impl<R> Damaged<R> {
+    fn new(inner: R, format: Format) -> Self {
+        Damaged { inner, format }
+    }
+}
+
+impl<R: Read> Read for Damaged<R> {
+    fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+        self.inner.read(buf).map_err(|e| {
+            if e.kind() == io::ErrorKind::Interrupted {
+                e
+            } else {
+                io::Error::new(
+                    e.kind(),
+                    format!(
+                        "the {} data is damaged or cut short ({e})",
+                        self.format.name()
+                    ),
+                )
+            }
+        })
+    }
+}
+
+/// Every Zstandard frame of a stream, one after another (ruzstd's streaming decoder reads
+/// one frame); skippable frames are skipped.
+struct ZstdFrames<R: BufRead> {
+    source: R,
+    decoder: ruzstd::decoding::FrameDecoder,
+    /// A frame is being decoded (false before the first and between frames).
+    in_frame: bool,
+}
+
+impl<R: BufRead> ZstdFrames<R> {
+    fn new(source: R) -> Self {
+        ZstdFrames {
+            source,
+            decoder: ruzstd::decoding::FrameDecoder::new(),
+            in_frame: false,
+        }
+    }
+
+    /// Start the next frame; `false` at the end of the input.
+    fn next_frame(&mut self) -> io::Result<bool> {
+        use ruzstd::decoding::errors::{FrameDecoderError, ReadFrameHeaderError};
+        loop {
+            if self.source.fill_buf()?.is_empty() {
+                return Ok(false);
+            }
+            match self.decoder.reset(&mut self.source) {
+                Ok(()) => return Ok(true),
+                Err(FrameDecoderError::ReadFrameHeaderError(ReadFrameHeaderError::SkipFrame {
+                    length,
+                    ..
+                })) => {
+                    let skipped =
+                        io::copy(&mut (&mut self.source).take(length.into()), &mut io::sink())?;
+                    if skipped < u64::from(length) {
+                        return Err(io::Error::new(
+                            io::ErrorKind::UnexpectedEof,
+                            "a skippable frame is cut short",
+                        ));
+                    }
+                }
+                Err(e) => return Err(io::Error::new(io::ErrorKind::InvalidData, e.to_string())),
+            }
+        }
+    }
+}
+
+impl<R: BufRead> Read for ZstdFrames<R> {
+    fn read(&mut self, buf: &mut [u8]) -> io::Result<usize> {
+        use ruzstd::decoding::BlockDecodingStrategy;
+        if buf.is_empty() {
+            return Ok(0);
+        }
+        loop {
+            if !self.in_frame {
+                if !self.next_frame()? {
+                    return Ok(0);
+                }
+                self.in_frame = true;
+            }
+            while self.decoder.can_collect() < buf.len() && !self.decoder.is_finished() {
+                let wanted = buf.len() - self.decoder.can_collect();
+                self.decoder
+                    .decode_blocks(&mut self.source, BlockDecodingStrategy::UptoBytes(wanted))
+                    .map_err(|e| io::Error::new(io::ErrorKind::InvalidData, e.to_string()))?;
+            }
+            let n = self.decoder.read(buf)?;
+            if n > 0 {
+                return Ok(n);
+            }
+            if self.decoder.is_finished() && self.decoder.can_collect() == 0 {
+                if let (Some(stored), Some(computed)) = (
+                    self.decoder.get_checksum_from_data(),
+                    self.decoder.get_calculated_checksum(),
+                ) {
+                    if stored != computed {
+                        return Err(io::Error::new(
+                            io::ErrorKind::InvalidData,
+                            "a frame's checksum does not match its content",
+                        ));
+                    }
+                }
+                self.in_frame = false;
+            }
+        }
     }
 }
 

@@ -115,6 +115,11 @@ pub struct SelectSummary {
     pub unreliable_weights: Option<UnreliableMark>,
     pub warnings: Vec<String>,
     pub cautions: Vec<&'static str>,
+    /// Labeled rows left out because their outcome was a missing-value token
+    /// (`--missing-outcome drop`; set by the command from the labeled table).
+    pub dropped_missing_outcome_count: usize,
+    /// Labeled outcomes given as censored values (`>x`, `<=x`, ...) and used by their bound.
+    pub censored_outcome_count: usize,
 }
 
 /// The mark of a run allowed through on unreliable fitted weights.
@@ -197,6 +202,8 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         unreliable_weights: None,
         warnings: outcome.warnings.clone(),
         cautions: CAUTIONS.to_vec(),
+        dropped_missing_outcome_count: 0,
+        censored_outcome_count: 0,
     }
 }
 

@@ -12,7 +12,9 @@ use thiserror::Error;
 use crate::conformal::pvalue::{
     pool_pvalues, CalibrationSet, PValueError, PValueKind, PoolPValues,
 };
-use crate::conformal::score::{labeled_scores, pool_scores, ScoreKind, Thresholds};
+use crate::conformal::score::{
+    labeled_scores_toward, pool_scores_toward, Direction, ScoreKind, Thresholds,
+};
 use crate::selection::bh::{
     self, benjamini_hochberg, benjamini_yekutieli, check_fdr, SelectionError,
 };
@@ -67,6 +69,9 @@ pub struct SelectOptions {
     pub pvalues: Option<PValueKind>,
     /// Defaults to the clipped score.
     pub score: ScoreKind,
+    /// Which side of the threshold is interesting; defaults to above. Below
+    /// (`--lower-is-better`) changes the scores only (`crate::conformal::score`).
+    pub direction: Direction,
     /// Seed of every random draw (randomized p-values, pruning).
     pub seed: u64,
     /// Compute the level curve (`crate::selection::level_curve`): `Some(true)` always,
@@ -89,6 +94,7 @@ impl Default for SelectOptions {
             pruning: Pruning::Homogeneous,
             pvalues: None,
             score: ScoreKind::Clipped,
+            direction: Direction::Above,
             seed: crate::random::DEFAULT_SEED,
             level_curve: Some(false),
             empty_when_unreachable: false,
@@ -105,6 +111,7 @@ pub struct SelectSettings {
     pub pruning: Option<Pruning>,
     pub pvalues: PValueKind,
     pub score: ScoreKind,
+    pub direction: Direction,
     pub seed: u64,
 }
 
@@ -175,6 +182,7 @@ impl SelectOptions {
             pruning: (self.procedure == Procedure::Conditional).then_some(self.pruning),
             pvalues,
             score: self.score,
+            direction: self.direction,
             seed: self.seed,
         })
     }
@@ -309,13 +317,19 @@ pub fn run_selection(
     }
     let q = settings.fdr;
 
-    let labeled_v = labeled_scores(
+    let labeled_v = labeled_scores_toward(
         settings.score,
+        settings.direction,
         labeled.outcome,
         labeled.prediction,
         labeled.thresholds,
     );
-    let pool_v = pool_scores(settings.score, pool.prediction, pool.thresholds);
+    let pool_v = pool_scores_toward(
+        settings.score,
+        settings.direction,
+        pool.prediction,
+        pool.thresholds,
+    );
     let calibration = CalibrationSet::new(&labeled_v, labeled.weights)?;
     let total = calibration.total_weight();
 

@@ -122,6 +122,8 @@ pub fn feature_view(table: &UnitTable) -> Result<FeatureView<'_>, ShiftError> {
 ///     feature_names: vec![],
 ///     features: vec![],
 ///     kept: Default::default(),
+///     dropped_missing_outcome: 0,
+///     censored_outcomes: 0,
 /// };
 /// let (labeled, pool) = (table(Role::Labeled, 3), table(Role::Pool, 4));
 /// let weighting = obtain_weights(&WeightSource::None, &labeled, &pool).unwrap();
@@ -380,6 +382,8 @@ mod tests {
             feature_names: vec!["x".to_string()],
             features: feature,
             kept: Default::default(),
+            dropped_missing_outcome: 0,
+            censored_outcomes: 0,
         }
     }
 

@@ -22,7 +22,7 @@
 use serde::Serialize;
 
 use crate::conformal::pvalue::{pool_pvalues, CalibrationSet};
-use crate::conformal::score::{labeled_scores, pool_scores};
+use crate::conformal::score::{labeled_scores_toward, pool_scores_toward};
 use crate::selection::bh::bh_adjusted;
 use crate::selection::pipeline::{
     run_selection, LabeledInput, PoolInput, SelectError, SelectOptions,
@@ -97,13 +97,19 @@ pub fn audit_shortlist(
     let settings = &weighted.settings;
     let q = settings.fdr;
 
-    let labeled_v = labeled_scores(
+    let labeled_v = labeled_scores_toward(
         settings.score,
+        settings.direction,
         labeled.outcome,
         labeled.prediction,
         labeled.thresholds,
     );
-    let pool_v = pool_scores(settings.score, pool.prediction, pool.thresholds);
+    let pool_v = pool_scores_toward(
+        settings.score,
+        settings.direction,
+        pool.prediction,
+        pool.thresholds,
+    );
     let unweighted_calibration = CalibrationSet::new(&labeled_v, None)?;
     let unweighted = pool_pvalues(
         settings.pvalues,

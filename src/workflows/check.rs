@@ -378,6 +378,8 @@ pub(crate) fn subset(table: &UnitTable, rows: &[usize], role: Role) -> UnitTable
         feature_names: table.feature_names.clone(),
         features,
         kept: table.kept.subset(rows),
+        dropped_missing_outcome: 0,
+        censored_outcomes: 0,
     }
 }
 
@@ -626,7 +628,12 @@ impl Simulation<'_> {
         let mut pseudo_pool = subset(labeled, &pool_rows, Role::Pool);
         let truth = pseudo_pool.outcome.take().unwrap_or_default();
         let interesting: Vec<bool> = (0..pseudo_pool.len())
-            .map(|j| truth[j] > self.threshold_of(&pseudo_pool, j))
+            .map(|j| {
+                options
+                    .select
+                    .direction
+                    .is_interesting(truth[j], self.threshold_of(&pseudo_pool, j))
+            })
             .collect();
         let interesting_count = interesting.iter().filter(|&&x| x).count();
         let interesting_share = interesting_count as f64 / pseudo_pool.len().max(1) as f64;

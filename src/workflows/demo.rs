@@ -188,6 +188,8 @@ pub fn labeled_table(rows: usize, seed: u64) -> (crate::io::UnitTable, Vec<f64>)
         feature_names: FEATURES.iter().map(|s| s.to_string()).collect(),
         features,
         kept: Default::default(),
+        dropped_missing_outcome: 0,
+        censored_outcomes: 0,
     };
     (table, log_ratio)
 }
@@ -357,6 +359,7 @@ pub fn select_in_scenario(
         seed,
         level_curve: Some(false),
         empty_when_unreachable: false,
+        ..SelectOptions::default()
     };
     run_selection(
         &options,

@@ -641,13 +641,6 @@ pub fn text_summary(
         s.pvalues,
         s.score
     );
-    if let Some(rule) = &s.threshold_rule {
-        let _ = writeln!(
-            out,
-            "  interesting units: {}; the shortlist holds the units likely to be so",
-            rule.words()
-        );
-    }
     if let Some(mark) = &s.unreliable_weights {
         let _ = writeln!(out, "{}", mark.statement);
     }
@@ -669,6 +662,13 @@ pub fn text_summary(
                 severe.join(", ")
             );
         }
+    }
+    if let Some(rule) = &s.threshold_rule {
+        let _ = writeln!(
+            out,
+            "  interesting units: {}; the shortlist holds the units likely to be so",
+            rule.words()
+        );
     }
     if let Some(statement) = &s.draw_statement {
         let _ = writeln!(

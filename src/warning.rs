@@ -167,7 +167,7 @@ pub fn prose_number(v: f64) -> String {
 
 /// Worst first, keeping the given order among warnings of the same level.
 pub fn worst_first(warnings: &mut [Warning]) {
-    warnings.sort_by(|a, b| b.level.cmp(&a.level));
+    warnings.sort_by_key(|w| std::cmp::Reverse(w.level));
 }
 
 #[cfg(test)]

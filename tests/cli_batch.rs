@@ -61,7 +61,10 @@ fn batch_writes_the_units_to_assay_and_the_design() {
     };
     let ((first, first_line), (second, second_line)) = (json(&a), json(&b));
     assert_eq!(first, second, "design.json: same seed, same content");
-    assert_ne!(first_line, second_line, "the command lines name different --out");
+    assert_ne!(
+        first_line, second_line,
+        "the command lines name different --out"
+    );
     let (header, design) = rows(&a.join("design.csv"));
     assert_eq!(header, ["id", "inclusion_probability", "in_batch"]);
     assert_eq!(design.len(), 2000, "every pool unit");

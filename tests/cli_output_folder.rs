@@ -111,12 +111,20 @@ fn a_second_select_removes_the_first_ones_report() {
     assert!(out.join("report.html").exists());
     assert_eq!(
         manifest_files(&out, "files"),
-        ["candidates.csv", "shortlist.csv", "summary.json", "report.html"]
+        [
+            "candidates.csv",
+            "shortlist.csv",
+            "summary.json",
+            "report.html"
+        ]
     );
     assert_eq!(manifest(&out)["command"], "select");
     assert_eq!(manifest(&out)["version"], env!("CARGO_PKG_VERSION"));
     ok(&run(&select_args(&out, &["--fdr", "0.1"])));
-    assert_eq!(names(&out), [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]);
+    assert_eq!(
+        names(&out),
+        [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
+    );
     assert_eq!(
         manifest_files(&out, "files"),
         ["candidates.csv", "shortlist.csv", "summary.json"]
@@ -160,7 +168,10 @@ fn select_after_rescreen_removes_changes_and_rescreen_refuses_its_previous_folde
             "{}",
             stderr(&refused)
         );
-        assert_eq!(names(&round1), [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]);
+        assert_eq!(
+            names(&round1),
+            [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
+        );
         assert_eq!(fs::read(round1.join("candidates.csv")).unwrap(), before);
     }
 
@@ -168,7 +179,10 @@ fn select_after_rescreen_removes_changes_and_rescreen_refuses_its_previous_folde
     assert!(round2.join("changes.csv").exists());
     assert!(round2.join("changes.json").exists());
     ok(&run(&select_args(&round2, &[])));
-    assert_eq!(names(&round2), [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]);
+    assert_eq!(
+        names(&round2),
+        [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
+    );
 }
 
 #[test]
@@ -340,7 +354,13 @@ fn a_folder_the_tool_did_not_make_is_refused_unless_forced() {
     ok(&run(&select_args(notes.path(), &[])));
     assert_eq!(
         names(notes.path()),
-        [MANIFEST, "candidates.csv", "notes.txt", "shortlist.csv", "summary.json"]
+        [
+            MANIFEST,
+            "candidates.csv",
+            "notes.txt",
+            "shortlist.csv",
+            "summary.json"
+        ]
     );
 
     // --out naming a file.
@@ -370,7 +390,10 @@ fn a_folder_of_an_earlier_version_counts_as_the_tools() {
     // An earlier version's leftover of a killed run (pid above any pid_max).
     fs::write(out.join(".candidates.csv.4194999-0.tmp"), "partial").unwrap();
     ok(&run(&select_args(out, &[])));
-    assert_eq!(names(out), [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]);
+    assert_eq!(
+        names(out),
+        [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
+    );
 }
 
 /// Reference outputs of each configuration run alone: name -> bytes (the manifest's time
@@ -580,7 +603,10 @@ fn leftovers_of_a_killed_run_are_removed_by_the_next_run() {
     assert_eq!(failed.status.code(), Some(2));
     assert!(temporaries(&out).is_empty(), "{:?}", names(&out));
     ok(&run(&select_args(&out, &[])));
-    assert_eq!(names(&out), [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]);
+    assert_eq!(
+        names(&out),
+        [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
+    );
 }
 
 #[test]

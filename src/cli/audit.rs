@@ -437,6 +437,8 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
             .titled("unreliable fitted weights"),
         );
     }
+    // Worst first; among equals, unreliable weights, then the shift's, then the list's.
+    crate::warning::worst_first(&mut warnings);
     let summary = AuditSummary {
         schema_version: SCHEMA_VERSION,
         tool: tool_info(),

@@ -52,11 +52,16 @@ options of `weighbridge shift` (--penalty, --expand, --fit-rows, --fit-fraction,
 costs; its diagnostics and warnings go into summary.json (`shift`) and the summary below.
 With --fit-rows held-out the labeled rows that fit the classifier do not calibrate.
 
-Outputs in --out (written all at once; nothing is written when an input is bad):
-  candidates.csv  one row per pool unit in input order: id, score, weight, p_value,
-                  selected, [first_step, conditional_count,] never_selectable_because
-  summary.json    settings, counts, warnings, seed, tool version, and with --fit-weights
-                  the shift diagnostics (`shift`)
+Outputs in --out (written all at once; nothing is written when an input is bad; every
+field in docs/outputs.md):
+  shortlist.csv   the selected units only, best predicted first: rank, id, prediction,
+                  p_value, q_value, selection_probability, weight, kept columns
+  candidates.csv  one row per pool unit in input order, the same columns for every
+                  procedure: id, score, weight, p_value, selected, first_step,
+                  conditional_count, never_selectable_because, ..., prediction,
+                  shortlist_rank (empty cells where a column does not apply)
+  summary.json    settings, counts, warnings, seed, tool version, command line, columns,
+                  and with --fit-weights the shift diagnostics (`shift`)
   report.html     with --report: one self-contained page (no scripts, no external files)
 
 Exit codes: 0 success, 2 bad usage or input, 1 internal failure.

@@ -25,9 +25,10 @@ use super::{commit_outputs, open_output, print_stdout, Failure};
 const RESCREEN_HELP: &str = "\
 Runs the same selection as `select` (every option applies) on the current files, then
 compares it unit by unit (matched by id) with the candidates.csv and summary.json of a
-previous run in --previous. Writes into --out: candidates.csv and summary.json of the new
-run, changes.csv (id, change, why, previous_p_value, p_value, new_poorly_covered) and
-changes.json (counts, how the diagnostics moved, warnings).
+previous run in --previous. Writes into --out: shortlist.csv, candidates.csv and
+summary.json of the new run, changes.csv (id, change, why, previous_p_value, p_value,
+new_poorly_covered, change_code) and changes.json (counts, how the diagnostics moved,
+warnings); every field in docs/outputs.md. Folders written by earlier versions are read.
 
 Changes: new to the pool (selected or not), newly selected, dropped (with the reasons that
 apply: its weight moved, its score moved, its p-value moved, or the pool grew so the BH line
@@ -460,6 +461,7 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     let warnings = rescreen_warnings(&setting_changes, &counts, outcome.settings.fdr);
     let mut details = warnings;
     details.extend(summary.warning_details.iter().cloned());
+    crate::warning::worst_first(&mut details);
 
     let report = ChangesReport {
         schema_version: crate::report::SCHEMA_VERSION,

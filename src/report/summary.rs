@@ -329,9 +329,9 @@ const REPEATED_BY_SHIFT: [(&str, &str); 2] = [
 ];
 
 /// Fold the shift diagnostics of fitted weights into a selection summary: the `shift`
-/// object, and the shift warnings first (they are the worst: weights that cannot be trusted
-/// make every count below them doubtful), in their documented worst-first order, followed
-/// by the selection's own warnings. A selection warning that repeats a shift warning (the
+/// object, and the warnings worst first by level, the shift warnings first among equals
+/// (weights that cannot be trusted make every count below them doubtful) in their
+/// documented order, then the selection's own. A selection warning that repeats a shift warning (the
 /// effective sample size, unreachable units) is dropped.
 pub fn add_shift(summary: &mut SelectSummary, section: ShiftSection) {
     let named = |d: &str| section.summary.warnings.iter().any(|w| w.diagnostic == d);
@@ -354,8 +354,10 @@ pub fn add_shift(summary: &mut SelectSummary, section: ShiftSection) {
             details.push(warning.clone());
         }
     }
-    summary.warnings = lines;
-    summary.warning_details = details;
+    // Worst first across both sources; among equals the shift's come first.
+    let mut paired: Vec<(String, Warning)> = lines.into_iter().zip(details).collect();
+    paired.sort_by_key(|p| std::cmp::Reverse(p.1.level));
+    (summary.warnings, summary.warning_details) = paired.into_iter().unzip();
     summary.shift = Some(section);
 }
 
@@ -1475,6 +1477,32 @@ mod tests {
         assert_eq!(
             ThresholdRule::new(Some(6.5), None, Direction::Above).words(),
             "outcome above 6.5"
+        );
+    }
+
+    #[test]
+    fn text_summary_speaks_the_users_direction_and_names_the_shortlist() {
+        let o = four_unit_outcome();
+        let ids: Vec<String> = ["a", "b", "c", "d"].map(String::from).to_vec();
+        let prediction = [0.2, 0.99, 0.1, 0.995];
+        let kept = KeptColumns::default();
+        let mut summary = select_summary(&o, RunInputs::default());
+        summary.threshold_rule = Some(ThresholdRule::new(Some(0.5), None, Direction::Below));
+        let pool = PoolColumns {
+            ids: &ids,
+            prediction: &prediction,
+            kept: &kept,
+            direction: Direction::Below,
+        };
+        let text = text_summary(&summary, &pool, &o);
+        assert!(
+            text.contains("interesting units: outcome below 0.5"),
+            "{text}"
+        );
+        // Lower is better: b (0.99) before d (0.995).
+        assert!(
+            text.contains("top of shortlist.csv (best predicted first): b, d\n"),
+            "{text}"
         );
     }
 

@@ -471,6 +471,28 @@ mod tests {
     use super::*;
 
     #[test]
+    fn khat_readings_follow_the_bands() {
+        // Bands of the usual k-hat reading (Vehtari et al., PSIS, from memory): <= 0.5,
+        // up to the threshold, above it, above 1; NaN when not estimable.
+        let read = |k: f64| khat_reading(k, 0.7, 0.0123, 150.4, 300);
+        let texts = [read(0.2), read(0.6), read(0.8), read(1.5), read(f64::NAN)];
+        for text in &texts {
+            // Every reading says what the weights are worth for this shortlist.
+            assert!(
+                text.contains("1.2%") && text.contains("150 of 300"),
+                "{text}"
+            );
+        }
+        assert!(texts[0].contains("light tail"));
+        assert!(texts[1].contains("usable"));
+        assert!(texts[2].contains("not trustworthy"));
+        assert!(texts[3].contains("need not exist"));
+        assert!(texts[4].contains("could not be measured"));
+        // At the threshold itself the weights are still usable (k-hat must exceed it).
+        assert!(read(0.7).contains("usable"));
+    }
+
+    #[test]
     fn smd_threshold_values() {
         // One feature: z = Phi^-1(0.975) = 1.959964 (standard normal table); ESS = m = 100:
         // SE = sqrt(0.02), bound 0.27718.

@@ -1723,10 +1723,43 @@ fn shift_warnings_come_first_in_the_summary() {
         .iter()
         .map(|w| w.as_str().unwrap())
         .collect();
-    for (i, diagnostic) in shift_warnings.iter().enumerate() {
+    // Worst first by level (high, medium, low); among warnings of one level the shift's
+    // come first, in their documented order. So the shift's high-concern warnings lead.
+    let levels: Vec<&str> = summary["shift"]["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w["level"].as_str().unwrap())
+        .collect();
+    let high_shift: Vec<&&str> = shift_warnings
+        .iter()
+        .zip(&levels)
+        .filter(|(_, level)| **level == "high")
+        .map(|(d, _)| d)
+        .collect();
+    assert!(!high_shift.is_empty(), "{levels:?}");
+    for (i, diagnostic) in high_shift.iter().enumerate() {
         assert!(
             warnings[i].starts_with(&format!("{diagnostic} (")),
             "warning {i} should be the shift's `{diagnostic}`: {warnings:#?}"
+        );
+    }
+    let details = summary["warning_details"].as_array().unwrap();
+    let ranks: Vec<u64> = details
+        .iter()
+        .map(|w| w["level_rank"].as_u64().unwrap())
+        .collect();
+    assert!(ranks.windows(2).all(|p| p[0] >= p[1]), "{ranks:?}");
+    // Within each level, every shift warning comes before any selection warning.
+    for level in ["high", "medium", "low"] {
+        let from_shift: Vec<bool> = details
+            .iter()
+            .filter(|w| w["level"] == level)
+            .map(|w| shift_warnings.contains(&w["code"].as_str().unwrap()))
+            .collect();
+        assert!(
+            from_shift.windows(2).all(|p| p[0] || !p[1]),
+            "{level}: {details:#?}"
         );
     }
     // The selection's own effective-sample-size warning repeats the shift's and is dropped

@@ -167,6 +167,7 @@ pub fn audit_shortlist(
     };
     outcome.warnings = audit_warnings(&outcome, q, weighted.weights_vary);
     outcome.warnings.extend(weighted.warnings);
+    crate::warning::worst_first(&mut outcome.warnings);
     Ok(outcome)
 }
 

@@ -7,6 +7,7 @@ pub mod random;
 pub mod report;
 pub mod selection;
 pub mod shift;
+pub mod warning;
 pub mod workflows;
 
 /// Old paths of [`conformal::score`] and [`conformal::pvalue`].

@@ -44,13 +44,27 @@ fn batch_writes_the_units_to_assay_and_the_design() {
         let o = batch(out, &["--size", "40", "--fdr", "0.2"]);
         assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
     }
-    for name in ["batch.csv", "design.csv", "design.json"] {
+    for name in ["batch.csv", "design.csv"] {
         assert_eq!(
             fs::read(a.join(name)).unwrap(),
             fs::read(b.join(name)).unwrap(),
             "{name}: same seed, same bytes"
         );
     }
+    // design.json records the command line, which differs in --out; everything else is
+    // the same.
+    let json = |dir: &std::path::Path| {
+        let mut v: serde_json::Value =
+            serde_json::from_slice(&fs::read(dir.join("design.json")).unwrap()).unwrap();
+        let line = v["command_line"].take();
+        (v, line)
+    };
+    let ((first, first_line), (second, second_line)) = (json(&a), json(&b));
+    assert_eq!(first, second, "design.json: same seed, same content");
+    assert_ne!(
+        first_line, second_line,
+        "the command lines name different --out"
+    );
     let (header, design) = rows(&a.join("design.csv"));
     assert_eq!(header, ["id", "inclusion_probability", "in_batch"]);
     assert_eq!(design.len(), 2000, "every pool unit");

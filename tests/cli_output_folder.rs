@@ -111,15 +111,23 @@ fn a_second_select_removes_the_first_ones_report() {
     assert!(out.join("report.html").exists());
     assert_eq!(
         manifest_files(&out, "files"),
-        ["candidates.csv", "summary.json", "report.html"]
+        [
+            "candidates.csv",
+            "shortlist.csv",
+            "summary.json",
+            "report.html"
+        ]
     );
     assert_eq!(manifest(&out)["command"], "select");
     assert_eq!(manifest(&out)["version"], env!("CARGO_PKG_VERSION"));
     ok(&run(&select_args(&out, &["--fdr", "0.1"])));
-    assert_eq!(names(&out), [MANIFEST, "candidates.csv", "summary.json"]);
+    assert_eq!(
+        names(&out),
+        [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
+    );
     assert_eq!(
         manifest_files(&out, "files"),
-        ["candidates.csv", "summary.json"]
+        ["candidates.csv", "shortlist.csv", "summary.json"]
     );
 }
 
@@ -160,7 +168,10 @@ fn select_after_rescreen_removes_changes_and_rescreen_refuses_its_previous_folde
             "{}",
             stderr(&refused)
         );
-        assert_eq!(names(&round1), [MANIFEST, "candidates.csv", "summary.json"]);
+        assert_eq!(
+            names(&round1),
+            [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
+        );
         assert_eq!(fs::read(round1.join("candidates.csv")).unwrap(), before);
     }
 
@@ -168,7 +179,10 @@ fn select_after_rescreen_removes_changes_and_rescreen_refuses_its_previous_folde
     assert!(round2.join("changes.csv").exists());
     assert!(round2.join("changes.json").exists());
     ok(&run(&select_args(&round2, &[])));
-    assert_eq!(names(&round2), [MANIFEST, "candidates.csv", "summary.json"]);
+    assert_eq!(
+        names(&round2),
+        [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
+    );
 }
 
 #[test]
@@ -206,7 +220,7 @@ fn rescreen_and_audit_default_folders_differ_from_selects() {
     // select's folder is as select left it.
     assert_eq!(
         names(&dir.path().join("weighbridge-out")),
-        [MANIFEST, "candidates.csv", "summary.json"]
+        [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
     );
     assert_eq!(
         fs::read(dir.path().join("weighbridge-out/candidates.csv")).unwrap(),
@@ -255,6 +269,7 @@ fn the_demos_inputs_are_kept_when_a_run_reads_them() {
             "labeled.csv",
             "pool.csv",
             "report.html",
+            "shortlist.csv",
             "summary.json"
         ]
     );
@@ -282,6 +297,7 @@ fn the_demos_inputs_are_kept_when_a_run_reads_them() {
             "candidates.csv",
             "labeled.csv",
             "pool.csv",
+            "shortlist.csv",
             "summary.json"
         ]
     );
@@ -338,7 +354,13 @@ fn a_folder_the_tool_did_not_make_is_refused_unless_forced() {
     ok(&run(&select_args(notes.path(), &[])));
     assert_eq!(
         names(notes.path()),
-        [MANIFEST, "candidates.csv", "notes.txt", "summary.json"]
+        [
+            MANIFEST,
+            "candidates.csv",
+            "notes.txt",
+            "shortlist.csv",
+            "summary.json"
+        ]
     );
 
     // --out naming a file.
@@ -368,7 +390,10 @@ fn a_folder_of_an_earlier_version_counts_as_the_tools() {
     // An earlier version's leftover of a killed run (pid above any pid_max).
     fs::write(out.join(".candidates.csv.4194999-0.tmp"), "partial").unwrap();
     ok(&run(&select_args(out, &[])));
-    assert_eq!(names(out), [MANIFEST, "candidates.csv", "summary.json"]);
+    assert_eq!(
+        names(out),
+        [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
+    );
 }
 
 /// Reference outputs of each configuration run alone: name -> bytes (the manifest's time
@@ -381,6 +406,12 @@ fn contents(dir: &Path) -> BTreeMap<String, Vec<u8>> {
                 let mut m = manifest(dir);
                 m["written_at"] = Value::Null;
                 serde_json::to_vec(&m).unwrap()
+            } else if name == "summary.json" {
+                // The recorded command line names the run's own --out.
+                let mut v: Value =
+                    serde_json::from_slice(&fs::read(dir.join(&name)).unwrap()).unwrap();
+                v["command_line"] = Value::Null;
+                serde_json::to_vec(&v).unwrap()
             } else {
                 fs::read(dir.join(&name)).unwrap()
             };
@@ -572,7 +603,10 @@ fn leftovers_of_a_killed_run_are_removed_by_the_next_run() {
     assert_eq!(failed.status.code(), Some(2));
     assert!(temporaries(&out).is_empty(), "{:?}", names(&out));
     ok(&run(&select_args(&out, &[])));
-    assert_eq!(names(&out), [MANIFEST, "candidates.csv", "summary.json"]);
+    assert_eq!(
+        names(&out),
+        [MANIFEST, "candidates.csv", "shortlist.csv", "summary.json"]
+    );
 }
 
 #[test]

@@ -113,10 +113,15 @@ fn allowing_unreliable_weights_runs_and_marks_every_output() {
     }
     assert_eq!(summary["shift"]["refusal_reasons"], mark["reasons"]);
     let csv = fs::read_to_string(out.join("candidates.csv")).unwrap();
-    let mut lines = csv.lines();
-    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
-    assert_eq!(header.last(), Some(&"unreliable_weights"));
-    assert!(lines.all(|l| l.ends_with(",true")));
+    let mut reader = csv::Reader::from_reader(csv.as_bytes());
+    let header = reader.headers().unwrap().clone();
+    // Where it was added (the twelfth column); later columns come after it.
+    let column = header
+        .iter()
+        .position(|h| h == "unreliable_weights")
+        .unwrap();
+    assert_eq!(column, 11, "{header:?}");
+    assert!(reader.records().all(|r| &r.unwrap()[column] == "true"));
     let html = fs::read_to_string(out.join("report.html")).unwrap();
     assert!(html.contains("UNRELIABLE WEIGHTS"));
 }

@@ -206,6 +206,12 @@ impl Units {
     }
 }
 
+/// `Some(())` when column `name` exists and has a non-empty cell.
+fn non_empty(t: &Table, name: &str) -> Option<()> {
+    t.index(name)?;
+    t.strings(name).iter().any(|c| !c.is_empty()).then_some(())
+}
+
 /// `candidates.csv`, parsed.
 struct Candidates {
     header: Vec<String>,
@@ -228,8 +234,9 @@ impl Candidates {
             weight: t.numbers("weight"),
             p_value: t.numbers("p_value"),
             selected: t.booleans("selected"),
-            first_step: t.index("first_step").map(|_| t.booleans("first_step")),
-            conditional_count: t.index("conditional_count").map(|_| {
+            // Present for every procedure; empty cells where it does not apply (BH, BY).
+            first_step: non_empty(&t, "first_step").map(|_| t.booleans("first_step")),
+            conditional_count: non_empty(&t, "conditional_count").map(|_| {
                 t.strings("conditional_count")
                     .iter()
                     .map(|s| s.parse::<usize>().expect("conditional_count is a count"))
@@ -425,7 +432,9 @@ fn assert_pvalue_range(p: &[f64]) {
 // The good path on the README fixtures
 // ---------------------------------------------------------------------------------------
 
-const CONDITIONAL_COLUMNS: [&str; 12] = [
+/// The columns of candidates.csv, the same for every procedure: the twelve of earlier
+/// versions in their order, then the ones added since.
+const CANDIDATES_COLUMNS: [&str; 14] = [
     "id",
     "score",
     "weight",
@@ -438,6 +447,8 @@ const CONDITIONAL_COLUMNS: [&str; 12] = [
     "q_value",
     "q_value_by",
     "unreliable_weights",
+    "prediction",
+    "shortlist_rank",
 ];
 
 const SUMMARY_KEYS: [&str; 15] = [
@@ -472,7 +483,7 @@ fn readme_example_conditional_calibration_on_the_fixtures() {
     let q = DEFAULT_FDR;
 
     // candidates.csv: the documented columns, one row per pool unit, in input order.
-    assert_eq!(candidates.header, CONDITIONAL_COLUMNS);
+    assert_eq!(candidates.header, CANDIDATES_COLUMNS);
     assert_eq!(candidates.ids, pool.ids);
 
     // summary.json: every documented field, settings as asked.
@@ -641,21 +652,16 @@ fn check_step_up_run(out: &Path, procedure: &str, pvalues: &str, q: f64) -> Cand
     let candidates = Candidates::read(out);
     let summary = read_summary(out);
     assert_eq!(
-        candidates.header,
-        [
-            "id",
-            "score",
-            "weight",
-            "p_value",
-            "selected",
-            "never_selectable_because",
-            "selection_probability",
-            "q_value",
-            "q_value_by",
-            "unreliable_weights"
-        ],
-        "{procedure}: no first_step / conditional_count columns"
+        candidates.header, CANDIDATES_COLUMNS,
+        "{procedure}: the same columns as conditional calibration"
     );
+    let table = Table::read(&out.join("candidates.csv"));
+    for column in ["first_step", "conditional_count"] {
+        assert!(
+            table.strings(column).iter().all(String::is_empty),
+            "{procedure}: `{column}` does not apply, its cells are empty"
+        );
+    }
     assert_eq!(summary["procedure"], procedure);
     assert_eq!(summary["pvalues"], pvalues);
     assert!(summary["pruning"].is_null());
@@ -778,10 +784,15 @@ fn by_selects_when_the_evidence_is_strong() {
 // Determinism
 // ---------------------------------------------------------------------------------------
 
-fn output_bytes(out: &Path) -> (Vec<u8>, Vec<u8>) {
+/// candidates.csv and shortlist.csv as bytes, summary.json without the command line
+/// (which names the run's own --out).
+fn output_bytes(out: &Path) -> (Vec<u8>, Vec<u8>, Value) {
+    let mut summary = read_summary(out);
+    summary["command_line"] = Value::Null;
     (
         fs::read(out.join("candidates.csv")).unwrap(),
-        fs::read(out.join("summary.json")).unwrap(),
+        fs::read(out.join("shortlist.csv")).unwrap(),
+        summary,
     )
 }
 
@@ -1712,18 +1723,62 @@ fn shift_warnings_come_first_in_the_summary() {
         .iter()
         .map(|w| w.as_str().unwrap())
         .collect();
-    for (i, diagnostic) in shift_warnings.iter().enumerate() {
+    // Worst first by level (high, medium, low); among warnings of one level the shift's
+    // come first, in their documented order. So the shift's high-concern warnings lead.
+    let levels: Vec<&str> = summary["shift"]["warnings"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w["level"].as_str().unwrap())
+        .collect();
+    let high_shift: Vec<&&str> = shift_warnings
+        .iter()
+        .zip(&levels)
+        .filter(|(_, level)| **level == "high")
+        .map(|(d, _)| d)
+        .collect();
+    assert!(!high_shift.is_empty(), "{levels:?}");
+    for (i, diagnostic) in high_shift.iter().enumerate() {
         assert!(
             warnings[i].starts_with(&format!("{diagnostic} (")),
             "warning {i} should be the shift's `{diagnostic}`: {warnings:#?}"
         );
     }
+    let details = summary["warning_details"].as_array().unwrap();
+    let ranks: Vec<u64> = details
+        .iter()
+        .map(|w| w["level_rank"].as_u64().unwrap())
+        .collect();
+    assert!(ranks.windows(2).all(|p| p[0] >= p[1]), "{ranks:?}");
+    // Within each level, every shift warning comes before any selection warning.
+    for level in ["high", "medium", "low"] {
+        let from_shift: Vec<bool> = details
+            .iter()
+            .filter(|w| w["level"] == level)
+            .map(|w| shift_warnings.contains(&w["code"].as_str().unwrap()))
+            .collect();
+        assert!(
+            from_shift.windows(2).all(|p| p[0] || !p[1]),
+            "{level}: {details:#?}"
+        );
+    }
+    // The selection's own effective-sample-size warning repeats the shift's and is dropped
+    // (from the lines and from the objects alike).
     assert!(
         !warnings
             .iter()
-            .any(|w| w.starts_with("effective sample size:")),
+            .any(|w| w.starts_with("effective sample size")),
         "{warnings:#?}"
     );
+    let codes: Vec<&str> = summary["warning_details"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w["code"].as_str().unwrap())
+        .collect();
+    assert_eq!(codes.len(), warnings.len());
+    assert!(codes.contains(&"ess_fraction"), "{codes:?}");
+    assert!(!codes.contains(&"labeled_ess_low"), "{codes:?}");
     let stdout = text(&output.stdout);
     assert!(stdout.contains("warnings (most serious first)"), "{stdout}");
     // The run's mark comes on the second line, then the severe shift warnings, before

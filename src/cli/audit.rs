@@ -15,15 +15,16 @@ use crate::io::errors::shown_text;
 use crate::io::{check_one_stdin, read_id_list, OutputSet};
 use crate::report::html::{shift_part, Finding, Part, Report, Table};
 use crate::report::shift_section;
-use crate::report::{tool_info, ToolInfo, CAUTIONS};
+use crate::report::{tool_info, Columns, ThresholdRule, ToolInfo, CAUTIONS, SCHEMA_VERSION};
 use crate::shift::weighting::{Calibration, FittedWeights, Weighting};
+use crate::warning::{Level, Warning};
 use crate::workflows::audit::{audit_shortlist, AuditOutcome, POOL_PROBABILITY_LIMIT};
 
 use super::common::{
     obtain_run_weights, read_inputs, report_pointer, selection_inputs, shared_ids_warning,
     weighting_is_fitted, weights_method, SelectArgs, SelectConfig,
 };
-use super::{commit_outputs, open_output, print_stdout, Failure, StepStatus};
+use super::{command_line, commit_outputs, open_output, print_stdout, Failure, StepStatus};
 
 const AUDIT_HELP: &str = "\
 Takes a list of pool ids chosen earlier (by ranking, by an unweighted selection, by hand)
@@ -76,7 +77,11 @@ const UNKNOWN_IDS_LISTED: usize = 50;
 /// `audit.json`.
 #[derive(Debug, Serialize)]
 struct AuditSummary<'a> {
+    schema_version: u32,
     tool: ToolInfo,
+    command_line: Vec<String>,
+    threshold_rule: ThresholdRule,
+    columns: Columns,
     /// Why `select` would refuse the fitted weights (empty when it would not, or without
     /// fitted weights). An audit does not refuse: this is its first finding.
     unreliable_weights: Vec<crate::shift::Unreliable>,
@@ -98,7 +103,9 @@ struct AuditSummary<'a> {
     weighted_selected_count: usize,
     largest_labeled_weight: f64,
     pool_probability_limit: f64,
-    warnings: &'a [String],
+    warnings: Vec<String>,
+    /// The same findings as objects, in the same order.
+    warning_details: &'a [Warning],
     cautions: Vec<&'static str>,
     /// Listed ids not in the pool and skipped (`--unknown-ids skip`), the first
     /// [`UNKNOWN_IDS_LISTED`] in list order; `unknown_ids_count` counts them all.
@@ -175,7 +182,12 @@ fn audit_report(
                 .collect()
         })
         .unwrap_or_default();
-    warnings.extend(outcome.warnings.iter().map(|w| Finding::from_line(w)));
+    warnings.extend(
+        outcome
+            .warnings
+            .iter()
+            .map(|w| Finding::from_line(&w.line())),
+    );
     let shift = match weighting.fitted() {
         Some(fitted) => Some(
             shift_part(
@@ -385,14 +397,14 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
     let settings = config.options.check()?;
     let weights = weighting.describe();
     // With fitted weights, the shift diagnostics' own warnings come first (worst first).
-    let mut warnings: Vec<String> = weighting
+    let mut warnings: Vec<Warning> = weighting
         .fitted()
         .map(|f| {
             f.assessment
                 .summary
                 .warnings
                 .iter()
-                .map(|w| w.message.clone())
+                .map(crate::shift::ShiftWarning::to_warning)
                 .collect()
         })
         .unwrap_or_default();
@@ -410,15 +422,35 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
             .collect();
         warnings.insert(
             0,
-            format!(
-                "unreliable fitted weights: `select` would refuse them (exit code 3), so \
-                 every weighted figure of this audit rests on weights that extrapolate; {}",
-                detail.join("; ")
-            ),
+            Warning::new(
+                "unreliable_weights",
+                Level::High,
+                "refusal_reasons",
+                format!(
+                    "`select` would refuse them (exit code 3), so every weighted figure of \
+                     this audit rests on weights that extrapolate; {}",
+                    detail.join("; ")
+                ),
+            )
+            .titled("unreliable fitted weights"),
         );
     }
+    // Worst first; among equals, unreliable weights, then the shift's, then the list's.
+    crate::warning::worst_first(&mut warnings);
     let summary = AuditSummary {
+        schema_version: SCHEMA_VERSION,
         tool: tool_info(),
+        command_line: command_line(),
+        threshold_rule: ThresholdRule::new(
+            config.threshold,
+            config.pool_read.threshold_column.as_deref(),
+            config.direction,
+        ),
+        columns: Columns::of(
+            &config.labeled_read,
+            &labeled.feature_names,
+            &pool.kept.names,
+        ),
         unreliable_weights: unreliable,
         shortlist_file: shortlist_path.display().to_string(),
         labeled_file: config.labeled_path.display().to_string(),
@@ -438,7 +470,8 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
         weighted_selected_count: outcome.weighted_selected_count,
         largest_labeled_weight: outcome.largest_labeled_weight,
         pool_probability_limit: POOL_PROBABILITY_LIMIT,
-        warnings: &warnings,
+        warnings: warnings.iter().map(Warning::line).collect(),
+        warning_details: &warnings,
         cautions: CAUTIONS.to_vec(),
         unknown_ids: unknown
             .iter()
@@ -513,9 +546,9 @@ pub fn run(args: AuditArgs) -> Result<(), Failure> {
                 }
             );
         }
-        if !warnings.is_empty() {
+        if !summary.warnings.is_empty() {
             let _ = writeln!(text, "findings (most serious first):");
-            for w in &warnings {
+            for w in &summary.warnings {
                 let _ = writeln!(text, "  - {w}");
             }
         }

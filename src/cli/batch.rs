@@ -102,7 +102,11 @@ pub struct BatchArgs {
 /// `design.json`.
 #[derive(Debug, Serialize)]
 struct DesignReport<'a> {
+    schema_version: u32,
     tool: ToolInfo,
+    command_line: Vec<String>,
+    /// The column names used (`id`, `prediction`; the others null or empty).
+    columns: crate::report::Columns,
     pool_file: String,
     id_column: &'a str,
     prediction_column: &'a str,
@@ -182,7 +186,14 @@ pub fn run(a: BatchArgs) -> Result<(), Failure> {
         })
         .collect();
     let report = DesignReport {
+        schema_version: crate::report::SCHEMA_VERSION,
         tool: tool_info(),
+        command_line: super::command_line(),
+        columns: crate::report::Columns {
+            id: a.id.clone(),
+            prediction: Some(a.prediction.clone()),
+            ..crate::report::Columns::default()
+        },
         pool_file: a.pool.display().to_string(),
         id_column: &a.id,
         prediction_column: &a.prediction,

@@ -12,6 +12,7 @@ use std::collections::HashMap;
 use std::path::{Path, PathBuf};
 
 use crate::io::{Role, UnitTable};
+use crate::warning::{Level, Warning};
 use crate::workflows::batch::exact_weight;
 use crate::workflows::check::subset;
 
@@ -129,7 +130,7 @@ pub(crate) struct DesignInputs {
     pub labeled: UnitTable,
     pub pool: UnitTable,
     pub description: String,
-    pub warnings: Vec<String>,
+    pub warnings: Vec<Warning>,
 }
 
 /// Check the tables against the design and attach the exact weights.
@@ -203,11 +204,20 @@ pub(crate) fn apply_design(
                  which assumes they are missing at random given their features."
             )));
         }
-        warnings.push(format!(
-            "missing batch outcomes: {text}; they were left out as if never drawn \
-             (--allow-missing-batch). The weights are exact only if these units are missing \
-             at random given their features; otherwise the FDR guarantee does not hold."
-        ));
+        warnings.push(
+            Warning::new(
+                "missing_batch_outcomes",
+                Level::High,
+                "missing_batch_count",
+                format!(
+                    "{text}; they were left out as if never drawn (--allow-missing-batch). The \
+                     weights are exact only if these units are missing at random given their \
+                     features; otherwise the FDR guarantee does not hold."
+                ),
+            )
+            .measured(missing.len() as f64, 0.0)
+            .titled("missing batch outcomes"),
+        );
     }
     let weight_of = |id: &String| exact_weight(design.by_id[id].0);
     let mut labeled_out = subset(
@@ -229,9 +239,15 @@ pub(crate) fn apply_design(
         drawn.len()
     );
     warnings.push(
-        "calibration batch: the batch's outcomes must not be used to retrain the model whose \
-         predictions this selection calibrates; that voids the exactness of the weights."
-            .to_string(),
+        Warning::new(
+            "batch_not_for_training",
+            Level::Low,
+            "batch_design",
+            "the batch's outcomes must not be used to retrain the model whose predictions this \
+             selection calibrates; that voids the exactness of the weights."
+                .to_string(),
+        )
+        .titled("calibration batch"),
     );
     Ok(DesignInputs {
         labeled: labeled_out,

@@ -149,7 +149,11 @@ pub struct CheckArgs {
 /// `check.json`.
 #[derive(Debug, Serialize)]
 struct CheckReport<'a> {
+    schema_version: u32,
     tool: ToolInfo,
+    command_line: Vec<String>,
+    threshold_rule: crate::report::ThresholdRule,
+    columns: crate::report::Columns,
     labeled_file: String,
     pool_file: String,
     fdr: f64,
@@ -165,6 +169,8 @@ struct CheckReport<'a> {
     #[serde(flatten)]
     outcome: &'a CheckOutcome,
     reading: Vec<String>,
+    /// The real fit's shift warnings (worst first), as objects.
+    warning_details: Vec<crate::warning::Warning>,
 }
 
 /// How to read the results, in plain words.
@@ -341,7 +347,22 @@ pub fn run(a: CheckArgs) -> Result<(), Failure> {
     .map_err(|e| Failure::Input(format!("calibration check: {e}")))?;
 
     let report = CheckReport {
+        schema_version: crate::report::SCHEMA_VERSION,
         tool: tool_info(),
+        command_line: super::command_line(),
+        threshold_rule: crate::report::ThresholdRule::new(
+            a.input.threshold,
+            a.input.threshold_column.as_deref(),
+            select.direction,
+        ),
+        columns: crate::report::Columns::of(&setup.labeled_read, &labeled.feature_names, &[]),
+        warning_details: real_fit
+            .assessment
+            .summary
+            .warnings
+            .iter()
+            .map(crate::shift::ShiftWarning::to_warning)
+            .collect(),
         labeled_file: labeled_path.display().to_string(),
         pool_file: pool_path.display().to_string(),
         fdr: a.fdr,

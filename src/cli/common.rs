@@ -55,11 +55,16 @@ options of `weighbridge shift` (--penalty, --expand, --fit-rows, --fit-fraction,
 costs; its diagnostics and warnings go into summary.json (`shift`) and the summary below.
 With --fit-rows held-out the labeled rows that fit the classifier do not calibrate.
 
-Outputs in --out (written all at once; nothing is written when an input is bad):
-  candidates.csv  one row per pool unit in input order: id, score, weight, p_value,
-                  selected, [first_step, conditional_count,] never_selectable_because
-  summary.json    settings, counts, warnings, seed, tool version, and with --fit-weights
-                  the shift diagnostics (`shift`)
+Outputs in --out (written all at once; nothing is written when an input is bad; every
+field in docs/outputs.md):
+  shortlist.csv   the selected units only, best predicted first: rank, id, prediction,
+                  p_value, q_value, selection_probability, weight, kept columns
+  candidates.csv  one row per pool unit in input order, the same columns for every
+                  procedure: id, score, weight, p_value, selected, first_step,
+                  conditional_count, never_selectable_because, ..., prediction,
+                  shortlist_rank (empty cells where a column does not apply)
+  summary.json    settings, counts, warnings, seed, tool version, command line, columns,
+                  and with --fit-weights the shift diagnostics (`shift`)
   report.html     with --report: one self-contained page (no scripts, no external files)
 
 Inputs: two files (--labeled, --pool) or one table (--table: rows whose outcome is empty
@@ -762,8 +767,11 @@ const SHARED_IDS_LISTED: usize = 10;
 /// The warning for ids that appear in both the labeled file and the pool: a unit both
 /// assayed and "untested" is usually a pool that was not updated after an assay, and it is
 /// shortlisted as if its outcome were unknown. Names up to ten ids (pool order) and the
-/// count; `None` when the files share no id.
-pub(crate) fn shared_ids_warning(labeled: &UnitTable, pool: &UnitTable) -> Option<String> {
+/// count; `None` when the files share no id. Concern `medium`.
+pub(crate) fn shared_ids_warning(
+    labeled: &UnitTable,
+    pool: &UnitTable,
+) -> Option<crate::warning::Warning> {
     let labeled_ids: std::collections::HashSet<&str> =
         labeled.ids.iter().map(String::as_str).collect();
     let shared: Vec<&str> = pool
@@ -781,10 +789,10 @@ pub(crate) fn shared_ids_warning(labeled: &UnitTable, pool: &UnitTable) -> Optio
         .map(|id| format!("`{}`", crate::io::errors::shown_text(id)))
         .collect();
     let more = shared.len().saturating_sub(SHARED_IDS_LISTED);
-    Some(format!(
-        "ids in both files: {} id(s) appear in the labeled file and in the pool ({}{}); such a \
-         unit is both assayed and treated as untested. Remove assayed units from the pool, or \
-         check that the two files use different ids for different units.",
+    let message = format!(
+        "{} id(s) appear in the labeled file and in the pool ({}{}); such a unit is both \
+         assayed and treated as untested. Remove assayed units from the pool, or check that \
+         the two files use different ids for different units.",
         shared.len(),
         listed.join(", "),
         if more > 0 {
@@ -792,7 +800,38 @@ pub(crate) fn shared_ids_warning(labeled: &UnitTable, pool: &UnitTable) -> Optio
         } else {
             String::new()
         }
-    ))
+    );
+    Some(
+        crate::warning::Warning::new(
+            "ids_in_both_files",
+            crate::warning::Level::Medium,
+            "shared_id_count",
+            message,
+        )
+        .measured(shared.len() as f64, 0.0)
+        .titled("ids in both files"),
+    )
+}
+
+/// Record how the run was asked for in its summary: the command line, the threshold rule
+/// as numbers and the column names used (`select`, `rescreen`).
+pub(crate) fn describe_run(
+    summary: &mut crate::report::SelectSummary,
+    config: &SelectConfig,
+    labeled: &crate::io::UnitTable,
+    pool: &crate::io::UnitTable,
+) {
+    summary.command_line = super::command_line();
+    summary.threshold_rule = Some(crate::report::ThresholdRule::new(
+        config.threshold,
+        config.pool_read.threshold_column.as_deref(),
+        config.direction,
+    ));
+    summary.columns = Some(crate::report::Columns::of(
+        &config.labeled_read,
+        &labeled.feature_names,
+        &pool.kept.names,
+    ));
 }
 
 /// Given weights near the top of the float range are rescaled together by a power of two

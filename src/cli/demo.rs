@@ -8,10 +8,12 @@ use std::path::PathBuf;
 use clap::Args;
 use linfa::ParamGuard;
 
+use crate::conformal::score::Direction;
 use crate::io::OutputSet;
 use crate::report::html::{selection_report, shift_part, Part, Table, WeightsMethod};
 use crate::report::{
-    add_shift, candidates_csv, select_summary, warning_line, RunInputs, ShiftSection, CAUTIONS,
+    add_shift, candidates_csv, select_summary, shortlist_csv, warning_line, Columns, PoolColumns,
+    RunInputs, ShiftSection, ThresholdRule, CAUTIONS,
 };
 use crate::shift::weighting::{fit_rows_statement, FittedWeights};
 use crate::shift::FeatureBalance;
@@ -20,7 +22,7 @@ use crate::workflows::demo::{
     repeated_screens, spearman_correlation, DemoError, COMPARED, FEATURES, THRESHOLD,
 };
 
-use super::{commit_outputs, open_output, print_stdout, Failure, StepStatus};
+use super::{command_line, commit_outputs, open_output, print_stdout, Failure, StepStatus};
 
 const DEMO_HELP: &str = "\
 Generates an invented compound library (our own simulation, no real data): a labeled set of
@@ -210,10 +212,18 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
         let _ = writeln!(truth, "{id},{y:.4}");
     }
     files.add("pool_truth.csv", truth.into_bytes());
+    let no_kept = crate::io::KeptColumns::default();
+    let pool_columns = PoolColumns {
+        ids: &scenario.pool.ids,
+        prediction: &scenario.pool.prediction,
+        kept: &no_kept,
+        direction: Direction::Above,
+    };
     files.add(
         "candidates.csv",
-        candidates_csv(&scenario.pool.ids, weighted, false),
+        candidates_csv(&pool_columns, weighted, false),
     );
+    files.add("shortlist.csv", shortlist_csv(&pool_columns, weighted));
     files.add(
         "weights.csv",
         crate::report::weights_csv(&scenario.labeled.ids, &scenario.pool.ids, &fitted),
@@ -231,6 +241,17 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
             ),
         },
     );
+    summary.command_line = command_line();
+    summary.threshold_rule = Some(ThresholdRule::new(Some(THRESHOLD), None, Direction::Above));
+    summary.columns = Some(Columns {
+        id: "id".to_string(),
+        outcome: Some("y".to_string()),
+        prediction: Some("pred".to_string()),
+        threshold_column: None,
+        weight_column: None,
+        features: FEATURES.iter().map(|f| f.to_string()).collect(),
+        keep_columns: Vec::new(),
+    });
     add_shift(&mut summary, section.clone());
     let json = serde_json::to_vec_pretty(&summary)
         .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?;
@@ -397,8 +418,9 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
         .unwrap_or_else(|_| args.out.join("report.html"));
     let _ = writeln!(
         out,
-        "\nWrote labeled.csv, pool.csv, pool_truth.csv, candidates.csv, summary.json, \
-         weights.csv and report.html to {}",
+        "\nWrote labeled.csv, pool.csv, pool_truth.csv, shortlist.csv (the shortlist with \
+         fitted weights, best predicted first), candidates.csv, summary.json, weights.csv and \
+         report.html to {}",
         args.out.display()
     );
     let _ = writeln!(out, "Open the report: file://{}", report_path.display());

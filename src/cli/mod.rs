@@ -121,6 +121,14 @@ pub(crate) fn commit_outputs(
     Ok(folder.commit(set, command)?)
 }
 
+/// The command line of this process (argv, program name first), for `command_line` in
+/// the JSON outputs; arguments that are not valid UTF-8 are written lossily.
+pub(crate) fn command_line() -> Vec<String> {
+    std::env::args_os()
+        .map(|a| a.to_string_lossy().into_owned())
+        .collect()
+}
+
 /// Print to stdout; a closed pipe ends quietly.
 pub(crate) fn print_stdout(text: &str) {
     let mut out = std::io::stdout().lock();

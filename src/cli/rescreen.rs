@@ -9,22 +9,26 @@ use serde::Serialize;
 use serde_json::Value;
 
 use crate::io::OutputSet;
-use crate::report::{add_shift, candidates_csv, select_summary, shift_section, RunInputs};
+use crate::report::{
+    add_shift, candidates_csv, select_summary, shift_section, shortlist_csv, PoolColumns, RunInputs,
+};
 use crate::selection::pipeline::run_selection;
+use crate::warning::{prose_number, Level, Warning};
 use crate::workflows::rescreen::{compare, Change, ChangeCounts, CurrentUnit, PreviousUnit};
 
 use super::common::{
-    obtain_run_weights, read_inputs, reliability_gate, report_pointer, selection_inputs,
-    selection_report_page, shared_ids_warning, SelectArgs, SelectConfig,
+    describe_run, obtain_run_weights, read_inputs, reliability_gate, report_pointer,
+    selection_inputs, selection_report_page, shared_ids_warning, SelectArgs, SelectConfig,
 };
 use super::{commit_outputs, open_output, print_stdout, Failure};
 
 const RESCREEN_HELP: &str = "\
 Runs the same selection as `select` (every option applies) on the current files, then
 compares it unit by unit (matched by id) with the candidates.csv and summary.json of a
-previous run in --previous. Writes into --out: candidates.csv and summary.json of the new
-run, changes.csv (id, change, why, previous_p_value, p_value, new_poorly_covered) and
-changes.json (counts, how the diagnostics moved, warnings).
+previous run in --previous. Writes into --out: shortlist.csv, candidates.csv and
+summary.json of the new run, changes.csv (id, change, why, previous_p_value, p_value,
+new_poorly_covered, change_code) and changes.json (counts, how the diagnostics moved,
+warnings); every field in docs/outputs.md. Folders written by earlier versions are read.
 
 Changes: new to the pool (selected or not), newly selected, dropped (with the reasons that
 apply: its weight moved, its score moved, its p-value moved, or the pool grew so the BH line
@@ -57,14 +61,19 @@ struct Moved {
 
 #[derive(Debug, Serialize)]
 struct ChangesReport<'a> {
+    schema_version: u32,
     tool: crate::report::ToolInfo,
+    command_line: Vec<String>,
     previous_folder: String,
     #[serde(flatten)]
     counts: &'a ChangeCounts,
     diagnostics: Vec<Moved>,
     /// Settings that differ from the previous run's summary.json (empty when none do).
     setting_changes: Vec<SettingChange>,
+    /// Every warning as one line (the earlier form), worst first.
     warnings: Vec<String>,
+    /// The same warnings as objects, in the same order.
+    warning_details: Vec<Warning>,
 }
 
 /// One setting that differs between the previous run and this one.
@@ -78,6 +87,7 @@ struct SettingChange {
 /// The settings compared with the previous run, and where summary.json keeps them.
 const SETTINGS: &[(&str, &str)] = &[
     ("threshold", "/inputs/threshold"),
+    ("direction", "/threshold_rule/direction"),
     ("fdr", "/fdr"),
     ("procedure", "/procedure"),
     ("pruning", "/pruning"),
@@ -254,6 +264,93 @@ fn number_at(summary: &Value, pointer: &str) -> Option<f64> {
     summary.pointer(pointer).and_then(Value::as_f64)
 }
 
+/// A diagnostic's value for the console: counts as integers (`83`), the others at three
+/// significant digits (`0.541`).
+fn diagnostic_text(diagnostic: &str, value: f64) -> String {
+    if diagnostic.ends_with("_count") && value.fract() == 0.0 && value.abs() < 1e15 {
+        format!("{}", value as i64)
+    } else {
+        prose_number(value)
+    }
+}
+
+/// The rescreen's own warnings, worst first: changed settings (`medium`: the comparison
+/// mixes two causes), new poorly covered units (`medium`), units dropped only because the
+/// pool grew (`low`: expected, and explained).
+fn rescreen_warnings(
+    setting_changes: &[SettingChange],
+    counts: &ChangeCounts,
+    fdr: f64,
+) -> Vec<Warning> {
+    let mut warnings = Vec::new();
+    if !setting_changes.is_empty() {
+        warnings.push(
+            Warning::new(
+                "settings_changed",
+                Level::Medium,
+                "setting_changes",
+                format!(
+                    "settings differ from the previous run ({}): the units newly selected and \
+                     dropped below changed partly or wholly because of these settings, not only \
+                     because the pool grew; rerun with the previous settings to see what the \
+                     new units alone changed.",
+                    setting_changes
+                        .iter()
+                        .map(|c| format!("{} {} -> {}", c.setting, c.previous, c.current))
+                        .collect::<Vec<_>>()
+                        .join("; ")
+                ),
+            )
+            .measured(setting_changes.len() as f64, 0.0)
+            .titled("settings changed"),
+        );
+    }
+    if counts.new_poorly_covered > 0 {
+        warnings.push(
+            Warning::new(
+                "new_poorly_covered",
+                Level::Medium,
+                "new_poorly_covered",
+                format!(
+                    "{} of {} new pool units sit where the labeled set gives little support \
+                     (unreachable at FDR {} or a weight above every labeled weight): assay \
+                     some of them to extend coverage before trusting selections there.",
+                    counts.new_poorly_covered,
+                    counts.new_units,
+                    crate::selection::level_text(fdr)
+                ),
+            )
+            .measured(counts.new_poorly_covered as f64, 0.0)
+            .titled("new units poorly covered"),
+        );
+    }
+    if counts.dropped_pool_grew > 0 {
+        warnings.push(
+            Warning::new(
+                "dropped_pool_grew",
+                Level::Low,
+                "dropped_pool_grew",
+                format!(
+                    "{} previously selected units dropped only because the pool grew ({} -> {} \
+                     units): their p-values did not move, but the BH line q k / m is stricter \
+                     at every rank{}.",
+                    counts.dropped_pool_grew,
+                    counts.previous_pool,
+                    counts.current_pool,
+                    if setting_changes.is_empty() {
+                        ""
+                    } else {
+                        " (or the changed settings moved it)"
+                    }
+                ),
+            )
+            .measured(counts.dropped_pool_grew as f64, 0.0)
+            .titled("dropped as the pool grew"),
+        );
+    }
+    warnings
+}
+
 /// Run `rescreen`.
 pub fn run(args: RescreenArgs) -> Result<(), Failure> {
     let previous_dir = args.previous.clone();
@@ -296,10 +393,13 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
             weights: weighting.describe(),
         },
     );
+    describe_run(&mut summary, &config, &labeled, &pool);
     if let Some(fitted) = weighting.fitted() {
         add_shift(&mut summary, shift_section(fitted, &labeled.feature_names));
     }
-    summary.warnings.extend(shared_ids_warning(&labeled, &pool));
+    if let Some(w) = shared_ids_warning(&labeled, &pool) {
+        summary.add_warning(w);
+    }
     summary.unreliable_weights = unreliable;
     summary.dropped_missing_outcome_count = labeled.dropped_missing_outcome;
     summary.censored_outcome_count = labeled.censored_outcomes;
@@ -363,51 +463,21 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
             };
         }
     }
-    let mut warnings = Vec::new();
-    if !setting_changes.is_empty() {
-        warnings.push(format!(
-            "settings differ from the previous run ({}): the units newly selected and dropped \
-             below changed partly or wholly because of these settings, not only because the \
-             pool grew; rerun with the previous settings to see what the new units alone \
-             changed.",
-            setting_changes
-                .iter()
-                .map(|c| format!("{} {} -> {}", c.setting, c.previous, c.current))
-                .collect::<Vec<_>>()
-                .join("; ")
-        ));
-    }
-    if counts.new_poorly_covered > 0 {
-        warnings.push(format!(
-            "{} of {} new pool units sit where the labeled set gives little support \
-             (unreachable at FDR {} or a weight above every labeled weight): assay some of \
-             them to extend coverage before trusting selections there.",
-            counts.new_poorly_covered, counts.new_units, outcome.settings.fdr
-        ));
-    }
-    if counts.dropped_pool_grew > 0 {
-        warnings.push(format!(
-            "{} previously selected units dropped only because the pool grew ({} -> {} units): \
-             their p-values did not move, but the BH line q k / m is stricter at every rank{}.",
-            counts.dropped_pool_grew,
-            counts.previous_pool,
-            counts.current_pool,
-            if setting_changes.is_empty() {
-                ""
-            } else {
-                " (or the changed settings moved it)"
-            }
-        ));
-    }
-    warnings.extend(summary.warnings.iter().cloned());
+    let warnings = rescreen_warnings(&setting_changes, &counts, outcome.settings.fdr);
+    let mut details = warnings;
+    details.extend(summary.warning_details.iter().cloned());
+    crate::warning::worst_first(&mut details);
 
     let report = ChangesReport {
+        schema_version: crate::report::SCHEMA_VERSION,
         tool: crate::report::tool_info(),
+        command_line: summary.command_line.clone(),
         previous_folder: previous_dir.display().to_string(),
         counts: &counts,
         diagnostics,
         setting_changes,
-        warnings,
+        warnings: details.iter().map(Warning::line).collect(),
+        warning_details: details,
     };
     let mut changes = csv::Writer::from_writer(Vec::new());
     changes
@@ -418,6 +488,7 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
             "previous_p_value",
             "p_value",
             "new_poorly_covered",
+            "change_code",
         ])
         .expect("write to memory");
     for row in &rows {
@@ -430,14 +501,17 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
                     .map_or(String::new(), |p| p.to_string()),
                 row.p_value.map_or(String::new(), |p| p.to_string()),
                 row.new_poorly_covered.to_string(),
+                row.change.code().to_string(),
             ])
             .expect("write to memory");
     }
+    let columns = PoolColumns::of(&pool, config.direction);
     let mut files = OutputSet::new();
     files.add(
         "candidates.csv",
-        candidates_csv(&pool.ids, &outcome, summary.unreliable_weights.is_some()),
+        candidates_csv(&columns, &outcome, summary.unreliable_weights.is_some()),
     );
+    files.add("shortlist.csv", shortlist_csv(&columns, &outcome));
     files.add(
         "summary.json",
         serde_json::to_vec_pretty(&summary)
@@ -483,11 +557,11 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         );
         let _ = writeln!(
             text,
-            "  kept {}, newly selected {} (+{} new units), dropped {} (weight moved {}, score \
-             moved {}, p-value moved {}, only the pool grew {})",
+            "  kept {}, newly selected {} (in the pool before), new units selected {}, dropped \
+             {} (weight moved {}, score moved {}, p-value moved {}, only the pool grew {})",
             counts.kept,
             counts.newly_selected,
-            counts.new_selected,
+            counts.new_units_selected,
             counts.dropped,
             counts.dropped_weight_moved,
             counts.dropped_score_moved,
@@ -495,7 +569,8 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
             counts.dropped_pool_grew
         );
         for m in &report.diagnostics {
-            let show = |v: Option<f64>| v.map_or("-".to_string(), |x| format!("{x:.4}"));
+            let show =
+                |v: Option<f64>| v.map_or("-".to_string(), |x| diagnostic_text(m.diagnostic, x));
             let _ = writeln!(
                 text,
                 "  {:<22} {:>12} -> {:>12}",
@@ -512,7 +587,9 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         }
         let _ = writeln!(
             text,
-            "wrote candidates.csv, summary.json, changes.csv and changes.json to {}",
+            "wrote shortlist.csv (the {} selected units, best first), candidates.csv, \
+             summary.json, changes.csv and changes.json to {}",
+            counts.selected,
             config.out.display()
         );
         if config.report {

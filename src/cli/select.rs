@@ -1,19 +1,20 @@
 //! `weighbridge select`: read a labeled file and a pool file, decide the weights (none,
 //! given in a column, or fitted by the domain classifier with `--fit-weights`), compute
-//! weighted conformal p-values, select a shortlist with FDR control, write `candidates.csv`
-//! and `summary.json` to the output folder and print a short summary.
+//! weighted conformal p-values, select a shortlist with FDR control, write `shortlist.csv`,
+//! `candidates.csv` and `summary.json` to the output folder and print a short summary.
 
 use crate::io::OutputSet;
 use crate::report::{
-    add_shift, candidates_csv, select_summary, shift_section, text_summary, RunInputs,
+    add_shift, candidates_csv, select_summary, shift_section, shortlist_csv, text_summary,
+    PoolColumns, RunInputs,
 };
 use crate::selection::pipeline::{run_selection, LabeledInput, PoolInput, SelectError};
 use crate::shift::weighting::WeightSource;
 
 use super::batch_design::{apply_design, read_design};
 use super::common::{
-    obtain_run_weights, read_inputs, reliability_gate, report_pointer, selection_inputs,
-    selection_report_page, shared_ids_warning, weighting_is_fitted,
+    describe_run, obtain_run_weights, read_inputs, reliability_gate, report_pointer,
+    selection_inputs, selection_report_page, shared_ids_warning, weighting_is_fitted,
 };
 pub use super::common::{SelectArgs, SelectConfig};
 use super::{commit_outputs, open_output, print_stdout, Failure, PhaseTimer, StepStatus};
@@ -115,23 +116,30 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
         },
     };
     let mut summary = select_summary(&outcome, inputs);
+    describe_run(&mut summary, &config, labeled, pool);
     if let Some(d) = design.as_ref() {
-        summary.warnings.extend(d.warnings.iter().cloned());
+        for w in &d.warnings {
+            summary.add_warning(w.clone());
+        }
     }
     if let Some(fitted) = weighting.fitted() {
         add_shift(&mut summary, shift_section(fitted, &labeled.feature_names));
     }
-    summary.warnings.extend(shared_ids_warning(labeled, pool));
+    if let Some(w) = shared_ids_warning(labeled, pool) {
+        summary.add_warning(w);
+    }
     summary.unreliable_weights = unreliable;
     (
         summary.dropped_missing_outcome_count,
         summary.censored_outcome_count,
     ) = outcome_counts;
+    let columns = PoolColumns::of(pool, config.direction);
     let mut files = OutputSet::new();
     files.add(
         "candidates.csv",
-        candidates_csv(&pool.ids, &outcome, summary.unreliable_weights.is_some()),
+        candidates_csv(&columns, &outcome, summary.unreliable_weights.is_some()),
     );
+    files.add("shortlist.csv", shortlist_csv(&columns, &outcome));
     let json = serde_json::to_vec_pretty(&summary)
         .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?;
     files.add("summary.json", json);
@@ -154,9 +162,11 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
     timer.mark("write outputs");
     drop(status);
     if !config.quiet {
-        let mut text = text_summary(&summary, &pool.ids, &outcome);
+        let mut text = text_summary(&summary, &columns, &outcome);
         text.push_str(&format!(
-            "wrote {} and {}\n",
+            "wrote {} (the {} selected units, best first), {} and {}\n",
+            config.out.join("shortlist.csv").display(),
+            summary.selected_count,
             config.out.join("candidates.csv").display(),
             config.out.join("summary.json").display()
         ));

@@ -338,6 +338,13 @@ pub fn run(args: ShiftArgs) -> Result<(), Failure> {
             pool_file: config.pool_path.display().to_string(),
         },
     );
+    let mut report = report;
+    report.command_line = super::command_line();
+    report.columns = Some(crate::report::Columns::of(
+        &config.read,
+        &labeled.feature_names,
+        &[],
+    ));
     let summary = &report.shift.summary;
     let plot_failure = |e: crate::report::plots::PlotError| Failure::Internal(e.to_string());
     let calibration_weights = weighting

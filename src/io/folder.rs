@@ -43,6 +43,7 @@ pub const LOCK_WAIT: Duration = Duration::from_secs(10);
 /// are in [`DEMO_INPUTS`] instead.
 const KNOWN_OUTPUTS: &[&str] = &[
     "candidates.csv",
+    "shortlist.csv",
     "summary.json",
     "report.html",
     "shift.json",

@@ -9,12 +9,103 @@ use std::fmt::Write as _;
 
 use serde::Serialize;
 
+use crate::conformal::score::Direction;
+use crate::io::read::KeptColumns;
+use crate::io::{ReadOptions, UnitTable};
 use crate::selection::draw::DrawSummary;
 use crate::selection::level_curve::LevelPoint;
-use crate::selection::pipeline::{draw_sentence, draw_severity, SelectionOutcome};
+use crate::selection::pipeline::{draw_level, draw_sentence, draw_severity, SelectionOutcome};
 use crate::selection::resolution::Resolution;
 use crate::shift::weighting::{fit_rows_statement, FittedWeights};
 use crate::shift::{FeatureBalance, Severity, ShiftOptions, ShiftSummary, ShiftWarning};
+use crate::warning::{prose_number, Level, Warning};
+
+/// `schema_version` of every JSON output: the version of the documented shape
+/// (docs/outputs.md). It changes only when a key is renamed, removed or changes type;
+/// added keys keep it. 1 is the first versioned shape.
+pub const SCHEMA_VERSION: u32 = 1;
+
+/// The column names a run used (`columns` in the JSON outputs): as given on the command
+/// line, features resolved to names.
+#[derive(Clone, Debug, Default, PartialEq, Serialize)]
+pub struct Columns {
+    pub id: String,
+    /// Outcome column of the labeled file (null for commands that read none).
+    pub outcome: Option<String>,
+    /// Prediction column (null for `shift`, which reads none).
+    pub prediction: Option<String>,
+    pub threshold_column: Option<String>,
+    pub weight_column: Option<String>,
+    /// Feature columns, ranges resolved (empty when none are used).
+    pub features: Vec<String>,
+    /// Pass-through columns (`--keep-columns`), empty when none.
+    pub keep_columns: Vec<String>,
+}
+
+impl Columns {
+    /// The columns of `read` with the resolved `features` and `kept` names.
+    pub fn of(read: &ReadOptions, features: &[String], kept: &[String]) -> Self {
+        Columns {
+            id: read.id.clone(),
+            outcome: read.outcome.clone(),
+            prediction: (!read.prediction.is_empty()).then(|| read.prediction.clone()),
+            threshold_column: read.threshold_column.clone(),
+            weight_column: read.weight_column.clone(),
+            features: features.to_vec(),
+            keep_columns: if kept.is_empty() {
+                read.keep_columns.clone()
+            } else {
+                kept.to_vec()
+            },
+        }
+    }
+}
+
+/// Which units are interesting (`threshold_rule` in the JSON outputs): outcome above or
+/// below one value, or a per-unit threshold column.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct ThresholdRule {
+    /// The one threshold (`--threshold`); absent with a threshold column.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub value: Option<f64>,
+    /// The per-unit threshold column (`--threshold-column`); absent with one value.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub column: Option<String>,
+    /// `above` (default) or `below` (`--lower-is-better`).
+    pub direction: &'static str,
+}
+
+impl ThresholdRule {
+    /// The rule of a run: `column` wins over `value` (as in the selection).
+    pub fn new(value: Option<f64>, column: Option<&str>, direction: Direction) -> Self {
+        ThresholdRule {
+            value: if column.is_some() { None } else { value },
+            column: column.map(str::to_string),
+            direction: direction.word(),
+        }
+    }
+
+    /// The rule in the user's words: "outcome above 6.5", "outcome below the threshold in
+    /// column `c`".
+    pub fn words(&self) -> String {
+        match (&self.column, self.value) {
+            (Some(column), _) => format!(
+                "outcome {} the threshold in column `{column}`",
+                self.direction
+            ),
+            (None, Some(value)) => format!("outcome {} {}", self.direction, value_text(value)),
+            (None, None) => format!("outcome {} its threshold", self.direction),
+        }
+    }
+}
+
+/// A threshold as the user typed it: shortest round-trip form (6.5, 100, 1e-7).
+fn value_text(v: f64) -> String {
+    ryu::Buffer::new()
+        .format(v)
+        .trim_end_matches(".0")
+        .to_string()
+}
 
 /// The cautions every output carries (design.md section 1).
 pub const CAUTIONS: [&str; 6] = [
@@ -62,11 +153,21 @@ pub struct RunInputs {
     pub weights: String,
 }
 
-/// The JSON summary of one selection run (`summary.json`).
+/// The JSON summary of one selection run (`summary.json`; every key in docs/outputs.md).
 #[derive(Clone, Debug, Serialize)]
 pub struct SelectSummary {
+    /// [`SCHEMA_VERSION`].
+    pub schema_version: u32,
     pub tool: ToolInfo,
+    /// The command line of the run (argv, program name first); empty when not run from
+    /// the command line.
+    pub command_line: Vec<String>,
     pub inputs: RunInputs,
+    /// The threshold as numbers: `{value, direction}` or `{column, direction}` (`inputs.
+    /// threshold` keeps the earlier string). Null when not known.
+    pub threshold_rule: Option<ThresholdRule>,
+    /// The column names used; null when not known.
+    pub columns: Option<Columns>,
     pub n_labeled: usize,
     pub n_pool: usize,
     pub fdr: f64,
@@ -83,6 +184,8 @@ pub struct SelectSummary {
     /// `severe` / `caution` / `note` when the shortlist depends on the draw (by its empty
     /// probability), null otherwise.
     pub draw_severity: Option<&'static str>,
+    /// The same on the ordered scale (`low`, `medium`, `high`), null when fixed.
+    pub draw_level: Option<Level>,
     /// The draw's consequences in one sentence, null when the shortlist is fixed.
     pub draw_statement: Option<String>,
     /// Pool units at the p-value floor, which the labeled set cannot rank: `floor_count`,
@@ -113,13 +216,25 @@ pub struct SelectSummary {
     /// Set when the fitted weights were unreliable and the run went ahead only because of
     /// `--allow-unreliable-weights`: which diagnostics, and what that means. Null otherwise.
     pub unreliable_weights: Option<UnreliableMark>,
+    /// Every warning as one line (the earlier form), worst first.
     pub warnings: Vec<String>,
+    /// The same warnings as objects `{code, severity, level, level_rank, diagnostic,
+    /// value, threshold, message}`, in the same order.
+    pub warning_details: Vec<Warning>,
     pub cautions: Vec<&'static str>,
     /// Labeled rows left out because their outcome was a missing-value token
     /// (`--missing-outcome drop`; set by the command from the labeled table).
     pub dropped_missing_outcome_count: usize,
     /// Labeled outcomes given as censored values (`>x`, `<=x`, ...) and used by their bound.
     pub censored_outcome_count: usize,
+}
+
+impl SelectSummary {
+    /// Append a warning in both forms (`warnings` and `warning_details`).
+    pub fn add_warning(&mut self, warning: Warning) {
+        self.warnings.push(warning.line());
+        self.warning_details.push(warning);
+    }
 }
 
 /// The mark of a run allowed through on unreliable fitted weights.
@@ -169,8 +284,12 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         )
     });
     SelectSummary {
+        schema_version: SCHEMA_VERSION,
         tool: tool_info(),
+        command_line: Vec::new(),
         inputs,
+        threshold_rule: None,
+        columns: None,
         n_labeled: outcome.n_labeled,
         n_pool: outcome.scores.len(),
         fdr: s.fdr,
@@ -184,6 +303,7 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         draw_severity: draw_statement
             .is_some()
             .then(|| draw_severity(&outcome.draw)),
+        draw_level: draw_statement.is_some().then(|| draw_level(&outcome.draw)),
         draw_statement,
         resolution: outcome.resolution.clone(),
         level_curve: outcome.level_curve.clone(),
@@ -200,34 +320,51 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         labeled_ess_fraction: outcome.labeled_ess / outcome.n_labeled as f64,
         shift: None,
         unreliable_weights: None,
-        warnings: outcome.warnings.clone(),
+        warnings: outcome.warnings.iter().map(Warning::line).collect(),
+        warning_details: outcome.warnings.clone(),
         cautions: CAUTIONS.to_vec(),
         dropped_missing_outcome_count: 0,
         censored_outcome_count: 0,
     }
 }
 
-/// Start of the selection's warning about unreachable units (`crate::selection::pipeline`), repeated by
-/// the shift diagnostic `unreachable_share`.
-const SELECTION_UNREACHABLE_PREFIX: &str = "unreachable units:";
-/// Start of the selection's warning about the effective sample size, repeated by the shift
-/// diagnostic `ess_fraction`.
-const SELECTION_ESS_PREFIX: &str = "effective sample size:";
+/// Codes of the selection's warnings that a shift warning repeats (selection code, shift
+/// diagnostic): the effective sample size and the unreachable units.
+const REPEATED_BY_SHIFT: [(&str, &str); 2] = [
+    ("labeled_ess_low", "ess_fraction"),
+    ("unreachable_units", "unreachable_share"),
+];
 
 /// Fold the shift diagnostics of fitted weights into a selection summary: the `shift`
-/// object, and the shift warnings first (they are the worst: weights that cannot be trusted
-/// make every count below them doubtful), in their documented worst-first order, followed
-/// by the selection's own warnings. A selection warning that repeats a shift warning (the
+/// object, and the warnings worst first by level, the shift warnings first among equals
+/// (weights that cannot be trusted make every count below them doubtful) in their
+/// documented order, then the selection's own. A selection warning that repeats a shift warning (the
 /// effective sample size, unreachable units) is dropped.
 pub fn add_shift(summary: &mut SelectSummary, section: ShiftSection) {
     let named = |d: &str| section.summary.warnings.iter().any(|w| w.diagnostic == d);
-    let repeats = |w: &String| {
-        (named("ess_fraction") && w.starts_with(SELECTION_ESS_PREFIX))
-            || (named("unreachable_share") && w.starts_with(SELECTION_UNREACHABLE_PREFIX))
+    let repeats = |w: &Warning| {
+        REPEATED_BY_SHIFT
+            .iter()
+            .any(|&(code, diagnostic)| w.code == code && named(diagnostic))
     };
-    let mut warnings: Vec<String> = section.summary.warnings.iter().map(warning_line).collect();
-    warnings.extend(summary.warnings.iter().filter(|w| !repeats(w)).cloned());
-    summary.warnings = warnings;
+    let mut details: Vec<Warning> = section
+        .summary
+        .warnings
+        .iter()
+        .map(ShiftWarning::to_warning)
+        .collect();
+    let mut lines: Vec<String> = section.summary.warnings.iter().map(warning_line).collect();
+    // The summary's lines and objects are parallel; keep them so.
+    for (line, warning) in summary.warnings.iter().zip(&summary.warning_details) {
+        if !repeats(warning) {
+            lines.push(line.clone());
+            details.push(warning.clone());
+        }
+    }
+    // Worst first across both sources; among equals the shift's come first.
+    let mut paired: Vec<(String, Warning)> = lines.into_iter().zip(details).collect();
+    paired.sort_by_key(|p| std::cmp::Reverse(p.1.level));
+    (summary.warnings, summary.warning_details) = paired.into_iter().unzip();
     summary.shift = Some(section);
 }
 
@@ -238,48 +375,151 @@ pub fn unselectable_reason(outcome: &SelectionOutcome, j: usize) -> String {
     }
     let w = outcome.weights[j];
     format!(
-        "its p-value can never go below {:.4} = w/(W+w) with weight {:.4e}, which is above \
-         the FDR level {}: the labeled set has too little weight near this unit",
-        w / (outcome.total_labeled_weight + w),
-        w,
+        "its p-value can never go below {} = w/(W+w) with weight {} (labeled total W = {}), \
+         which is above the FDR level {}: the labeled set has too little weight near this unit",
+        prose_number(w / (outcome.total_labeled_weight + w)),
+        prose_number(w),
+        prose_number(outcome.total_labeled_weight),
         crate::selection::level_text(outcome.settings.fdr)
     )
 }
 
-/// `candidates.csv`: one row per pool unit, in input order.
+/// The pool side of a run's outputs: ids, predictions in the user's units, pass-through
+/// columns, and which side of the threshold is interesting.
+#[derive(Clone, Copy, Debug)]
+pub struct PoolColumns<'a> {
+    pub ids: &'a [String],
+    /// The predictions as read (the user's units, not negated for `--lower-is-better`).
+    pub prediction: &'a [f64],
+    /// `--keep-columns` cells, copied verbatim.
+    pub kept: &'a KeptColumns,
+    pub direction: Direction,
+}
+
+impl<'a> PoolColumns<'a> {
+    /// The columns of a pool table.
+    pub fn of(table: &'a UnitTable, direction: Direction) -> Self {
+        PoolColumns {
+            ids: &table.ids,
+            prediction: &table.prediction,
+            kept: &table.kept,
+            direction,
+        }
+    }
+}
+
+/// The selected units, best first: by prediction, higher first for [`Direction::Above`]
+/// and lower first for [`Direction::Below`], ties in input order.
 ///
-/// Columns: `id, score, weight, p_value, selected`, then for conditional calibration
-/// `first_step, conditional_count`, then `never_selectable_because`, `selection_probability`
-/// (over the pruning draw, the run's p-values held fixed; 0 or 1 without a draw), `q_value`
-/// (BH-adjusted p-value of the run's own p-values) and `q_value_by` (BY-adjusted, filled for
-/// `--procedure by` runs only).
+/// # Panics
+/// If `prediction` and `selected` differ in length.
+pub fn shortlist_order(prediction: &[f64], selected: &[bool], direction: Direction) -> Vec<usize> {
+    assert_eq!(
+        prediction.len(),
+        selected.len(),
+        "prediction / selected length"
+    );
+    let mut chosen: Vec<usize> = (0..selected.len()).filter(|&j| selected[j]).collect();
+    // A stable sort keeps input order among equal predictions.
+    match direction {
+        Direction::Above => chosen.sort_by(|&a, &b| prediction[b].total_cmp(&prediction[a])),
+        Direction::Below => chosen.sort_by(|&a, &b| prediction[a].total_cmp(&prediction[b])),
+    }
+    chosen
+}
+
+/// Names of the columns we write in `candidates.csv` and `shortlist.csv`; a kept column of
+/// the same name is written as `input_NAME` so that every header name is unique.
+const OUR_COLUMNS: [&str; 17] = [
+    "id",
+    "score",
+    "weight",
+    "p_value",
+    "selected",
+    "first_step",
+    "conditional_count",
+    "never_selectable_because",
+    "selection_probability",
+    "q_value",
+    "q_value_by",
+    "unreliable_weights",
+    "prediction",
+    "shortlist_rank",
+    "rank",
+    "input_id",
+    "input_prediction",
+];
+
+/// Header names of the kept columns: verbatim, or `input_NAME` when NAME is one of ours.
+pub fn kept_header(names: &[String]) -> Vec<String> {
+    names
+        .iter()
+        .map(|n| {
+            if OUR_COLUMNS.contains(&n.as_str()) {
+                format!("input_{n}")
+            } else {
+                n.clone()
+            }
+        })
+        .collect()
+}
+
+/// The columns of `candidates.csv`, the same whatever the procedure.
+pub const CANDIDATES_COLUMNS: [&str; 14] = [
+    "id",
+    "score",
+    "weight",
+    "p_value",
+    "selected",
+    "first_step",
+    "conditional_count",
+    "never_selectable_because",
+    "selection_probability",
+    "q_value",
+    "q_value_by",
+    "unreliable_weights",
+    "prediction",
+    "shortlist_rank",
+];
+
+/// `candidates.csv`: one row per pool unit, in input order, with the same columns whatever
+/// the procedure ([`CANDIDATES_COLUMNS`], then the kept columns; docs/outputs.md).
+///
+/// Columns: `id, score, weight, p_value, selected, first_step, conditional_count`
+/// (conditional calibration only; empty cells for BH and BY), `never_selectable_because`
+/// (empty unless unreachable), `selection_probability` (over the pruning draw, the run's
+/// p-values held fixed; 0 or 1 without a draw), `q_value` (BH-adjusted p-value of the
+/// run's own p-values), `q_value_by` (BY-adjusted, filled for `--procedure by` runs only),
+/// `unreliable_weights` (`true` on every row of a run allowed through on unreliable fitted
+/// weights), `prediction` (as read), `shortlist_rank` (the unit's line in shortlist.csv,
+/// empty when not selected), then the `--keep-columns` cells verbatim.
 /// Floats are written in their shortest round-trip form (ryu), so the same run gives the
 /// same bytes and reading them back gives the same numbers.
 ///
 /// # Panics
-/// If `ids` and the outcome differ in length.
-///
-/// The last column, `unreliable_weights`, is `true` on every row of a run allowed through
-/// on unreliable fitted weights (`--allow-unreliable-weights`), `false` otherwise.
-pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome, unreliable: bool) -> Vec<u8> {
+/// If the pool columns and the outcome differ in length.
+pub fn candidates_csv(
+    pool: &PoolColumns<'_>,
+    outcome: &SelectionOutcome,
+    unreliable: bool,
+) -> Vec<u8> {
+    let ids = pool.ids;
     assert_eq!(ids.len(), outcome.scores.len(), "ids / outcome length");
-    let mut writer = csv::Writer::from_writer(Vec::with_capacity(ids.len() * 64));
-    let conditional = outcome.conditional_count.is_some();
-    let mut header = vec!["id", "score", "weight", "p_value", "selected"];
-    if conditional {
-        header.extend(["first_step", "conditional_count"]);
-    }
-    header.extend([
-        "never_selectable_because",
-        "selection_probability",
-        "q_value",
-        "q_value_by",
-        "unreliable_weights",
-    ]);
+    assert_eq!(ids.len(), pool.prediction.len(), "ids / predictions length");
+    let mut writer = csv::Writer::from_writer(Vec::with_capacity(ids.len() * 96));
+    let mut header: Vec<String> = CANDIDATES_COLUMNS.iter().map(|c| c.to_string()).collect();
+    header.extend(kept_header(&pool.kept.names));
     writer.write_record(&header).expect("write to memory");
+    let mut rank = vec![0usize; ids.len()];
+    for (r, &j) in shortlist_order(pool.prediction, &outcome.selected, pool.direction)
+        .iter()
+        .enumerate()
+    {
+        rank[j] = r + 1;
+    }
     let mut floats = ryu::Buffer::new();
     let mut integers = itoa::Buffer::new();
-    let mut record = csv::ByteRecord::with_capacity(128, header.len());
+    let mut record = csv::ByteRecord::with_capacity(160, header.len());
     for (j, id) in ids.iter().enumerate() {
         record.clear();
         record.push_field(id.as_bytes());
@@ -287,9 +527,15 @@ pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome, unreliable: bo
             record.push_field(floats.format(value).as_bytes());
         }
         record.push_field(bool_text(outcome.selected[j]));
-        if let (Some(first), Some(count)) = (&outcome.first_step, &outcome.conditional_count) {
-            record.push_field(bool_text(first[j]));
-            record.push_field(integers.format(count[j]).as_bytes());
+        match (&outcome.first_step, &outcome.conditional_count) {
+            (Some(first), Some(count)) => {
+                record.push_field(bool_text(first[j]));
+                record.push_field(integers.format(count[j]).as_bytes());
+            }
+            _ => {
+                record.push_field(b"");
+                record.push_field(b"");
+            }
         }
         if outcome.unreachable[j] {
             record.push_field(unselectable_reason(outcome, j).as_bytes());
@@ -307,6 +553,65 @@ pub fn candidates_csv(ids: &[String], outcome: &SelectionOutcome, unreliable: bo
             None => record.push_field(b""),
         }
         record.push_field(bool_text(unreliable));
+        record.push_field(floats.format(pool.prediction[j]).as_bytes());
+        if rank[j] > 0 {
+            record.push_field(integers.format(rank[j]).as_bytes());
+        } else {
+            record.push_field(b"");
+        }
+        for cell in pool.kept.row(j) {
+            record.push_field(cell.as_bytes());
+        }
+        writer.write_byte_record(&record).expect("write to memory");
+    }
+    writer.into_inner().expect("flush to memory")
+}
+
+/// The columns of `shortlist.csv` before the kept columns.
+pub const SHORTLIST_COLUMNS: [&str; 7] = [
+    "rank",
+    "id",
+    "prediction",
+    "p_value",
+    "q_value",
+    "selection_probability",
+    "weight",
+];
+
+/// `shortlist.csv`: the selected units only, best first ([`shortlist_order`]), with
+/// [`SHORTLIST_COLUMNS`] and then the `--keep-columns` cells verbatim (CSV-quoted where
+/// needed). `rank` counts from 1; `p_value` is the p-value the procedure used, `q_value`
+/// its BH adjustment, `selection_probability` the unit's probability of selection over the
+/// pruning draw (1 without a draw). A header only when nothing is selected.
+///
+/// # Panics
+/// If the pool columns and the outcome differ in length.
+pub fn shortlist_csv(pool: &PoolColumns<'_>, outcome: &SelectionOutcome) -> Vec<u8> {
+    assert_eq!(pool.ids.len(), outcome.scores.len(), "ids / outcome length");
+    let order = shortlist_order(pool.prediction, &outcome.selected, pool.direction);
+    let mut writer = csv::Writer::from_writer(Vec::with_capacity(64 + order.len() * 96));
+    let mut header: Vec<String> = SHORTLIST_COLUMNS.iter().map(|c| c.to_string()).collect();
+    header.extend(kept_header(&pool.kept.names));
+    writer.write_record(&header).expect("write to memory");
+    let mut floats = ryu::Buffer::new();
+    let mut integers = itoa::Buffer::new();
+    let mut record = csv::ByteRecord::with_capacity(160, header.len());
+    for (r, &j) in order.iter().enumerate() {
+        record.clear();
+        record.push_field(integers.format(r + 1).as_bytes());
+        record.push_field(pool.ids[j].as_bytes());
+        for value in [
+            pool.prediction[j],
+            outcome.p_values[j],
+            outcome.q_values[j],
+            outcome.draw.selection_probability[j],
+            outcome.weights[j],
+        ] {
+            record.push_field(floats.format(value).as_bytes());
+        }
+        for cell in pool.kept.row(j) {
+            record.push_field(cell.as_bytes());
+        }
         writer.write_byte_record(&record).expect("write to memory");
     }
     writer.into_inner().expect("flush to memory")
@@ -321,7 +626,14 @@ fn bool_text(value: bool) -> &'static [u8] {
 }
 
 /// The short summary printed on stdout.
-pub fn text_summary(summary: &SelectSummary, ids: &[String], outcome: &SelectionOutcome) -> String {
+///
+/// Names what "interesting" means in the user's words (`threshold_rule`: "outcome below
+/// 100" with `--lower-is-better`), and the top of shortlist.csv in its order.
+pub fn text_summary(
+    summary: &SelectSummary,
+    pool: &PoolColumns<'_>,
+    outcome: &SelectionOutcome,
+) -> String {
     let mut out = String::new();
     let s = summary;
     let _ = writeln!(
@@ -352,19 +664,26 @@ pub fn text_summary(summary: &SelectSummary, ids: &[String], outcome: &Selection
         if !severe.is_empty() {
             let _ = writeln!(
                 out,
-                "  WARNING: the fitted weights fail {} severe check{} ({}; details below, worst \
-                 first): read them before using this shortlist",
+                "  WARNING: the fitted weights fail {} check{} of high concern ({}; details \
+                 below, worst first): read them before using this shortlist",
                 severe.len(),
                 if severe.len() == 1 { "" } else { "s" },
                 severe.join(", ")
             );
         }
     }
+    if let Some(rule) = &s.threshold_rule {
+        let _ = writeln!(
+            out,
+            "  interesting units: {}; the shortlist holds the units likely to be so",
+            rule.words()
+        );
+    }
     if let Some(statement) = &s.draw_statement {
         let _ = writeln!(
             out,
-            "  {}: the shortlist depends on a random draw: {statement}",
-            s.draw_severity.unwrap_or("caution").to_uppercase()
+            "  the shortlist depends on a random draw (concern: {}): {statement}",
+            s.draw_level.unwrap_or(Level::Medium).word()
         );
     }
     let _ = writeln!(
@@ -397,12 +716,15 @@ pub fn text_summary(summary: &SelectSummary, ids: &[String], outcome: &Selection
     );
     let _ = writeln!(out, "  seed: {}", s.seed);
     if s.selected_count > 0 {
-        let mut chosen: Vec<usize> = (0..ids.len()).filter(|&j| outcome.selected[j]).collect();
-        chosen.sort_by(|&a, &b| outcome.p_values[a].total_cmp(&outcome.p_values[b]));
-        let shown: Vec<&str> = chosen.iter().take(10).map(|&j| ids[j].as_str()).collect();
+        let chosen = shortlist_order(pool.prediction, &outcome.selected, pool.direction);
+        let shown: Vec<&str> = chosen
+            .iter()
+            .take(10)
+            .map(|&j| pool.ids[j].as_str())
+            .collect();
         let _ = writeln!(
             out,
-            "  first selected (smallest p-values): {}{}",
+            "  top of shortlist.csv (best predicted first): {}{}",
             shown.join(", "),
             if chosen.len() > shown.len() {
                 ", ..."
@@ -485,17 +807,34 @@ pub struct ShiftInputs {
 /// `shift.json`: tool, inputs, settings and every diagnostic (see [`ShiftSection`]).
 #[derive(Clone, Debug, Serialize)]
 pub struct ShiftReport {
+    /// [`SCHEMA_VERSION`].
+    pub schema_version: u32,
     pub tool: ToolInfo,
+    /// The command line of the run (argv); empty when not run from the command line.
+    pub command_line: Vec<String>,
     pub inputs: ShiftInputs,
+    /// The column names used; null when not known.
+    pub columns: Option<Columns>,
+    /// The warnings (`warnings`, below) in the shape every output shares.
+    pub warning_details: Vec<Warning>,
     #[serde(flatten)]
     pub shift: ShiftSection,
 }
 
-/// Build `shift.json`'s content.
+/// Build `shift.json`'s content (`command_line` and `columns` are the caller's to fill).
 pub fn shift_report(section: ShiftSection, inputs: ShiftInputs) -> ShiftReport {
     ShiftReport {
+        schema_version: SCHEMA_VERSION,
         tool: tool_info(),
+        command_line: Vec::new(),
         inputs,
+        columns: None,
+        warning_details: section
+            .summary
+            .warnings
+            .iter()
+            .map(ShiftWarning::to_warning)
+            .collect(),
         shift: section,
     }
 }
@@ -601,20 +940,13 @@ pub(crate) fn shown(v: f64) -> String {
     }
 }
 
-fn severity_word(severity: Severity) -> &'static str {
-    match severity {
-        Severity::Severe => "severe",
-        Severity::Caution => "caution",
-    }
-}
-
-/// One shift warning as a line: the diagnostic, its severity, value and threshold, and what
-/// it means for the shortlist.
+/// One shift warning as a line: the diagnostic, its level of concern, value and
+/// threshold, and what it means for the shortlist.
 pub fn warning_line(w: &ShiftWarning) -> String {
     format!(
-        "{} ({}; value {}, threshold {}): {}",
+        "{} (concern: {}; value {}, threshold {}): {}",
         w.diagnostic,
-        severity_word(w.severity),
+        w.level.word(),
         shown(w.value),
         shown(w.threshold),
         w.message
@@ -679,9 +1011,16 @@ fn weight_reliability_lines(s: &ShiftSummary, lines: &mut DiagnosticLines) {
     line(
         "Pareto k-hat",
         format!(
-            "{} (reliable below {})",
+            "{} (reliable below {}): {}",
             shown(s.khat),
-            shown(s.khat_threshold)
+            shown(s.khat_threshold),
+            crate::shift::warnings::khat_reading(
+                s.khat,
+                s.khat_threshold,
+                s.weights.largest_weight_share,
+                s.ess,
+                s.calibration_rows
+            )
         ),
     );
 }
@@ -956,10 +1295,10 @@ mod tests {
         assert_eq!(shown(0.0), "0");
     }
 
-    /// The de-duplication in [`add_shift`] recognises the selection's warnings by how they
-    /// start; this pins those starts to what `crate::selection::pipeline` writes.
+    /// The de-duplication in [`add_shift`] recognises the selection's warnings by their
+    /// codes; this pins those codes to what `crate::selection::pipeline` writes.
     #[test]
-    fn selection_warning_prefixes_match_the_selection_module() {
+    fn selection_warning_codes_match_the_selection_module() {
         // 200 labeled units with weights 1 except a few huge ones: tiny ESS; pool units
         // with weights large relative to W: unreachable.
         let n = 200;
@@ -984,19 +1323,205 @@ mod tests {
             },
         )
         .unwrap();
-        assert!(
-            o.warnings
-                .iter()
-                .any(|x| x.starts_with(SELECTION_UNREACHABLE_PREFIX)),
-            "{:#?}",
-            o.warnings
+        for (code, _) in REPEATED_BY_SHIFT {
+            assert!(
+                o.warnings.iter().any(|x| x.code == code),
+                "{code}: {:#?}",
+                o.warnings
+            );
+        }
+        // Objects and lines stay parallel in the summary.
+        let summary = select_summary(&o, RunInputs::default());
+        assert_eq!(summary.warnings.len(), summary.warning_details.len());
+        for (line, w) in summary.warnings.iter().zip(&summary.warning_details) {
+            assert_eq!(line, &w.line());
+        }
+    }
+
+    /// A pool of four units, two selected, predictions with a tie, for the output tables.
+    fn four_unit_outcome() -> SelectionOutcome {
+        // 19 inactive labeled units (scores 0.5 - mu in [-0.45, 0.45]); BH at 0.2 with
+        // conservative p-values selects the pool units scoring below every labeled score
+        // (the hand example of `selection::pipeline`'s tests).
+        let y = vec![0.0; 19];
+        let mu: Vec<f64> = (1..=19).map(|i| i as f64 / 20.0).collect();
+        let options = SelectOptions {
+            fdr: 0.2,
+            procedure: crate::selection::pipeline::Procedure::Bh,
+            pvalues: Some(crate::conformal::pvalue::PValueKind::Conservative),
+            ..SelectOptions::default()
+        };
+        run_selection(
+            &options,
+            LabeledInput {
+                outcome: &y,
+                prediction: &mu,
+                thresholds: Thresholds::Constant(0.5),
+                weights: None,
+            },
+            PoolInput {
+                prediction: &[0.2, 0.99, 0.1, 0.995],
+                thresholds: Thresholds::Constant(0.5),
+                weights: None,
+            },
+        )
+        .unwrap()
+    }
+
+    #[test]
+    fn shortlist_order_is_best_first_with_ties_in_input_order() {
+        let prediction = [5.0, 7.0, 7.0, 1.0, 9.0];
+        let selected = [true, true, true, false, true];
+        assert_eq!(
+            shortlist_order(&prediction, &selected, Direction::Above),
+            [4, 1, 2, 0]
         );
-        assert!(
-            o.warnings
-                .iter()
-                .any(|x| x.starts_with(SELECTION_ESS_PREFIX)),
-            "{:#?}",
-            o.warnings
+        assert_eq!(
+            shortlist_order(&prediction, &selected, Direction::Below),
+            [0, 1, 2, 4]
         );
+        assert!(shortlist_order(&prediction, &[false; 5], Direction::Above).is_empty());
+    }
+
+    #[test]
+    fn shortlist_and_candidates_carry_kept_cells_verbatim() {
+        let o = four_unit_outcome();
+        assert_eq!(o.selected, [false, true, false, true]);
+        let ids: Vec<String> = ["a", "b", "c", "d"].map(String::from).to_vec();
+        let prediction = [0.2, 0.99, 0.1, 0.995];
+        let kept = KeptColumns {
+            names: vec!["smiles".to_string(), "score".to_string()],
+            values: ["C1=CC", "x", "CC(=O)O, salt", "y", "N", "z", "O\"q", "w"]
+                .map(String::from)
+                .to_vec(),
+        };
+        let pool = PoolColumns {
+            ids: &ids,
+            prediction: &prediction,
+            kept: &kept,
+            direction: Direction::Above,
+        };
+        let bytes = shortlist_csv(&pool, &o);
+        let mut reader = csv::Reader::from_reader(&bytes[..]);
+        let header: Vec<String> = reader.headers().unwrap().iter().map(String::from).collect();
+        // A kept column named like one of ours is renamed `input_NAME`.
+        assert_eq!(
+            header,
+            [
+                "rank",
+                "id",
+                "prediction",
+                "p_value",
+                "q_value",
+                "selection_probability",
+                "weight",
+                "smiles",
+                "input_score"
+            ]
+        );
+        let rows: Vec<csv::StringRecord> = reader.records().map(Result::unwrap).collect();
+        // d (0.995) before b (0.99); cells with commas and quotes come back verbatim.
+        assert_eq!((&rows[0][0], &rows[0][1]), ("1", "d"));
+        assert_eq!(&rows[0][7], "O\"q");
+        assert_eq!((&rows[1][0], &rows[1][1]), ("2", "b"));
+        assert_eq!(&rows[1][7], "CC(=O)O, salt");
+        // p = 1/20 for both (hand computation), q = BH-adjusted 0.05 * 4 / 2 = 0.1.
+        assert_eq!(rows[1][3].parse::<f64>().unwrap(), 0.05);
+        assert!((rows[1][4].parse::<f64>().unwrap() - 0.1).abs() < 1e-15);
+        assert_eq!(rows[1][5].parse::<f64>().unwrap(), 1.0);
+
+        let bytes = candidates_csv(&pool, &o, false);
+        let mut reader = csv::Reader::from_reader(&bytes[..]);
+        let header: Vec<String> = reader.headers().unwrap().iter().map(String::from).collect();
+        assert_eq!(header[..CANDIDATES_COLUMNS.len()], CANDIDATES_COLUMNS);
+        assert_eq!(
+            header[CANDIDATES_COLUMNS.len()..],
+            ["smiles", "input_score"]
+        );
+        let rows: Vec<csv::StringRecord> = reader.records().map(Result::unwrap).collect();
+        let column = |name: &str| header.iter().position(|h| h == name).unwrap();
+        let ranks: Vec<&str> = rows.iter().map(|r| &r[column("shortlist_rank")]).collect();
+        assert_eq!(ranks, ["", "2", "", "1"]);
+        // BH has no first step: the conditional-only cells are empty, not missing.
+        assert!(rows.iter().all(|r| r[column("first_step")].is_empty()));
+        assert!(rows
+            .iter()
+            .all(|r| r[column("conditional_count")].is_empty()));
+        assert_eq!(&rows[2][column("smiles")], "N");
+        assert_eq!(rows[3][column("prediction")].parse::<f64>().unwrap(), 0.995);
+    }
+
+    #[test]
+    fn empty_shortlist_is_a_header() {
+        let mut o = four_unit_outcome();
+        o.selected = vec![false; 4];
+        let ids: Vec<String> = ["a", "b", "c", "d"].map(String::from).to_vec();
+        let kept = KeptColumns::default();
+        let pool = PoolColumns {
+            ids: &ids,
+            prediction: &[0.2, 0.99, 0.1, 0.995],
+            kept: &kept,
+            direction: Direction::Below,
+        };
+        let text = String::from_utf8(shortlist_csv(&pool, &o)).unwrap();
+        assert_eq!(text, format!("{}\n", SHORTLIST_COLUMNS.join(",")));
+    }
+
+    #[test]
+    fn threshold_rules_in_the_users_words() {
+        let below = ThresholdRule::new(Some(100.0), None, Direction::Below);
+        assert_eq!(below.words(), "outcome below 100");
+        assert_eq!(
+            serde_json::to_value(&below).unwrap(),
+            serde_json::json!({"value": 100.0, "direction": "below"})
+        );
+        let column = ThresholdRule::new(None, Some("c"), Direction::Above);
+        assert_eq!(column.words(), "outcome above the threshold in column `c`");
+        assert_eq!(
+            serde_json::to_value(&column).unwrap(),
+            serde_json::json!({"column": "c", "direction": "above"})
+        );
+        assert_eq!(
+            ThresholdRule::new(Some(6.5), None, Direction::Above).words(),
+            "outcome above 6.5"
+        );
+    }
+
+    #[test]
+    fn text_summary_speaks_the_users_direction_and_names_the_shortlist() {
+        let o = four_unit_outcome();
+        let ids: Vec<String> = ["a", "b", "c", "d"].map(String::from).to_vec();
+        let prediction = [0.2, 0.99, 0.1, 0.995];
+        let kept = KeptColumns::default();
+        let mut summary = select_summary(&o, RunInputs::default());
+        summary.threshold_rule = Some(ThresholdRule::new(Some(0.5), None, Direction::Below));
+        let pool = PoolColumns {
+            ids: &ids,
+            prediction: &prediction,
+            kept: &kept,
+            direction: Direction::Below,
+        };
+        let text = text_summary(&summary, &pool, &o);
+        assert!(
+            text.contains("interesting units: outcome below 0.5"),
+            "{text}"
+        );
+        // Lower is better: b (0.99) before d (0.995).
+        assert!(
+            text.contains("top of shortlist.csv (best predicted first): b, d\n"),
+            "{text}"
+        );
+    }
+
+    #[test]
+    fn unreachable_reason_reads_at_three_digits() {
+        let mut o = four_unit_outcome();
+        o.unreachable[0] = true;
+        o.weights[0] = 33.302;
+        let reason = unselectable_reason(&o, 0);
+        // W = 19 labeled units of weight 1; 33.302 / (19 + 33.302) = 0.6367.
+        assert!(reason.contains("with weight 33.3 "), "{reason}");
+        assert!(reason.contains("go below 0.637 "), "{reason}");
+        assert!(!reason.contains("e1"), "{reason}");
     }
 }

@@ -23,6 +23,7 @@ use crate::selection::draw::{fixed_selection, DrawMethod, DrawSummary};
 use crate::selection::level_curve::{curve_levels, draw_of, level_curve, LevelPoint};
 use crate::selection::pruning::Pruning;
 use crate::selection::resolution::{self, Resolution};
+use crate::warning::{Level, Warning};
 
 /// Which multiple-testing procedure makes the shortlist.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize)]
@@ -253,7 +254,8 @@ pub struct SelectionOutcome {
     pub resolution: Resolution,
     /// The level curve, when asked for.
     pub level_curve: Option<Vec<LevelPoint>>,
-    pub warnings: Vec<String>,
+    /// Warnings about the selection, worst first.
+    pub warnings: Vec<Warning>,
 }
 
 /// Kish (1965) effective sample size `(sum w)^2 / sum w^2`.
@@ -517,103 +519,193 @@ fn weights_vary(labeled: Option<&[f64]>, pool: Option<&[f64]>) -> bool {
 /// Share of the labeled set below which the Kish ESS is flagged (common practice).
 pub const ESS_FRACTION_WARNING: f64 = 0.1;
 
-/// Plain-words warnings about the selection itself, most serious first. Shift
-/// diagnostics (AUC, k-hat, balance) add their own warnings when weights are fitted.
-fn selection_warnings(o: &SelectionOutcome) -> Vec<String> {
+/// Plain-words warnings about the selection itself, most serious first (by level; the
+/// order below among equals). Shift diagnostics (AUC, k-hat, balance) add their own
+/// warnings when weights are fitted.
+///
+/// Levels (our choice): unreachable units are `high` above 1% of the pool (the shift
+/// diagnostic's `unreachable_share` threshold) and `low` below; a small labeled effective
+/// sample size and an empty shortlist no unit could enter are `high`; BH with varying
+/// weights, deterministic pruning with varying weights and an empty shortlist are `medium`;
+/// a draw-dependent shortlist follows [`draw_level`].
+fn selection_warnings(o: &SelectionOutcome) -> Vec<Warning> {
     let m = o.scores.len();
     let q = o.settings.fdr;
     let qt = super::level_text(q);
     let mut warnings = Vec::new();
     if o.unreachable_count > 0 {
-        warnings.push(format!(
-            "unreachable units: {} of {} pool units ({:.1}%) can never be selected at FDR {}: \
-             their p-value floor w_j / (W + w_j) exceeds {} because their weight is large \
-             relative to the labeled set's total weight. The labeled set does not cover the \
-             region of the pool they come from; assay a few of them to extend coverage.",
-            o.unreachable_count,
-            m,
-            100.0 * o.unreachable_count as f64 / m as f64,
-            qt,
-            qt
-        ));
+        let share = o.unreachable_count as f64 / m as f64;
+        let level = if share > crate::shift::warnings::UNREACHABLE_SHARE_HIGH {
+            Level::High
+        } else {
+            Level::Low
+        };
+        warnings.push(
+            Warning::new(
+                "unreachable_units",
+                level,
+                "unreachable_count",
+                format!(
+                    "{} of {} pool units ({:.1}%) can never be selected at FDR {}: their \
+                     p-value floor w_j / (W + w_j) exceeds {} because their weight is large \
+                     relative to the labeled set's total weight. The labeled set does not \
+                     cover the region of the pool they come from; assay a few of them to \
+                     extend coverage.",
+                    o.unreachable_count,
+                    m,
+                    100.0 * share,
+                    qt,
+                    qt
+                ),
+            )
+            .measured(o.unreachable_count as f64, 0.0)
+            .titled("unreachable units"),
+        );
     }
     let ess_fraction = o.labeled_ess / o.n_labeled as f64;
     if o.weights_vary && ess_fraction < ESS_FRACTION_WARNING {
-        warnings.push(format!(
-            "effective sample size: the labeled weights are worth {:.1} equally weighted units \
-             ({:.1}% of {}), below the {:.0}% threshold (common practice). A few labeled units \
-             decide the p-values; the shortlist will be small and unstable.",
-            o.labeled_ess,
-            100.0 * ess_fraction,
-            o.n_labeled,
-            100.0 * ESS_FRACTION_WARNING
-        ));
+        warnings.push(
+            Warning::new(
+                "labeled_ess_low",
+                Level::High,
+                "labeled_ess_fraction",
+                format!(
+                    "the labeled weights are worth {:.1} equally weighted units ({:.1}% of {}), \
+                     below the {:.0}% threshold (common practice). A few labeled units decide \
+                     the p-values; the shortlist will be small and unstable.",
+                    o.labeled_ess,
+                    100.0 * ess_fraction,
+                    o.n_labeled,
+                    100.0 * ESS_FRACTION_WARNING
+                ),
+            )
+            .measured(ess_fraction, ESS_FRACTION_WARNING)
+            .titled("effective sample size"),
+        );
     }
     if o.weights_vary && o.settings.procedure == Procedure::Bh {
         warnings.push(
-            "BH on weighted p-values has no finite-sample FDR guarantee (the p-values need not \
-             be positively dependent); in simulation it exceeded the target by up to about 5% \
-             of q in adversarial settings. Use --procedure conditional for the guarantee."
-                .to_string(),
+            Warning::new(
+                "bh_weighted_no_guarantee",
+                Level::Medium,
+                "procedure",
+                "BH on weighted p-values has no finite-sample FDR guarantee (the p-values need \
+                 not be positively dependent); in simulation it exceeded the target by up to \
+                 about 5% of q in adversarial settings. Use --procedure conditional for the \
+                 guarantee."
+                    .to_string(),
+            )
+            .titled("BH with varying weights"),
         );
     }
     if o.settings.pruning == Some(Pruning::Deterministic) && o.weights_vary {
-        warnings.push(format!(
-            "deterministic pruning is nearly powerless once weights vary: {} units passed the \
-             first step but only {} survived pruning. Homogeneous pruning (the default) keeps \
-             the same guarantee with more power.",
-            o.first_step_count.unwrap_or(0),
-            o.selected_count
-        ));
-    }
-    if o.selected_count == 0 && o.unreachable_count == m {
-        warnings.push(format!(
-            "empty shortlist: no pool unit can be selected at FDR {qt} whatever its outcome: \
-             every unit's weight alone keeps its p-value above q (the smallest possible \
-             p-value is {:.4}). {}",
-            o.resolution.smallest_floor_pvalue,
-            if o.weights_vary {
-                "With these weights the pool lies where the labeled set has almost no weight \
-                 (little overlap); more labeled rows alone will not fix it, labeled rows like \
-                 the pool will."
-            } else {
-                "The labeled set is too small for this level: use more labeled rows or a \
-                 higher --fdr."
-            }
-        ));
-    } else if o.selected_count == 0 {
-        warnings.push(format!(
-            "empty shortlist: no pool unit was selected at FDR {qt}. BH on the weighted {} \
-             p-values would select {}.",
-            o.bh_pvalues.name(),
-            o.bh_selected_count
-        ));
-    }
-    if let Some(sentence) = draw_sentence(&o.draw, o.selected_count, o.settings.seed) {
-        // Severity follows the chance of an empty shortlist.
-        let severity = draw_severity(&o.draw);
-        warnings.insert(
-            0,
-            format!(
-                "shortlist decided by a random draw ({severity}): {sentence} Conditional \
-                 calibration keeps FDR <= q on average over the draw; a single screen gets one \
-                 draw. See `resolution` in summary.json for why and what would fix it."
-            ),
+        warnings.push(
+            Warning::new(
+                "deterministic_pruning_weak",
+                Level::Medium,
+                "selected_count",
+                format!(
+                    "deterministic pruning is nearly powerless once weights vary: {} units \
+                     passed the first step but only {} survived pruning. Homogeneous pruning \
+                     (the default) keeps the same guarantee with more power.",
+                    o.first_step_count.unwrap_or(0),
+                    o.selected_count
+                ),
+            )
+            .measured(
+                o.selected_count as f64,
+                o.first_step_count.unwrap_or(0) as f64,
+            )
+            .titled("deterministic pruning"),
         );
     }
+    if o.selected_count == 0 && o.unreachable_count == m {
+        warnings.push(
+            Warning::new(
+                "empty_shortlist_unreachable",
+                Level::High,
+                "unreachable_count",
+                format!(
+                    "no pool unit can be selected at FDR {qt} whatever its outcome: every \
+                     unit's weight alone keeps its p-value above q (the smallest possible \
+                     p-value is {}). {}",
+                    crate::warning::prose_number(o.resolution.smallest_floor_pvalue),
+                    if o.weights_vary {
+                        "With these weights the pool lies where the labeled set has almost no \
+                         weight (little overlap); more labeled rows alone will not fix it, \
+                         labeled rows like the pool will."
+                    } else {
+                        "The labeled set is too small for this level: use more labeled rows or \
+                         a higher --fdr."
+                    }
+                ),
+            )
+            .measured(o.unreachable_count as f64, m as f64)
+            .titled("empty shortlist"),
+        );
+    } else if o.selected_count == 0 {
+        warnings.push(
+            Warning::new(
+                "empty_shortlist",
+                Level::Medium,
+                "selected_count",
+                format!(
+                    "no pool unit was selected at FDR {qt}. BH on the weighted {} p-values \
+                     would select {}.",
+                    o.bh_pvalues.name(),
+                    o.bh_selected_count
+                ),
+            )
+            .titled("empty shortlist"),
+        );
+    }
+    if let Some(sentence) = draw_sentence(&o.draw, o.selected_count, o.settings.seed) {
+        let level = draw_level(&o.draw);
+        let mut warning = Warning::new(
+            "shortlist_from_draw",
+            level,
+            "empty_probability",
+            format!(
+                "{sentence} Conditional calibration keeps FDR <= q on average over the draw; a \
+                 single screen gets one draw. See `resolution` in summary.json for why and \
+                 what would fix it."
+            ),
+        )
+        .titled("shortlist decided by a random draw");
+        warning.value = Some(o.draw.empty_probability);
+        warning.threshold = match level {
+            Level::High => Some(DRAW_EMPTY_HIGH),
+            Level::Medium => Some(DRAW_EMPTY_MEDIUM),
+            Level::Low => None,
+        };
+        warnings.insert(0, warning);
+    }
+    crate::warning::worst_first(&mut warnings);
     warnings
+}
+
+/// Empty probability of a draw-dependent shortlist from which its concern is `high`.
+pub const DRAW_EMPTY_HIGH: f64 = 0.5;
+/// Empty probability from which it is `medium` (below: `low`).
+pub const DRAW_EMPTY_MEDIUM: f64 = 0.05;
+
+/// How much a draw-dependent shortlist matters, by its empty probability: `high` at 0.5 or
+/// more, `medium` at 0.05 or more, `low` below (common practice, our choice).
+pub fn draw_level(draw: &DrawSummary) -> Level {
+    if draw.empty_probability >= DRAW_EMPTY_HIGH {
+        Level::High
+    } else if draw.empty_probability >= DRAW_EMPTY_MEDIUM {
+        Level::Medium
+    } else {
+        Level::Low
+    }
 }
 
 /// How serious a draw-dependent shortlist is, by its empty probability: `severe` at 0.5
 /// or more, `caution` at 0.05 or more, `note` below (common practice, our choice).
+/// The earlier word for [`draw_level`] (summary.json `draw_severity`).
 pub fn draw_severity(draw: &DrawSummary) -> &'static str {
-    if draw.empty_probability >= 0.5 {
-        "severe"
-    } else if draw.empty_probability >= 0.05 {
-        "caution"
-    } else {
-        "note"
-    }
+    draw_level(draw).legacy_severity()
 }
 
 /// The draw's consequences in one plain sentence, or `None` when the shortlist does not

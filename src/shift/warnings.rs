@@ -7,6 +7,7 @@
 use serde::Serialize;
 
 use super::ShiftSummary;
+use crate::warning::{Level, Warning};
 
 /// Cross-validated AUC above this: the sets barely overlap (common practice).
 pub const AUC_HIGH: f64 = 0.95;
@@ -50,7 +51,9 @@ pub const OUTSIDE_OVERLAP_SHARE_HIGH: f64 = 0.1;
 /// choice: a few such rows are expected at the tails).
 pub const PROBABILITY_CLIPPED_SHARE_HIGH: f64 = 0.01;
 
-/// How bad a warning is. Severe ones come first.
+/// How bad a warning is, in the words earlier outputs used (`severe`, `caution`). Severe
+/// ones come first. The ordered scale every output now also writes is
+/// [`crate::warning::Level`] ([`Severity::level`]).
 #[derive(Debug, Clone, Copy, PartialEq, Eq, PartialOrd, Ord, Serialize)]
 #[serde(rename_all = "snake_case")]
 pub enum Severity {
@@ -60,19 +63,53 @@ pub enum Severity {
     Caution,
 }
 
+impl Severity {
+    /// The place on the ordered scale: severe is `high`, caution is `medium`.
+    pub fn level(self) -> Level {
+        match self {
+            Severity::Severe => Level::High,
+            Severity::Caution => Level::Medium,
+        }
+    }
+}
+
 /// One warning.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct ShiftWarning {
+    /// Stable machine-readable name of the warning; equal to `diagnostic` for shift
+    /// warnings.
+    pub code: String,
     /// Machine-readable diagnostic name (e.g. `khat`, `ess_fraction`).
     pub diagnostic: String,
     /// The diagnostic's value.
     pub value: f64,
     /// The threshold it crossed.
     pub threshold: f64,
-    /// Severity.
+    /// Severity, in the earlier words (`severe`, `caution`).
     pub severity: Severity,
+    /// The same on the ordered scale: `high` (severe) or `medium` (caution).
+    pub level: Level,
+    /// 3 (high) or 2 (medium): the level as a number, larger is worse.
+    pub level_rank: u8,
     /// Plain-words meaning for the shortlist.
     pub message: String,
+}
+
+impl ShiftWarning {
+    /// The warning in the shape every output shares (`warning_details`).
+    pub fn to_warning(&self) -> Warning {
+        Warning {
+            code: self.code.clone(),
+            severity: self.level.legacy_severity(),
+            level: self.level,
+            level_rank: self.level_rank,
+            diagnostic: self.diagnostic.clone(),
+            value: Some(self.value),
+            threshold: Some(self.threshold),
+            message: self.message.clone(),
+            title: self.diagnostic.clone(),
+        }
+    }
 }
 
 /// Order of warnings, worst first: problems that make the weights wrong (solver,
@@ -103,10 +140,13 @@ fn warn(
     message: String,
 ) -> ShiftWarning {
     ShiftWarning {
+        code: diagnostic.into(),
         diagnostic: diagnostic.into(),
         value,
         threshold,
         severity,
+        level: severity.level(),
+        level_rank: severity.level().rank(),
         message,
     }
 }
@@ -150,8 +190,16 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
             s.khat_threshold,
             Severity::Severe,
             format!(
-                "Pareto k-hat of the labeled weights is {:.2} (threshold {:.2}): the weight distribution has such a heavy tail that weighted estimates are unreliable; a few labeled compounds dominate the calibration and the FDR level is not trustworthy",
-                s.khat, s.khat_threshold
+                "Pareto k-hat of the labeled weights is {:.2} (threshold {:.2}): {}",
+                s.khat,
+                s.khat_threshold,
+                khat_reading(
+                    s.khat,
+                    s.khat_threshold,
+                    s.weights.largest_weight_share,
+                    s.ess,
+                    s.calibration_rows
+                )
             ),
         ));
     }
@@ -357,6 +405,58 @@ pub fn collect(s: &ShiftSummary) -> Vec<ShiftWarning> {
     out
 }
 
+/// What a Pareto k-hat of the labeled weights means for this shortlist, in plain words:
+/// how much the few largest labeled weights decide the p-values. `largest_share` is the
+/// largest calibration weight's share of their total, `ess` their Kish effective size out
+/// of `rows`.
+///
+/// The bands follow the usual reading of k-hat (Vehtari, Simpson, Gelman, Yao & Gabry,
+/// Pareto smoothed importance sampling, 2024, from memory): below 0.5 the weights' variance
+/// is finite and weighted averages settle quickly; up to the threshold (0.7) they settle
+/// slowly; above it a few rows decide them; above 1 the weights' mean itself need not exist.
+pub fn khat_reading(
+    khat: f64,
+    threshold: f64,
+    largest_share: f64,
+    ess: f64,
+    rows: usize,
+) -> String {
+    let share = format!("{:.1}%", 100.0 * largest_share);
+    let worth = format!("{ess:.0} of {rows}");
+    if khat.is_nan() {
+        format!(
+            "the tail of the labeled weights could not be measured (too few distinct weights); \
+             the largest labeled weight holds {share} of the total and the weights are worth \
+             {worth} labeled rows, so judge them by those figures"
+        )
+    } else if khat > 1.0 {
+        format!(
+            "the labeled weights are so heavy-tailed that their average need not exist: the \
+             largest one alone holds {share} of the total weight (the weights are worth {worth} \
+             labeled rows), so one or two assayed units set every p-value of this shortlist \
+             and its FDR is not the level asked for"
+        )
+    } else if khat > threshold {
+        format!(
+            "a handful of labeled units carry most of the calibration (the largest weight holds \
+             {share} of the total; the weights are worth {worth} labeled rows): the p-values of \
+             this shortlist lean on them, another assay of those few units could change it, \
+             and its FDR level is not trustworthy"
+        )
+    } else if khat > 0.5 {
+        format!(
+            "the labeled weights have a heavy but usable tail (the largest holds {share} of the \
+             total; worth {worth} labeled rows): the p-values are usable but noisier than the \
+             effective sample size alone suggests"
+        )
+    } else {
+        format!(
+            "the labeled weights have a light tail (the largest holds {share} of the total; \
+             worth {worth} labeled rows): no few assayed units dominate the p-values"
+        )
+    }
+}
+
 /// A number for a message: 4 significant digits, scientific when very large or small.
 fn short_number(v: f64) -> String {
     if v != 0.0 && (v.abs() >= 1e6 || v.abs() < 1e-3) {
@@ -369,6 +469,28 @@ fn short_number(v: f64) -> String {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn khat_readings_follow_the_bands() {
+        // Bands of the usual k-hat reading (Vehtari et al., PSIS, from memory): <= 0.5,
+        // up to the threshold, above it, above 1; NaN when not estimable.
+        let read = |k: f64| khat_reading(k, 0.7, 0.0123, 150.4, 300);
+        let texts = [read(0.2), read(0.6), read(0.8), read(1.5), read(f64::NAN)];
+        for text in &texts {
+            // Every reading says what the weights are worth for this shortlist.
+            assert!(
+                text.contains("1.2%") && text.contains("150 of 300"),
+                "{text}"
+            );
+        }
+        assert!(texts[0].contains("light tail"));
+        assert!(texts[1].contains("usable"));
+        assert!(texts[2].contains("not trustworthy"));
+        assert!(texts[3].contains("need not exist"));
+        assert!(texts[4].contains("could not be measured"));
+        // At the threshold itself the weights are still usable (k-hat must exceed it).
+        assert!(read(0.7).contains("usable"));
+    }
 
     #[test]
     fn smd_threshold_values() {

@@ -27,6 +27,7 @@ use crate::selection::bh::bh_adjusted;
 use crate::selection::pipeline::{
     run_selection, LabeledInput, PoolInput, SelectError, SelectOptions,
 };
+use crate::warning::{prose_number, Level, Warning};
 
 /// e(x) above which a unit counts as poorly covered (Crump et al. 2009 trimming rule).
 pub const POOL_PROBABILITY_LIMIT: f64 = 0.9;
@@ -66,7 +67,8 @@ pub struct AuditOutcome {
     /// The weighted selection on the whole pool.
     pub weighted_selected_count: usize,
     pub largest_labeled_weight: f64,
-    pub warnings: Vec<String>,
+    /// Findings about the list, then the weighted selection's own warnings.
+    pub warnings: Vec<Warning>,
 }
 
 /// Audit the pool units at positions `listed`.
@@ -171,41 +173,73 @@ pub fn audit_shortlist(
     };
     outcome.warnings = audit_warnings(&outcome, q, weighted.weights_vary);
     outcome.warnings.extend(weighted.warnings);
+    crate::warning::worst_first(&mut outcome.warnings);
     Ok(outcome)
 }
 
-/// Plain-words findings about the list, most serious first.
-fn audit_warnings(o: &AuditOutcome, q: f64, weights_vary: bool) -> Vec<String> {
+/// Plain-words findings about the list, most serious first. Levels (our choice): poorly
+/// covered listed units and a list distorted by the shift are `medium`, listed units the
+/// weighted selection drops are `low`.
+fn audit_warnings(o: &AuditOutcome, q: f64, weights_vary: bool) -> Vec<Warning> {
     let mut warnings = Vec::new();
     if o.listed_count == 0 {
         return warnings;
     }
     let share = |count: usize| 100.0 * count as f64 / o.listed_count as f64;
     if o.poorly_covered_count > 0 {
-        warnings.push(format!(
-            "poorly covered: {} of {} listed units ({:.0}%) sit where the labeled set gives little \
-             support (unreachable at FDR {q}, a weight above every labeled weight, or e(x) > {}). \
-             Their place on the list rests on the model's extrapolation.",
-            o.poorly_covered_count,
-            o.listed_count,
-            share(o.poorly_covered_count),
-            POOL_PROBABILITY_LIMIT
-        ));
+        warnings.push(
+            Warning::new(
+                "poorly_covered",
+                Level::Medium,
+                "poorly_covered_count",
+                format!(
+                    "{} of {} listed units ({:.0}%) sit where the labeled set gives little \
+                     support (unreachable at FDR {q}, a weight above every labeled weight, or \
+                     e(x) > {}). Their place on the list rests on the model's extrapolation.",
+                    o.poorly_covered_count,
+                    o.listed_count,
+                    share(o.poorly_covered_count),
+                    POOL_PROBABILITY_LIMIT
+                ),
+            )
+            .measured(o.poorly_covered_count as f64, 0.0)
+            .titled("poorly covered"),
+        );
     }
     if weights_vary && o.fdr_level_weighted > o.fdr_level_unweighted {
-        warnings.push(format!(
-            "distorted by shift: accounting for the shift, BH would need FDR level {:.3} to select \
-             the whole list, against {:.3} without weights.",
-            o.fdr_level_weighted, o.fdr_level_unweighted
-        ));
+        warnings.push(
+            Warning::new(
+                "distorted_by_shift",
+                Level::Medium,
+                "fdr_level_weighted",
+                format!(
+                    "accounting for the shift, BH would need FDR level {} to select the whole \
+                     list, against {} without weights.",
+                    prose_number(o.fdr_level_weighted),
+                    prose_number(o.fdr_level_unweighted)
+                ),
+            )
+            .measured(o.fdr_level_weighted, o.fdr_level_unweighted)
+            .titled("distorted by shift"),
+        );
     }
     if o.survivors_count < o.listed_count {
-        warnings.push(format!(
-            "{} of {} listed units ({:.0}%) are not selected by the weighted selection at FDR {q}.",
-            o.listed_count - o.survivors_count,
-            o.listed_count,
-            share(o.listed_count - o.survivors_count)
-        ));
+        warnings.push(
+            Warning::new(
+                "not_surviving",
+                Level::Low,
+                "survivors_count",
+                format!(
+                    "{} of {} listed units ({:.0}%) are not selected by the weighted selection \
+                     at FDR {q}.",
+                    o.listed_count - o.survivors_count,
+                    o.listed_count,
+                    share(o.listed_count - o.survivors_count)
+                ),
+            )
+            .measured(o.survivors_count as f64, o.listed_count as f64)
+            .titled("not surviving"),
+        );
     }
     warnings
 }

@@ -64,6 +64,20 @@ pub enum Change {
 }
 
 impl Change {
+    /// Machine-readable name (changes.csv `change_code`): `new_selected`,
+    /// `new_not_selected`, `newly_selected`, `dropped`, `kept`, `not_selected`, `left_pool`.
+    pub fn code(self) -> &'static str {
+        match self {
+            Change::NewSelected => "new_selected",
+            Change::NewNotSelected => "new_not_selected",
+            Change::NewlySelected => "newly_selected",
+            Change::Dropped => "dropped",
+            Change::Kept => "kept",
+            Change::NotSelected => "not_selected",
+            Change::LeftPool => "left_pool",
+        }
+    }
+
     /// Plain words for tables.
     pub fn words(self) -> &'static str {
         match self {
@@ -100,7 +114,12 @@ pub struct ChangeCounts {
     pub left_pool: usize,
     pub previously_selected: usize,
     pub selected: usize,
+    /// In the previous pool and not selected then, selected now.
     pub newly_selected: usize,
+    /// New to the pool and selected (canonical name).
+    pub new_units_selected: usize,
+    /// Deprecated alias of `new_units_selected` (same value), kept for readers of earlier
+    /// changes.json files.
     pub new_selected: usize,
     pub dropped: usize,
     pub kept: usize,
@@ -184,6 +203,7 @@ fn new_unit_change(
     counts.new_units += 1;
     let change = if unit.selected {
         counts.new_selected += 1;
+        counts.new_units_selected += 1;
         Change::NewSelected
     } else {
         Change::NewNotSelected

@@ -282,3 +282,37 @@ fn batch_design_errors_are_located() {
     assert!(String::from_utf8_lossy(&o.stderr).contains("batch design folder"));
     assert!(!out2.exists());
 }
+
+#[test]
+fn batch_copies_kept_columns_verbatim() {
+    let dir = TempDir::new().unwrap();
+    let out = dir.path().join("kept");
+    let o = batch(&out, &["--size", "40", "--keep-columns", "f2,w"]);
+    assert!(o.status.success(), "{}", String::from_utf8_lossy(&o.stderr));
+    let (header, chosen) = rows(&out.join("batch.csv"));
+    assert_eq!(
+        header,
+        ["id", "inclusion_probability", "prediction", "f2", "w"]
+    );
+    // The cells are the pool file's text, byte for byte (no reformatting of numbers).
+    let (pool_header, pool_rows) = rows(&fixture("pool.csv"));
+    let column = |name: &str| pool_header.iter().position(|h| h == name).unwrap();
+    let (f2, w) = (column("f2"), column("w"));
+    assert!(!chosen.is_empty());
+    for row in &chosen {
+        let source = pool_rows.iter().find(|r| r[0] == row[0]).unwrap();
+        assert_eq!((&row[3], &row[4]), (&source[f2], &source[w]), "{}", row[0]);
+    }
+    let json: Value = serde_json::from_slice(&fs::read(out.join("design.json")).unwrap()).unwrap();
+    assert_eq!(
+        json["columns"]["keep_columns"],
+        serde_json::json!(["f2", "w"])
+    );
+    // A kept column the pool lacks is a usage error with a suggestion.
+    let o = batch(
+        &dir.path().join("bad"),
+        &["--size", "40", "--keep-columns", "F2"],
+    );
+    assert_eq!(o.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&o.stderr).contains("f2"));
+}

@@ -29,7 +29,8 @@ decaying with rank to a floor that keeps every unit reachable at --fdr. --design
 gives every unit the same probability (for comparison; its shortlists are mostly all or
 nothing).
 
-Writes batch.csv (the units to assay: id, inclusion_probability, prediction), design.csv
+Writes batch.csv (the units to assay: id, inclusion_probability, prediction, then the
+--keep-columns cells verbatim), design.csv
 (every pool unit's inclusion_probability and whether it was drawn, to recompute the weights
 later) and design.json (settings, seed, expected size and spread, the floor, the expected
 smallest p-value at the top, a checksum of the pool's ids, and a reading). Do not use the
@@ -81,6 +82,10 @@ pub struct BatchArgs {
     /// Cap of the inclusion probabilities, below 1 (pi = 1 would give weight 0).
     #[arg(long, default_value_t = DEFAULT_MAX_PROBABILITY, value_name = "P", allow_negative_numbers = true)]
     pub max_probability: f64,
+    /// Columns copied verbatim from the pool into batch.csv (for the lab: structure,
+    /// series, plate position), a comma list. Example: --keep-columns smiles,series.
+    #[arg(long, value_name = "LIST")]
+    pub keep_columns: Vec<String>,
     /// Seed of the draw.
     #[arg(long, default_value_t = crate::random::DEFAULT_SEED)]
     pub seed: u64,
@@ -147,6 +152,7 @@ pub fn run(a: BatchArgs) -> Result<(), Failure> {
     let read = ReadOptions {
         id: a.id.clone(),
         delimiter: a.delimiter.map(DelimiterArg::byte),
+        keep_columns: super::common::feature_selectors(&a.keep_columns),
         ..ReadOptions::new(a.prediction.clone())
     };
     let pool = read_units(&a.pool, Role::Pool, &read)?;
@@ -169,11 +175,13 @@ pub fn run(a: BatchArgs) -> Result<(), Failure> {
     let batch_rows: Vec<Vec<String>> = (0..pool.len())
         .filter(|&j| outcome.in_batch[j])
         .map(|j| {
-            vec![
+            let mut row = vec![
                 pool.ids[j].clone(),
                 float(outcome.probabilities[j]),
                 float(pool.prediction[j]),
-            ]
+            ];
+            row.extend(pool.kept.row(j).iter().cloned());
+            row
         })
         .collect();
     let design_rows: Vec<Vec<String>> = (0..pool.len())
@@ -192,6 +200,7 @@ pub fn run(a: BatchArgs) -> Result<(), Failure> {
         columns: crate::report::Columns {
             id: a.id.clone(),
             prediction: Some(a.prediction.clone()),
+            keep_columns: pool.kept.names.clone(),
             ..crate::report::Columns::default()
         },
         pool_file: a.pool.display().to_string(),
@@ -203,12 +212,14 @@ pub fn run(a: BatchArgs) -> Result<(), Failure> {
         outcome: &outcome,
     };
     let mut files = OutputSet::new();
+    let mut batch_header: Vec<String> = ["id", "inclusion_probability", "prediction"]
+        .map(String::from)
+        .to_vec();
+    batch_header.extend(crate::report::summary::kept_header(&pool.kept.names));
+    let batch_header: Vec<&str> = batch_header.iter().map(String::as_str).collect();
     files.add(
         "batch.csv",
-        csv_bytes(
-            &["id", "inclusion_probability", "prediction"],
-            batch_rows.into_iter(),
-        ),
+        csv_bytes(&batch_header, batch_rows.into_iter()),
     );
     files.add(
         "design.csv",

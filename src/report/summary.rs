@@ -428,9 +428,9 @@ pub fn shortlist_order(prediction: &[f64], selected: &[bool], direction: Directi
     chosen
 }
 
-/// Names of the columns we write in `candidates.csv` and `shortlist.csv`; a kept column of
+/// Names of the columns we write in `candidates.csv`, `shortlist.csv` and `batch.csv`; a kept column of
 /// the same name is written as `input_NAME` so that every header name is unique.
-const OUR_COLUMNS: [&str; 17] = [
+const OUR_COLUMNS: [&str; 18] = [
     "id",
     "score",
     "weight",
@@ -448,6 +448,8 @@ const OUR_COLUMNS: [&str; 17] = [
     "rank",
     "input_id",
     "input_prediction",
+    // batch.csv
+    "inclusion_probability",
 ];
 
 /// Header names of the kept columns: verbatim, or `input_NAME` when NAME is one of ours.

@@ -8,8 +8,9 @@ use std::path::PathBuf;
 use clap::Args;
 use linfa::ParamGuard;
 
+use crate::conformal::score::Direction;
 use crate::io::OutputSet;
-use crate::report::html::{selection_report, shift_part, Part, Table, WeightsMethod};
+use crate::report::html::{selection_report, shift_part, Part, PoolView, Table, WeightsMethod};
 use crate::report::{
     add_shift, candidates_csv, select_summary, warning_line, RunInputs, ShiftSection, CAUTIONS,
 };
@@ -269,6 +270,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
              shortlist above."
         )),
         scroll: false,
+        rows_in: None,
     };
     for ((name, _, _), o) in COMPARED.iter().zip(&outcomes) {
         let (false_hits, chosen) = false_discovery_proportion(&scenario.pool, &o.selected);
@@ -333,6 +335,7 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
                 args.screens
             )),
             scroll: false,
+            rows_in: None,
         });
         for r in &repeated {
             let _ = writeln!(
@@ -361,7 +364,12 @@ pub fn run(args: DemoArgs) -> Result<(), Failure> {
         .map_err(|e| Failure::Internal(e.to_string()))?;
     let mut report = selection_report(
         &summary,
-        &scenario.pool.ids,
+        &PoolView {
+            ids: &scenario.pool.ids,
+            predictions: &scenario.pool.prediction,
+            threshold: Some(THRESHOLD),
+            direction: Direction::Above,
+        },
         weighted,
         Some(part),
         WeightsMethod::Fitted,

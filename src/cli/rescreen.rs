@@ -9,6 +9,7 @@ use serde::Serialize;
 use serde_json::Value;
 
 use crate::io::OutputSet;
+use crate::report::html::changes_part;
 use crate::report::{add_shift, candidates_csv, select_summary, shift_section, RunInputs};
 use crate::selection::pipeline::run_selection;
 use crate::workflows::rescreen::{compare, Change, ChangeCounts, CurrentUnit, PreviousUnit};
@@ -394,6 +395,8 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
             }
         ));
     }
+    // The comparison's own notes (the report lists the selection's warnings separately).
+    let comparison_notes = warnings.len();
     warnings.extend(summary.warnings.iter().cloned());
 
     let report = ChangesReport {
@@ -446,12 +449,17 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         files.add(
             "report.html",
             selection_report_page(
-                config.weights.clone(),
+                &config,
                 &summary,
-                &pool.ids,
+                &pool,
                 &outcome,
                 &weighting,
                 &calibration,
+                vec![changes_part(
+                    &rows,
+                    &counts,
+                    &report.warnings[..comparison_notes],
+                )],
             )?,
         );
     }

@@ -117,7 +117,7 @@ assert bluish > 0, "no labeled-set (blue) plot colour on screen"
 assert orangish > 0, "no pool (orange) plot colour on screen"
 
 dom = open(dom_path, encoding="utf-8").read()
-assert dom.count("<svg") == 3, f"{dom.count('<svg')} inline SVG plots in the DOM, expected 3"
+assert dom.count("<svg") == 4, f"{dom.count('<svg')} inline SVG plots in the DOM, expected 4"
 for section in ["title", "warnings", "settings", "shortlist", "shift", "comparison",
                 "cautions", "method"]:
     assert f'id="{section}"' in dom, f"section {section} missing from the DOM"

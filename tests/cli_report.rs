@@ -369,7 +369,10 @@ fn every_command_writes_a_self_contained_report() {
         .collect();
     assert!(!changed.is_empty(), "the test needs a change");
     for id in changed.iter().take(100) {
-        assert!(changes.contains(&format!("<td>{id}</td>")), "{id}");
+        assert!(
+            changes.contains(&format!("<td class=\"word\">{id}</td>")),
+            "{id}"
+        );
     }
     assert_eq!(
         changes.matches("<tr>").count(),

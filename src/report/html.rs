@@ -732,6 +732,7 @@ th { background: #eee; }
 section#settings th { white-space: nowrap; }
 div.wide { overflow-x: auto; }
 td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+td.word { white-space: nowrap; }
 tr.severe td { background: #fde2e1; }
 tr.caution td { background: #fff4d6; }
 tr.warning td { background: #fff9e8; }
@@ -773,6 +774,9 @@ fn table_html(out: &mut String, table: &Table) {
         for cell in row {
             if is_numeric(cell) {
                 let _ = write!(out, "<td class=\"num\">{}</td>", escape(cell));
+            } else if !cell.contains(char::is_whitespace) {
+                // One word (an id): kept on one line.
+                let _ = write!(out, "<td class=\"word\">{}</td>", escape(cell));
             } else {
                 let _ = write!(out, "<td>{}</td>", escape(cell));
             }
@@ -1317,7 +1321,8 @@ mod tests {
         // The pool's predictions increase with the unit index (fitted_report), so best
         // first means the largest index, `plain`, first.
         let first_row = &section[section.find("<tbody>").unwrap()..];
-        assert!(first_row.starts_with("<tbody>\n<tr><td class=\"num\">1</td><td>plain</td>"));
+        assert!(first_row
+            .starts_with("<tbody>\n<tr><td class=\"num\">1</td><td class=\"word\">plain</td>"));
     }
 
     #[test]

@@ -277,6 +277,7 @@ pub fn level_curve_svg(
             .axis_desc_style((FONT, DESC_SIZE))
             .x_desc("FDR level q")
             .y_desc("units selected")
+            .y_label_formatter(&|v| format!("{v:.0}"))
             .draw()
             .map_err(backend(PLOT))?;
         let series: [Series; 2] = [

@@ -173,3 +173,205 @@ fn demo_rejects_a_tiny_scenario_without_writing() {
     assert!(String::from_utf8_lossy(&output.stderr).contains("--labeled"));
     assert!(!out.exists());
 }
+
+/// The calibration-batch step (issue 14 item 4): the batch is drawn and "assayed", the
+/// drawn compounds leave the pool (none can be on the exact-weight shortlist), the two
+/// files rerun as an ordinary weighted selection, and batch_summary.json's figures agree
+/// with pool_truth.csv. References: design.md 2.8 (weights (1 - pi) / pi), the output
+/// contract in `src/cli/demo.rs`'s help, and the simulation's truth for the figures.
+#[test]
+fn demo_shows_the_calibration_batch_step() {
+    let dir = TempDir::new().unwrap();
+    let out = dir.path().join("demo");
+    let output = demo(&[
+        "--labeled",
+        "400",
+        "--pool",
+        "4000",
+        "--screens",
+        "2",
+        "--out",
+        out.to_str().unwrap(),
+    ]);
+    let stdout = String::from_utf8_lossy(&output.stdout);
+    assert!(output.status.success(), "{stdout}");
+    assert!(stdout.contains("Calibration batch"), "{stdout}");
+
+    let (assayed_header, assayed) = read_table(&out.join("batch_assayed.csv"));
+    assert_eq!(
+        assayed_header,
+        ["id", "y", "pred", "inclusion_probability", "w"]
+    );
+    let (pool_header, left) = read_table(&out.join("batch_pool.csv"));
+    assert_eq!(pool_header, ["id", "pred", "inclusion_probability", "w"]);
+    // A batch of 300 expected (the default for a pool of 4000 is min(300, 4000 / 10)): the
+    // drawn size is within 5 standard deviations (at most sqrt(300) ~ 17) of it.
+    assert!(
+        (assayed.len() as f64 - 300.0).abs() < 5.0 * 300f64.sqrt(),
+        "{} drawn",
+        assayed.len()
+    );
+    let (_, pool_rows) = read_table(&out.join("pool.csv"));
+    let (_, truth_rows) = read_table(&out.join("pool_truth.csv"));
+    let truth: std::collections::HashMap<&str, f64> = truth_rows
+        .iter()
+        .map(|r| (&r[0], r[1].parse().unwrap()))
+        .collect();
+    // Drawn and left partition the pool; the drawn units' outcomes are their true values;
+    // the weights are (1 - pi) / pi.
+    let drawn: std::collections::HashSet<&str> = assayed.iter().map(|r| &r[0]).collect();
+    assert_eq!(drawn.len() + left.len(), pool_rows.len());
+    for row in left.iter() {
+        assert!(!drawn.contains(&row[0]), "{} is in both", &row[0]);
+    }
+    for row in assayed.iter().chain(left.iter()) {
+        let n = row.len();
+        let pi: f64 = row[n - 2].parse().unwrap();
+        let w: f64 = row[n - 1].parse().unwrap();
+        assert!(pi > 0.0 && pi < 1.0);
+        assert!((w - (1.0 - pi) / pi).abs() <= 1e-12 * w.max(1.0));
+    }
+    for row in assayed.iter() {
+        let y: f64 = row[1].parse().unwrap();
+        assert!((y - truth[&row[0]]).abs() < 1e-9, "{row:?}");
+    }
+
+    // The exact-weight selection: one row per compound left in the pool; no batch unit.
+    let (cand_header, cand) = read_table(&out.join("batch_candidates.csv"));
+    let cand_ids: Vec<&str> = cand.iter().map(|r| &r[0]).collect();
+    let left_ids: Vec<&str> = left.iter().map(|r| &r[0]).collect();
+    assert_eq!(cand_ids, left_ids);
+    let selected_col = column(&cand_header, "selected");
+    let chosen: Vec<&str> = cand
+        .iter()
+        .filter(|r| &r[selected_col] == "true")
+        .map(|r| &r[0])
+        .collect();
+    assert!(chosen.iter().all(|id| !drawn.contains(id)));
+
+    // batch_summary.json: the figures, recomputed from pool_truth.csv.
+    let summary: Value =
+        serde_json::from_slice(&fs::read(out.join("batch_summary.json")).unwrap()).unwrap();
+    assert_eq!(summary["design"]["design"], "ranked");
+    assert_eq!(
+        summary["design"]["drawn_size"].as_u64(),
+        Some(assayed.len() as u64)
+    );
+    assert_eq!(
+        summary["selection"]["selected_count"].as_u64(),
+        Some(chosen.len() as u64)
+    );
+    assert_eq!(
+        summary["selection"]["n_labeled"].as_u64(),
+        Some(assayed.len() as u64)
+    );
+    let threshold = weighbridge::demo::THRESHOLD;
+    let exact = &summary["comparison"][1];
+    assert_eq!(exact["shortlist"], "calibration batch, exact weights");
+    let inactive = chosen.iter().filter(|id| truth[*id] <= threshold).count();
+    let active = left_ids.iter().filter(|id| truth[*id] > threshold).count();
+    assert_eq!(exact["selected"].as_u64(), Some(chosen.len() as u64));
+    assert_eq!(exact["truly_inactive"].as_u64(), Some(inactive as u64));
+    assert_eq!(exact["pool_units"].as_u64(), Some(left.len() as u64));
+    assert_eq!(
+        exact["calibration_units"].as_u64(),
+        Some(assayed.len() as u64)
+    );
+    let fdp = if chosen.is_empty() {
+        0.0
+    } else {
+        inactive as f64 / chosen.len() as f64
+    };
+    let power = (chosen.len() - inactive) as f64 / active as f64;
+    assert!((exact["false_discovery_proportion"].as_f64().unwrap() - fdp).abs() < 1e-12);
+    assert!((exact["power"].as_f64().unwrap() - power).abs() < 1e-12);
+    // The fitted-weight row describes the demo's own shortlist (candidates.csv).
+    let fitted = &summary["comparison"][0];
+    let main: Value = serde_json::from_slice(&fs::read(out.join("summary.json")).unwrap()).unwrap();
+    assert_eq!(fitted["selected"], main["selected_count"]);
+    assert_eq!(fitted["pool_units"].as_u64(), Some(4000));
+
+    // The printed row and the report carry the same figures.
+    let line = stdout
+        .lines()
+        .find(|l| l.starts_with("calibration batch, exact weights"))
+        .unwrap_or_else(|| panic!("no printed row:\n{stdout}"));
+    let cells: Vec<&str> = line.split_whitespace().collect();
+    let n = cells.len();
+    assert_eq!(
+        cells[n - 4].parse::<usize>().unwrap(),
+        chosen.len(),
+        "{line}"
+    );
+    assert_eq!(cells[n - 3].parse::<usize>().unwrap(), inactive, "{line}");
+    let html = fs::read_to_string(out.join("report.html")).unwrap();
+    assert!(html.contains("id=\"calibration-batch\""));
+    assert!(
+        stdout.contains(weighbridge::demo::BATCH_LABEL),
+        "repeated-screens row"
+    );
+
+    // The two files rerun as an ordinary weighted selection: same shortlist (same seed and
+    // level as the demo's defaults).
+    let rerun = dir.path().join("rerun");
+    let output = Command::new(env!("CARGO_BIN_EXE_weighbridge"))
+        .args([
+            "select",
+            "--labeled",
+            out.join("batch_assayed.csv").to_str().unwrap(),
+            "--pool",
+            out.join("batch_pool.csv").to_str().unwrap(),
+            "--threshold",
+            "6.5",
+            "--weight-column",
+            "w",
+            "--fdr",
+            "0.1",
+            "--quiet",
+            "--out",
+            rerun.to_str().unwrap(),
+        ])
+        .output()
+        .unwrap();
+    assert!(
+        output.status.success(),
+        "{}",
+        String::from_utf8_lossy(&output.stderr)
+    );
+    let (rerun_header, rerun_rows) = read_table(&rerun.join("candidates.csv"));
+    let rerun_selected = column(&rerun_header, "selected");
+    let rerun_chosen: Vec<&str> = rerun_rows
+        .iter()
+        .filter(|r| &r[rerun_selected] == "true")
+        .map(|r| &r[0])
+        .collect();
+    assert_eq!(rerun_chosen, chosen);
+}
+
+#[test]
+fn demo_batch_step_can_be_skipped_and_rejects_a_size_the_pool_cannot_hold() {
+    let dir = TempDir::new().unwrap();
+    let out = dir.path().join("demo");
+    let args = ["--labeled", "100", "--pool", "500", "--screens", "0"];
+    let output = demo(
+        &[
+            &args[..],
+            &["--batch-size", "0", "--out", out.to_str().unwrap()],
+        ]
+        .concat(),
+    );
+    assert!(output.status.success());
+    assert!(!out.join("batch_summary.json").exists());
+    assert!(out.join("summary.json").exists());
+    let bad = dir.path().join("bad");
+    let output = demo(
+        &[
+            &args[..],
+            &["--batch-size", "400", "--out", bad.to_str().unwrap()],
+        ]
+        .concat(),
+    );
+    assert_eq!(output.status.code(), Some(2));
+    assert!(String::from_utf8_lossy(&output.stderr).contains("--batch-size"));
+    assert!(!bad.exists());
+}

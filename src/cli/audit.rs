@@ -275,6 +275,7 @@ fn audit_report(
                 rows,
                 note: None,
                 scroll: outcome.listed_count > 15,
+                rows_in: Some("audit.csv".to_string()),
             }],
         }),
         shift,

@@ -17,7 +17,7 @@ use crate::io::{
     check_one_stdin, check_same_features, read_table, read_units, CensoredRule, MissingOutcome,
     OutcomeCells, ReadOptions, Role, UnitTable,
 };
-use crate::report::html::{selection_report, shift_part, WeightsMethod};
+use crate::report::html::{selection_report, shift_part, PoolView, WeightsMethod};
 use crate::report::UnreliableMark;
 use crate::selection::pipeline::{LabeledInput, PoolInput, Procedure, SelectOptions};
 use crate::selection::pruning::Pruning;
@@ -915,12 +915,13 @@ pub(crate) fn weights_method(source: &WeightSource) -> WeightsMethod {
 
 /// report.html of a selection run (`select --report`, `rescreen --report`).
 pub(crate) fn selection_report_page(
-    source: WeightSource,
+    config: &SelectConfig,
     summary: &crate::report::SelectSummary,
-    ids: &[String],
+    pool: &crate::io::UnitTable,
     outcome: &crate::selection::pipeline::SelectionOutcome,
     weighting: &Weighting<'_>,
     calibration: &Calibration<'_>,
+    extra: Vec<crate::report::html::Part>,
 ) -> Result<Vec<u8>, Failure> {
     let part = match (weighting.fitted(), summary.shift.as_ref()) {
         (Some(fitted), Some(section)) => Some(
@@ -933,7 +934,23 @@ pub(crate) fn selection_report_page(
         ),
         _ => None,
     };
-    let report = selection_report(summary, ids, outcome, part, weights_method(&source));
+    let view = PoolView {
+        ids: &pool.ids,
+        predictions: &pool.prediction,
+        threshold: match config.pool_read.threshold_column {
+            Some(_) => None,
+            None => config.threshold,
+        },
+        direction: config.direction,
+    };
+    let mut report = selection_report(
+        summary,
+        &view,
+        outcome,
+        part,
+        weights_method(&config.weights),
+    );
+    report.extra.extend(extra);
     Ok(report.render().into_bytes())
 }
 

@@ -9,6 +9,7 @@ use serde::Serialize;
 use serde_json::Value;
 
 use crate::io::OutputSet;
+use crate::report::html::changes_part;
 use crate::report::{
     add_shift, candidates_csv, select_summary, shift_section, shortlist_csv, PoolColumns, RunInputs,
 };
@@ -464,6 +465,8 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         }
     }
     let warnings = rescreen_warnings(&setting_changes, &counts, outcome.settings.fdr);
+    // The comparison's own notes (the report lists the selection's warnings separately).
+    let comparison_notes: Vec<String> = warnings.iter().map(Warning::line).collect();
     let mut details = warnings;
     details.extend(summary.warning_details.iter().cloned());
     crate::warning::worst_first(&mut details);
@@ -525,12 +528,13 @@ pub fn run(args: RescreenArgs) -> Result<(), Failure> {
         files.add(
             "report.html",
             selection_report_page(
-                config.weights.clone(),
+                &config,
                 &summary,
-                &pool.ids,
+                &pool,
                 &outcome,
                 &weighting,
                 &calibration,
+                vec![changes_part(&rows, &counts, &comparison_notes)],
             )?,
         );
     }

@@ -147,12 +147,13 @@ pub fn run(args: SelectArgs) -> Result<(), Failure> {
         files.add(
             "report.html",
             selection_report_page(
-                config.weights.clone(),
+                &config,
                 &summary,
-                &pool.ids,
+                pool,
                 &outcome,
                 &weighting,
                 &calibration,
+                Vec::new(),
             )?,
         );
     }

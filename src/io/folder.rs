@@ -58,6 +58,11 @@ const KNOWN_OUTPUTS: &[&str] = &[
     "batch.csv",
     "design.csv",
     "design.json",
+    "batch_assayed.csv",
+    "batch_pool.csv",
+    "batch_candidates.csv",
+    "batch_shortlist.csv",
+    "batch_summary.json",
 ];
 
 /// The demo's generated inputs: the tool's only where the demo's `pool_truth.csv` is too.

@@ -2,9 +2,16 @@
 //! the shift plots as inline SVG (from `crate::report::plots`), no external assets, no JavaScript.
 //!
 //! Sections, in this order: title and one-line verdict; warnings (worst first); settings;
-//! the shortlist (or, for an audit, the audited list); shift diagnostics with plots when
-//! weights were fitted; extra sections a command adds (the demo's comparison with the
-//! truth); the cautions ([`CAUTIONS`], verbatim); the method, with its sources.
+//! the shortlist (or, for an audit, the audited list) with the plot of the selection; shift
+//! diagnostics with plots when weights were fitted; extra sections a command adds (the level
+//! curve, a rescreen's changes, the demo's comparison with the truth); the cautions
+//! ([`CAUTIONS`], verbatim); the method, with its sources.
+//!
+//! For people and for print: tables are in the page flow (no scroll boxes); a long table
+//! shows its first [`TABLE_ROWS_SHOWN`] rows and names the file that has them all; plots are
+//! shown at the size they are drawn (`crate::report::plots`: text at least 11 px at 100%
+//! zoom) and scroll sideways on a narrow screen instead of shrinking; print CSS lets tables
+//! run over pages with their header repeated, and fits plots to the paper.
 //!
 //! Everything here builds a `String`; writing it (atomically, with the other outputs) is the
 //! caller's job (`crate::io::OutputSet`). Every piece of user-provided text (ids, file
@@ -12,14 +19,22 @@
 
 use std::fmt::Write as _;
 
-use crate::report::plots::{balance_svg, overlap_svg, weights_svg, PlotError};
+use crate::conformal::score::Direction;
+use crate::report::plots::{
+    balance_svg, overlap_svg, selection_svg, weights_svg, PlotError, SelectionPlot,
+    SELECTION_PLOT_MARKS,
+};
 use crate::report::{shift_diagnostics_text, ShiftReport, ShiftSection, CAUTIONS};
 use crate::report::{warning_line, SelectSummary};
 use crate::selection::pipeline::SelectionOutcome;
 use crate::shift::{Severity, ShiftWarning};
+use crate::workflows::rescreen::{Change, ChangeCounts, UnitChange};
 
-/// Rows of the shortlist table shown in the report; candidates.csv has every unit.
-pub const SHORTLIST_ROWS_SHOWN: usize = 300;
+/// Rows a long table shows in the report (the shortlist, an audited list, a rescreen's
+/// changes); the file named in [`Table::rows_in`] has every row.
+pub const TABLE_ROWS_SHOWN: usize = 100;
+/// Rows of the shortlist table shown in the report (the same cap as every long table).
+pub const SHORTLIST_ROWS_SHOWN: usize = TABLE_ROWS_SHOWN;
 /// Bins of the weight histogram (as in `weighbridge shift`).
 const WEIGHT_PLOT_BINS: usize = 40;
 
@@ -91,18 +106,23 @@ impl Finding {
     }
 }
 
-/// A table of text cells (escaped when rendered).
+/// A table of text cells (escaped when rendered), always in the page flow.
 #[derive(Clone, Debug, Default)]
 pub struct Table {
     pub header: Vec<String>,
     pub rows: Vec<Vec<String>>,
-    /// Cells of the first column that mark the row as highlighted (e.g. the default run).
+    /// A sentence shown under the table.
     pub note: Option<String>,
-    /// Show the rows in a box of limited height that scrolls (long tables).
+    /// No longer used: tables are never put in a scroll box (they were unreadable and did
+    /// not print). Kept so that callers building a `Table` keep compiling.
     pub scroll: bool,
+    /// The file that holds every row. When set, the page shows the first
+    /// [`TABLE_ROWS_SHOWN`] rows and says that the rest are in this file; when `None`,
+    /// every row is shown.
+    pub rows_in: Option<String>,
 }
 
-/// A section of plain paragraphs and tables.
+/// A section of plain paragraphs, figures and tables (in that order).
 #[derive(Clone, Debug, Default)]
 pub struct Part {
     /// HTML id (letters and dashes) and the heading.
@@ -110,8 +130,24 @@ pub struct Part {
     pub heading: String,
     pub paragraphs: Vec<String>,
     pub tables: Vec<Table>,
-    /// Inline SVG figures (from `crate::report::plots`), shown after the tables.
+    /// Inline SVG figures (from `crate::report::plots`), shown after the paragraphs and
+    /// before the tables.
     pub figures: Vec<String>,
+}
+
+/// The pool as the shortlist table and the selection plot show it, beside the selection
+/// outcome (which has no predictions or ids).
+#[derive(Clone, Copy, Debug)]
+pub struct PoolView<'a> {
+    /// Pool ids, in the order of the selection outcome.
+    pub ids: &'a [String],
+    /// The model's prediction per pool unit, in the user's units.
+    pub predictions: &'a [f64],
+    /// The outcome threshold when one value holds for every unit (`--threshold`); `None`
+    /// with per-unit thresholds.
+    pub threshold: Option<f64>,
+    /// Which side of the threshold is interesting; "best first" follows it.
+    pub direction: Direction,
 }
 
 /// The shift diagnostics with their three plots (SVG text).
@@ -174,6 +210,16 @@ pub struct Report {
 /// A number for people (the same form as the text summaries).
 use crate::report::summary::shown as number;
 
+/// A table cell: 3 decimals (so a column's numbers line up), the form of [`number`] when
+/// very large or very small.
+fn cell_number(v: f64) -> String {
+    if v.is_finite() && (v == 0.0 || (v.abs() >= 1e-3 && v.abs() < 1e5)) {
+        format!("{v:.3}")
+    } else {
+        number(v)
+    }
+}
+
 /// A p-value for people: 4 significant digits.
 fn p_value_text(p: f64) -> String {
     if p != 0.0 && p.abs() < 1e-3 {
@@ -219,11 +265,108 @@ pub fn selection_settings(summary: &SelectSummary) -> Vec<(String, String)> {
     rows
 }
 
-/// The shortlist section: selected units by p-value, the first [`SHORTLIST_ROWS_SHOWN`].
-pub fn shortlist_part(summary: &SelectSummary, ids: &[String], outcome: &SelectionOutcome) -> Part {
-    let mut chosen: Vec<usize> = (0..ids.len()).filter(|&j| outcome.selected[j]).collect();
-    chosen.sort_by(|&a, &b| outcome.p_values[a].total_cmp(&outcome.p_values[b]));
-    let shown = chosen.len().min(SHORTLIST_ROWS_SHOWN);
+/// Order of the shortlist: best prediction first (highest, or lowest with
+/// `Direction::Below`), ties by p-value, then input order (the order of shortlist.csv: the
+/// model's ranking; among units at the p-value floor, p-values differ only by weight).
+pub fn best_first(pool: &PoolView<'_>, outcome: &SelectionOutcome) -> Vec<usize> {
+    let mut chosen: Vec<usize> = (0..pool.ids.len())
+        .filter(|&j| outcome.selected[j])
+        .collect();
+    chosen.sort_by(|&a, &b| {
+        let (pa, pb) = (pool.predictions[a], pool.predictions[b]);
+        let by_prediction = match pool.direction {
+            Direction::Above => pb.total_cmp(&pa),
+            Direction::Below => pa.total_cmp(&pb),
+        };
+        by_prediction
+            .then(outcome.p_values[a].total_cmp(&outcome.p_values[b]))
+            .then(a.cmp(&b))
+    });
+    chosen
+}
+
+/// The plot of the selection (prediction against weight) and the sentence that says what
+/// it marks; `None` when there is nothing to draw.
+pub fn selection_figure(
+    summary: &SelectSummary,
+    pool: &PoolView<'_>,
+    outcome: &SelectionOutcome,
+) -> Option<(String, String)> {
+    let q = outcome.settings.fdr;
+    let w = outcome.total_labeled_weight;
+    let plot = SelectionPlot {
+        predictions: pool.predictions,
+        weights: &outcome.weights,
+        p_values: &outcome.p_values,
+        selected: &outcome.selected,
+        first_step: outcome.first_step.as_deref(),
+        threshold: pool.threshold,
+        // w / (W + w) > q  <=>  w > q W / (1 - q).
+        unreachable_above: (q < 1.0).then(|| q * w / (1.0 - q)),
+    };
+    let (svg, marks) = selection_svg(&plot).ok()?;
+    let kinds = [
+        "selected",
+        "passed the first step but pruned",
+        "not selected",
+    ];
+    let counted: Vec<String> = (0..3)
+        .filter(|&k| marks.total[k] > 0)
+        .map(|k| {
+            if marks.shown[k] == marks.total[k] {
+                format!("all {} {}", marks.total[k], kinds[k])
+            } else {
+                format!("{} of the {} {}", marks.shown[k], marks.total[k], kinds[k])
+            }
+        })
+        .collect();
+    let mut text = format!(
+        "The plot shows each pool unit's prediction against its {} ({}). It marks {}",
+        if crate::report::plots::weights_vary(&outcome.weights) {
+            "weight (log scale): units far to the right sit where the labeled set has little \
+             weight, and need a better prediction to be selected"
+        } else {
+            "p-value (log scale; every weight is the same)"
+        },
+        if summary.first_step_count.is_some() {
+            "filled: selected; hollow: passed the first step of conditional calibration, \
+             removed by the pruning draw; grey: not selected"
+        } else {
+            "filled: selected; grey: not selected"
+        },
+        counted.join(", ")
+    );
+    if marks.complete {
+        text.push('.');
+    } else {
+        let _ = write!(
+            text,
+            ": at most {SELECTION_PLOT_MARKS} marks are drawn, so a group too large for its \
+             share shows evenly spaced units in prediction order (candidates.csv has every \
+             unit)."
+        );
+    }
+    if let Some(c) = pool.threshold {
+        let _ = write!(
+            text,
+            " The horizontal line is the outcome threshold {} (a unit is interesting when its \
+             outcome is {} it).",
+            number(c),
+            pool.direction.word()
+        );
+    }
+    Some((svg, text))
+}
+
+/// The shortlist section: the selected units best prediction first ([`best_first`]), the
+/// first [`TABLE_ROWS_SHOWN`] in the table, and the plot of the selection.
+pub fn shortlist_part(
+    summary: &SelectSummary,
+    pool: &PoolView<'_>,
+    outcome: &SelectionOutcome,
+) -> Part {
+    let chosen = best_first(pool, outcome);
+    let shown = chosen.len().min(TABLE_ROWS_SHOWN);
     let mut paragraphs = vec![format!(
         "{} of {} pool units selected at FDR {}. {} candidates.csv in the same folder lists \
          every pool unit with its score, weight, p-value and, where known, why it could never \
@@ -232,9 +375,9 @@ pub fn shortlist_part(summary: &SelectSummary, ids: &[String], outcome: &Selecti
         summary.n_pool,
         number(summary.fdr),
         if chosen.len() > shown {
-            format!("The table shows the {shown} with the smallest p-values;")
+            format!("The table shows the first {shown}, best prediction first;")
         } else {
-            "The table shows all of them;".to_string()
+            "The table shows all of them, best prediction first;".to_string()
         }
     )];
     if let Some(first) = summary.first_step_count {
@@ -254,33 +397,145 @@ pub fn shortlist_part(summary: &SelectSummary, ids: &[String], outcome: &Selecti
         "Never selectable at this level (weight too large for the labeled set): {}.",
         summary.unreachable_count
     ));
-    let rows = chosen[..shown]
+    paragraphs.push(
+        "Selection probability: the chance that the unit is on the shortlist over the \
+         pruning draw, with this run's p-values held fixed (1 for every selected unit when \
+         the shortlist does not depend on the draw). q-value: the smallest FDR level at \
+         which BH on these p-values would select the unit."
+            .to_string(),
+    );
+    let mut figures = Vec::new();
+    if let Some((svg, text)) = selection_figure(summary, pool, outcome) {
+        paragraphs.push(text);
+        figures.push(svg);
+    }
+    let rows = chosen
         .iter()
         .enumerate()
         .map(|(rank, &j)| {
             vec![
                 (rank + 1).to_string(),
-                ids[j].clone(),
-                number(outcome.scores[j]),
-                number(outcome.weights[j]),
+                pool.ids[j].clone(),
+                cell_number(pool.predictions[j]),
                 p_value_text(outcome.p_values[j]),
+                p_value_text(outcome.q_values[j]),
+                format!("{:.3}", outcome.draw.selection_probability[j]),
+                cell_number(outcome.weights[j]),
+                cell_number(outcome.scores[j]),
             ]
         })
         .collect();
     Part {
-        figures: Vec::new(),
+        figures,
         id: "shortlist".to_string(),
         heading: "Shortlist".to_string(),
         paragraphs,
         tables: vec![Table {
-            header: ["rank", "id", "score", "weight", "p-value"]
-                .map(String::from)
-                .to_vec(),
+            header: [
+                "rank",
+                "id",
+                "prediction",
+                "p-value",
+                "q-value",
+                "selection probability",
+                "weight",
+                "score",
+            ]
+            .map(String::from)
+            .to_vec(),
             rows,
-            note: (chosen.len() > shown)
-                .then(|| format!("{} more in candidates.csv", chosen.len() - shown)),
-            scroll: true,
+            note: None,
+            scroll: false,
+            rows_in: Some("candidates.csv (the rows with selected = true)".to_string()),
         }],
+    }
+}
+
+/// A rescreen's changes: counts, the notes of the comparison, and the units newly selected
+/// (first, best p-value first) or dropped (then), each with why; the first
+/// [`TABLE_ROWS_SHOWN`] in the table, every unit in changes.csv.
+pub fn changes_part(rows: &[UnitChange], counts: &ChangeCounts, notes: &[String]) -> Part {
+    let mut paragraphs = vec![format!(
+        "Against the previous run: the pool went from {} to {} units ({} new, {} no longer \
+         in it); the shortlist from {} to {} units. Kept {}; newly selected {} units that \
+         were in the pool before and {} new units; dropped {}.",
+        counts.previous_pool,
+        counts.current_pool,
+        counts.new_units,
+        counts.left_pool,
+        counts.previously_selected,
+        counts.selected,
+        counts.kept,
+        counts.newly_selected,
+        counts.new_selected,
+        counts.dropped
+    )];
+    if counts.dropped > 0 {
+        paragraphs.push(format!(
+            "Why units dropped (a unit can have several reasons): its weight moved ({}), its \
+             score moved ({}), its p-value moved ({}), only the pool grew so the BH line q k / \
+             m got stricter ({}).",
+            counts.dropped_weight_moved,
+            counts.dropped_score_moved,
+            counts.dropped_p_value_moved,
+            counts.dropped_pool_grew
+        ));
+    }
+    paragraphs.extend(notes.iter().cloned());
+    let rank = |c: Change| match c {
+        Change::NewlySelected | Change::NewSelected => 0,
+        Change::Dropped => 1,
+        _ => 2,
+    };
+    let mut changed: Vec<&UnitChange> = rows.iter().filter(|r| rank(r.change) < 2).collect();
+    changed.sort_by(|a, b| {
+        rank(a.change).cmp(&rank(b.change)).then(
+            a.p_value
+                .unwrap_or(f64::INFINITY)
+                .total_cmp(&b.p_value.unwrap_or(f64::INFINITY)),
+        )
+    });
+    let p = |v: Option<f64>| v.map_or("\u{2014}".to_string(), p_value_text);
+    let table = Table {
+        header: [
+            "id",
+            "change",
+            "why",
+            "previous p-value",
+            "p-value",
+            "new, poorly covered",
+        ]
+        .map(String::from)
+        .to_vec(),
+        rows: changed
+            .iter()
+            .map(|r| {
+                vec![
+                    r.id.clone(),
+                    r.change.words().to_string(),
+                    if r.why.is_empty() {
+                        "\u{2014}".to_string()
+                    } else {
+                        r.why.clone()
+                    },
+                    p(r.previous_p_value),
+                    p(r.p_value),
+                    if r.new_poorly_covered { "yes" } else { "no" }.to_string(),
+                ]
+            })
+            .collect(),
+        note: changed
+            .is_empty()
+            .then(|| "No unit was newly selected or dropped.".to_string()),
+        scroll: false,
+        rows_in: Some("changes.csv".to_string()),
+    };
+    Part {
+        id: "changes".to_string(),
+        heading: "Changes since the previous run".to_string(),
+        paragraphs,
+        tables: vec![table],
+        figures: Vec::new(),
     }
 }
 
@@ -370,15 +625,17 @@ pub fn level_curve_part(summary: &SelectSummary) -> Option<Part> {
             rows,
             note: None,
             scroll: false,
+            rows_in: None,
         }],
         figures,
     })
 }
 
-/// A report of a selection (`select`, the demo); `shift` when weights were fitted.
+/// A report of a selection (`select`, `rescreen`, the demo); `shift` when weights were
+/// fitted. A command adds its own sections to `extra` (after the level curve).
 pub fn selection_report(
     summary: &SelectSummary,
-    ids: &[String],
+    pool: &PoolView<'_>,
     outcome: &SelectionOutcome,
     shift: Option<ShiftPart>,
     weights_method: WeightsMethod,
@@ -407,7 +664,7 @@ pub fn selection_report(
         verdict: selection_verdict(summary),
         warnings,
         settings: selection_settings(summary),
-        main: Some(shortlist_part(summary, ids, outcome)),
+        main: Some(shortlist_part(summary, pool, outcome)),
         shift,
         extra: level_curve_part(summary).into_iter().collect(),
         weights_method,
@@ -473,18 +730,29 @@ table { border-collapse: collapse; margin: 0.6em 0; font-size: 0.92em; }
 th, td { border: 1px solid #ccc; padding: 0.25em 0.55em; text-align: left; vertical-align: top; }
 th { background: #eee; }
 section#settings th { white-space: nowrap; }
-div.scroll { max-height: 22em; overflow-y: auto; display: inline-block; border: 1px solid #ccc; }
-div.scroll table { margin: 0; }
-td.num { text-align: right; font-variant-numeric: tabular-nums; }
+div.wide { overflow-x: auto; }
+td.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+td.word { white-space: nowrap; }
 tr.severe td { background: #fde2e1; }
 tr.caution td { background: #fff4d6; }
 tr.warning td { background: #fff9e8; }
-figure { margin: 0.8em 0; }
-figure svg { max-width: 100%; height: auto; border: 1px solid #ddd; }
+p.more { font-style: italic; }
+figure { margin: 0.8em 0; overflow-x: auto; }
+figure svg { display: block; border: 1px solid #ddd; }
 figcaption { font-size: 0.9em; color: #444; }
 pre { background: #f7f7f7; padding: 0.6em; overflow-x: auto; font-size: 0.88em; }
 code, .formula { font-family: monospace; }
 .formula { display: block; background: #f7f7f7; padding: 0.4em 0.6em; margin: 0.4em 0; }
+@media print {
+  body { max-width: none; margin: 0; padding: 0; font-size: 10pt; }
+  div.wide, figure, pre { overflow: visible; }
+  figure svg { max-width: 100%; height: auto; }
+  figure, tr { break-inside: avoid; }
+  thead { display: table-header-group; }
+  h2, h3 { break-after: avoid; }
+  p.verdict, tr.severe td, tr.caution td, tr.warning td, th { print-color-adjust: exact;
+    -webkit-print-color-adjust: exact; }
+}
 ";
 
 fn is_numeric(cell: &str) -> bool {
@@ -492,28 +760,38 @@ fn is_numeric(cell: &str) -> bool {
 }
 
 fn table_html(out: &mut String, table: &Table) {
-    if table.scroll {
-        out.push_str("<div class=\"scroll\">\n");
-    }
-    out.push_str("<table>\n<thead><tr>");
+    let shown = match &table.rows_in {
+        Some(_) => table.rows.len().min(TABLE_ROWS_SHOWN),
+        None => table.rows.len(),
+    };
+    out.push_str("<div class=\"wide\">\n<table>\n<thead><tr>");
     for h in &table.header {
         let _ = write!(out, "<th>{}</th>", escape(h));
     }
     out.push_str("</tr></thead>\n<tbody>\n");
-    for row in &table.rows {
+    for row in &table.rows[..shown] {
         out.push_str("<tr>");
         for cell in row {
             if is_numeric(cell) {
                 let _ = write!(out, "<td class=\"num\">{}</td>", escape(cell));
+            } else if !cell.contains(char::is_whitespace) {
+                // One word (an id): kept on one line.
+                let _ = write!(out, "<td class=\"word\">{}</td>", escape(cell));
             } else {
                 let _ = write!(out, "<td>{}</td>", escape(cell));
             }
         }
         out.push_str("</tr>\n");
     }
-    out.push_str("</tbody>\n</table>\n");
-    if table.scroll {
-        out.push_str("</div>\n");
+    out.push_str("</tbody>\n</table>\n</div>\n");
+    if let (Some(file), true) = (&table.rows_in, shown < table.rows.len()) {
+        let _ = writeln!(
+            out,
+            "<p class=\"more\">The first {shown} of {} rows are shown; the other {} are in {}.</p>",
+            table.rows.len(),
+            table.rows.len() - shown,
+            escape(file)
+        );
     }
     if let Some(note) = &table.note {
         let _ = writeln!(out, "<p>{}</p>", escape(note));
@@ -530,11 +808,11 @@ fn part_html(out: &mut String, part: &Part) {
     for p in &part.paragraphs {
         let _ = writeln!(out, "<p>{}</p>", escape(p));
     }
-    for t in &part.tables {
-        table_html(out, t);
-    }
     for svg in &part.figures {
         let _ = writeln!(out, "<figure>{}</figure>", inline_svg(svg));
+    }
+    for t in &part.tables {
+        table_html(out, t);
     }
     out.push_str("</section>\n");
 }
@@ -602,7 +880,8 @@ fn shift_html(out: &mut String, part: &ShiftPart) {
             })
             .collect(),
         note: Some(format!("flagged above |SMD| {}", number(s.smd_threshold))),
-        scroll: s.balance.len() > 12,
+        scroll: false,
+        rows_in: None,
     };
     table_html(out, &balance);
     let _ = writeln!(
@@ -789,8 +1068,8 @@ impl Report {
             );
         } else {
             out.push_str(
-                "<table>\n<thead><tr><th>diagnostic</th><th>severity</th><th>value</th>\
-                 <th>threshold</th><th>what it means</th></tr></thead>\n<tbody>\n",
+                "<div class=\"wide\">\n<table>\n<thead><tr><th>diagnostic</th><th>severity</th>\
+                 <th>value</th><th>threshold</th><th>what it means</th></tr></thead>\n<tbody>\n",
             );
             for w in &self.warnings {
                 let class = match w.severity.as_str() {
@@ -809,11 +1088,13 @@ impl Report {
                     escape(&w.meaning)
                 );
             }
-            out.push_str("</tbody>\n</table>\n");
+            out.push_str("</tbody>\n</table>\n</div>\n");
         }
         out.push_str("</section>\n");
 
-        out.push_str("<section id=\"settings\">\n<h2>Settings</h2>\n<table>\n<tbody>\n");
+        out.push_str(
+            "<section id=\"settings\">\n<h2>Settings</h2>\n<div class=\"wide\">\n<table>\n<tbody>\n",
+        );
         for (name, value) in &self.settings {
             let _ = writeln!(
                 out,
@@ -822,7 +1103,7 @@ impl Report {
                 escape(value)
             );
         }
-        out.push_str("</tbody>\n</table>\n</section>\n");
+        out.push_str("</tbody>\n</table>\n</div>\n</section>\n");
 
         if let Some(main) = &self.main {
             part_html(&mut out, main);
@@ -929,7 +1210,13 @@ mod tests {
             outcome.selected[m - 1],
             "the test needs the odd id selected"
         );
-        selection_report(&summary, &ids, &outcome, Some(part), WeightsMethod::Fitted).render()
+        let view = PoolView {
+            ids: &ids,
+            predictions: &px,
+            threshold: Some(0.5),
+            direction: Direction::Above,
+        };
+        selection_report(&summary, &view, &outcome, Some(part), WeightsMethod::Fitted).render()
     }
 
     #[test]
@@ -949,7 +1236,10 @@ mod tests {
             .map(|s| html.find(s).unwrap_or_else(|| panic!("missing {s}")))
             .collect();
         assert!(positions.windows(2).all(|w| w[0] < w[1]), "{positions:?}");
-        assert_eq!(html.matches("<svg").count(), 3);
+        // The selection plot and the three shift plots (SelectOptions' default computes no
+        // level curve).
+        assert_eq!(html.matches("<svg").count(), 4);
+        assert!(html.find("Selection: prediction against weight") < html.find("id=\"shift\""));
         assert!(!html.to_lowercase().contains("<script"));
         assert!(!html.contains("http://") && !html.contains("https://"));
         for c in CAUTIONS {
@@ -973,6 +1263,66 @@ mod tests {
         assert!(html.contains("&lt;b&gt;&amp;&quot;"));
         assert!(!html.contains("<b>&\""));
         assert!(html.contains("lab&lt;el&gt;ed.csv"));
+    }
+
+    /// Tables are in the page flow: no scroll box, no height limit, on screen or in print.
+    #[test]
+    fn tables_are_never_in_scroll_boxes() {
+        let html = fitted_report("plain");
+        for banned in [
+            "class=\"scroll\"",
+            "max-height",
+            "overflow-y",
+            "overflow: auto",
+        ] {
+            assert!(!html.contains(banned), "{banned}");
+        }
+        // Plots are not shrunk to the page width on screen (their text would shrink with
+        // them), only in print.
+        let print = STYLE.find("@media print").unwrap();
+        assert!(STYLE.find("max-width: 100%").unwrap() > print);
+    }
+
+    /// A long table shows its first TABLE_ROWS_SHOWN rows and names the file with the rest;
+    /// a table without a file shows every row.
+    #[test]
+    fn long_tables_show_the_first_rows_and_point_to_the_file() {
+        let rows: Vec<Vec<String>> = (0..250).map(|i| vec![format!("unit-{i}")]).collect();
+        let mut table = Table {
+            header: vec!["id".to_string()],
+            rows,
+            rows_in: Some("candidates.csv".to_string()),
+            ..Table::default()
+        };
+        let mut out = String::new();
+        table_html(&mut out, &table);
+        assert_eq!(out.matches("<tr>").count(), 1 + TABLE_ROWS_SHOWN);
+        assert!(out.contains("unit-99<") && !out.contains("unit-100<"));
+        assert!(out
+            .contains("The first 100 of 250 rows are shown; the other 150 are in candidates.csv."));
+        table.rows_in = None;
+        let mut out = String::new();
+        table_html(&mut out, &table);
+        assert_eq!(out.matches("<tr>").count(), 251);
+        assert!(!out.contains("rows are shown"));
+    }
+
+    /// The shortlist table: best prediction first, with the prediction and selection
+    /// probability columns (and the other columns of shortlist.csv).
+    #[test]
+    fn shortlist_table_is_best_first_with_prediction_and_probability() {
+        let html = fitted_report("plain");
+        let start = html.find("id=\"shortlist\"").unwrap();
+        let section = &html[start..html[start..].find("</section>").unwrap() + start];
+        assert!(section.contains(
+            "<th>rank</th><th>id</th><th>prediction</th><th>p-value</th><th>q-value</th>\
+             <th>selection probability</th><th>weight</th><th>score</th>"
+        ));
+        // The pool's predictions increase with the unit index (fitted_report), so best
+        // first means the largest index, `plain`, first.
+        let first_row = &section[section.find("<tbody>").unwrap()..];
+        assert!(first_row
+            .starts_with("<tbody>\n<tr><td class=\"num\">1</td><td class=\"word\">plain</td>"));
     }
 
     #[test]

@@ -2,8 +2,12 @@
 # Rendering check of report.html: builds the release binary if needed, runs the demo into a
 # temporary folder, loads its report.html in headless Chromium (the Debian package
 # `chromium`), saves a screenshot and checks that the page rendered: the screenshot is a
-# PNG of the window size that is not a single colour, and the rendered DOM holds the three
-# inline SVG plots and every section of the report.
+# PNG of the window size that is not a single colour, and the rendered DOM holds the five
+# inline SVG plots and every section of the report. Then it measures, in Chromium, the
+# rendered size of every plot text (font size times the SVG's scale on screen) at a wide
+# (1280 px) and a narrow (420 px) window: at least 11 px (issue 12 item 8), and that no
+# table sits in a box of limited height. The measuring script goes into a copy of the page
+# (the report itself has no script). Finally it prints the page to PDF.
 #
 # Usage: tests/scripts/render_report.sh [SCREENSHOT.png]
 # (default: the screenshot stays in the temporary folder, whose path is printed).
@@ -41,12 +45,67 @@ chromium_run() {
     # itself references nothing outside the file.
     timeout 120 "$CHROMIUM" --headless --no-sandbox --disable-gpu --disable-quic \
         --no-first-run --disable-background-networking --disable-component-update \
-        --disable-sync --user-data-dir="$(mktemp -d -p "$WORK")" --window-size=1200,3000 \
+        --disable-sync --user-data-dir="$(mktemp -d -p "$WORK")" --window-size=1200,7000 \
         "$@" "file://$REPORT" 2>> "$WORK/chromium.log"
 }
 
 chromium_run --screenshot="$SHOT" > /dev/null
 chromium_run --dump-dom > "$WORK/dom.html"
+
+# A copy of the page with a measuring script; Chromium runs it before dumping the DOM.
+MEASURE="$OUT/measure.html"
+python3 - "$REPORT" "$MEASURE" <<'PY'
+import sys
+page = open(sys.argv[1], encoding="utf-8").read()
+script = """<script>
+const sizes = [];
+for (const t of document.querySelectorAll("svg text")) {
+  const m = t.getScreenCTM();
+  sizes.push(parseFloat(getComputedStyle(t).fontSize) * Math.hypot(m.a, m.b));
+}
+const boxed = [...document.querySelectorAll("table")].filter(t => {
+  for (let e = t.parentElement; e; e = e.parentElement) {
+    const s = getComputedStyle(e);
+    // A box of limited height, or one that scrolls vertically (overflow-x: auto makes
+    // overflow-y auto too, which is harmless while the content fits).
+    if (s.maxHeight !== "none") return true;
+    if ((s.overflowY === "auto" || s.overflowY === "scroll") && e.scrollHeight > e.clientHeight + 1) return true;
+  }
+  return false;
+}).length;
+const pre = document.createElement("pre");
+pre.id = "measured";
+pre.textContent = "MEASURED " + JSON.stringify({texts: sizes.length, smallest: Math.min(...sizes), boxed});
+document.body.appendChild(pre);
+</script>"""
+open(sys.argv[2], "w", encoding="utf-8").write(page.replace("</body>", script + "</body>"))
+PY
+for width in 1280 420; do
+    timeout 120 "$CHROMIUM" --headless --no-sandbox --disable-gpu --disable-quic \
+        --no-first-run --disable-background-networking --disable-component-update \
+        --disable-sync --user-data-dir="$(mktemp -d -p "$WORK")" --window-size=$width,2000 \
+        --dump-dom "file://$MEASURE" 2>> "$WORK/chromium.log" > "$WORK/measured-$width.html"
+    python3 - "$WORK/measured-$width.html" "$width" <<'PY'
+import json, re, sys
+text = open(sys.argv[1], encoding="utf-8").read()
+found = re.search(r"MEASURED (\{.*?\})", text)
+assert found, "the measuring script did not run"
+m = json.loads(found.group(1))
+print(f"window {sys.argv[2]} px: {m['texts']} plot texts, smallest rendered {m['smallest']:.1f} px, "
+      f"{m['boxed']} tables in boxes of limited height")
+assert m["texts"] > 50, m
+assert m["smallest"] >= 11.0, f"plot text of {m['smallest']:.1f} px at {sys.argv[2]} px wide"
+assert m["boxed"] == 0, m
+PY
+done
+rm "$MEASURE"
+timeout 120 "$CHROMIUM" --headless --no-sandbox --disable-gpu --disable-quic \
+    --no-first-run --disable-background-networking --disable-component-update \
+    --disable-sync --user-data-dir="$(mktemp -d -p "$WORK")" --no-pdf-header-footer \
+    --print-to-pdf="$WORK/report.pdf" "file://$REPORT" 2>> "$WORK/chromium.log" > /dev/null
+test -s "$WORK/report.pdf"
+head -c 5 "$WORK/report.pdf" | grep -q "%PDF-" || { echo "no PDF printed" >&2; exit 1; }
+echo "printed to $WORK/report.pdf"
 
 python3 - "$SHOT" "$WORK/dom.html" <<'PY'
 """Check the screenshot (PNG decoded with the standard library only) and the DOM."""
@@ -68,7 +127,7 @@ while pos < len(data):
         idat += body
     pos += 12 + length
 width, height, depth, colour, _, _, interlace = header
-assert (width, height) == (1200, 3000), f"unexpected size {width}x{height}"
+assert (width, height) == (1200, 7000), f"unexpected size {width}x{height}"
 assert depth == 8 and colour in (2, 6) and interlace == 0, header
 bpp = 3 if colour == 2 else 4
 raw = zlib.decompress(idat)
@@ -117,11 +176,11 @@ assert bluish > 0, "no labeled-set (blue) plot colour on screen"
 assert orangish > 0, "no pool (orange) plot colour on screen"
 
 dom = open(dom_path, encoding="utf-8").read()
-assert dom.count("<svg") == 3, f"{dom.count('<svg')} inline SVG plots in the DOM, expected 3"
-for section in ["title", "warnings", "settings", "shortlist", "shift", "comparison",
-                "cautions", "method"]:
+assert dom.count("<svg") == 5, f"{dom.count('<svg')} inline SVG plots in the DOM, expected 5"
+for section in ["title", "warnings", "settings", "shortlist", "shift", "level-curve",
+                "comparison", "calibration-batch", "cautions", "method"]:
     assert f'id="{section}"' in dom, f"section {section} missing from the DOM"
 assert "<script" not in dom.lower()
-print("DOM: 3 inline plots and every section present, no script")
+print("DOM: 5 inline plots and every section present, no script")
 PY
 echo "report rendered: $SHOT"

@@ -113,7 +113,7 @@ pub fn bh_count(p: &[f64], q: f64) -> Result<usize, SelectionError> {
 /// [`within_level`]), or `m + 1` if it passes at none. The decision is monotone in `k`
 /// (`q k / m` is computed by monotone floating-point operations), so a guess from
 /// `p m / q` corrected by a step or two is exact.
-fn first_passing_rank(p: f64, q: f64, m: usize) -> usize {
+pub(crate) fn first_passing_rank(p: f64, q: f64, m: usize) -> usize {
     let guess = (p * m as f64 / q).ceil();
     let mut k = if guess >= 1.0 {
         (guess.min((m + 1) as f64)) as usize

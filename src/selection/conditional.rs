@@ -41,7 +41,7 @@ use crate::conformal::pvalue::{check_weights, CalibrationSet, PoolPValues};
 /// Extra relative margin used only to widen the segment-tree filters in the fast
 /// conditional calibration, so that rounding in the rearranged thresholds never hides an
 /// index that [`within_level`] would pass. Candidates are re-decided exactly.
-const FILTER_MARGIN: f64 = 1e-9;
+pub(crate) const FILTER_MARGIN: f64 = 1e-9;
 
 /// Result of conditional calibration for every pool unit, in input order.
 #[derive(Clone, Debug)]
@@ -64,7 +64,7 @@ pub struct ConditionalSelection {
 /// right), from the right end leftwards; the keys increase along the returned list.
 /// For any `lo`, the rightmost index in `[lo, len - 1]` with `key >= x` is on this list:
 /// an index off the list has a key no larger than some index to its right.
-fn right_to_left_maxima(keys: &[f64]) -> Vec<usize> {
+pub(crate) fn right_to_left_maxima(keys: &[f64]) -> Vec<usize> {
     let mut stairs = Vec::new();
     let mut best = f64::NEG_INFINITY;
     for (index, &key) in keys.iter().enumerate().rev() {
@@ -79,7 +79,7 @@ fn right_to_left_maxima(keys: &[f64]) -> Vec<usize> {
 /// Rightmost index in `[lo, hi]` with `passes_filter(index) && verify(index)`, scanning
 /// leftwards from `hi`. Only used after a widened-filter candidate failed verification,
 /// which needs a boundary gap between 1e-12 and 1e-9 relative (practically never).
-fn scan_left(
+pub(crate) fn scan_left(
     lo: usize,
     hi: usize,
     passes_filter: impl Fn(usize) -> bool,

@@ -417,10 +417,19 @@ impl<'c> Summary<'c> {
 
     /// `K_j` as far as the bucket summary decides it (docs/streaming.md).
     fn decide(&self, score: f64, w: f64) -> Decision {
-        let bucket = self
-            .calibration
+        self.decide_in(self.bucket_of(score), score, w)
+    }
+
+    /// The bucket `#{i : V_i < score}`.
+    #[inline]
+    fn bucket_of(&self, score: f64) -> usize {
+        self.calibration
             .sorted_scores()
-            .partition_point(|&v| v < score);
+            .partition_point(|&v| v < score)
+    }
+
+    /// [`Self::decide`] with the unit's bucket already known.
+    fn decide_in(&self, bucket: usize, score: f64, w: f64) -> Decision {
         let own = self.entry_of_bucket[bucket] as usize;
         // High region: bucket ends after b_j, which are the later non-empty buckets and the
         // own bucket when a pool score in it lies above this one.
@@ -886,15 +895,25 @@ struct Decided {
 
 fn decide_chunk(summary: &Summary<'_>, scores: &[f64], weights: Option<&[f64]>) -> Vec<Decided> {
     let cal = summary.calibration;
+    let labeled = cal.sorted_scores();
     scores
         .par_iter()
         .enumerate()
         .map(|(i, &s)| {
             let w = weights.map_or(1.0, |w| w[i]);
+            // One search: #{V_i < s} is the bucket, #{V_i <= s} adds the labeled scores
+            // equal to s (usually none). The same counts as weight_below and
+            // weight_at_or_below, so the same prefix sums.
+            let bucket = summary.bucket_of(s);
+            let at_or_below = if labeled.get(bucket).is_some_and(|&v| v <= s) {
+                bucket + labeled[bucket..].partition_point(|&v| v <= s)
+            } else {
+                bucket
+            };
             Decided {
-                decision: summary.decide(s, w),
-                below: cal.weight_below(s),
-                at_or_below: cal.weight_at_or_below(s),
+                decision: summary.decide_in(bucket, s, w),
+                below: cal.prefix_weight(bucket),
+                at_or_below: cal.prefix_weight(at_or_below),
             }
         })
         .collect()

@@ -85,7 +85,9 @@ fn check_pvalues(p: &[f64]) -> Result<(), SelectionError> {
     Ok(())
 }
 
-/// Indices that sort `p` ascending (stable, so ties keep input order).
+/// Indices that sort `p` ascending (stable, so ties keep input order): the order
+/// [`bh_adjusted`] walks, kept as the reference its faster sort is tested against.
+#[cfg(test)]
 fn ascending_order(p: &[f64]) -> Vec<usize> {
     let mut order: Vec<usize> = (0..p.len()).collect();
     order.par_sort_by(|&a, &b| p[a].total_cmp(&p[b]));
@@ -113,7 +115,7 @@ pub fn bh_count(p: &[f64], q: f64) -> Result<usize, SelectionError> {
 /// [`within_level`]), or `m + 1` if it passes at none. The decision is monotone in `k`
 /// (`q k / m` is computed by monotone floating-point operations), so a guess from
 /// `p m / q` corrected by a step or two is exact.
-fn first_passing_rank(p: f64, q: f64, m: usize) -> usize {
+pub(crate) fn first_passing_rank(p: f64, q: f64, m: usize) -> usize {
     let guess = (p * m as f64 / q).ceil();
     let mut k = if guess >= 1.0 {
         (guess.min((m + 1) as f64)) as usize
@@ -200,12 +202,16 @@ pub fn benjamini_yekutieli(p: &[f64], q: f64) -> Result<Selection, SelectionErro
 pub fn bh_adjusted(p: &[f64], factor: f64) -> Result<Vec<f64>, SelectionError> {
     check_pvalues(p)?;
     let m = p.len();
-    let order = ascending_order(p);
+    // (p, index) pairs sorted by p, ties by index: the order of a stable sort of the
+    // indices by p (`ascending_order`), but comparing values held beside each other instead
+    // of reading p[a], p[b] at random for every comparison (about 6x faster at 10^6).
+    let mut pairs: Vec<(f64, usize)> = p.iter().copied().zip(0..m).collect();
+    pairs.par_sort_unstable_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)));
     let mut adjusted = vec![0.0; m];
     let mut running = f64::INFINITY;
     for k in (1..=m).rev() {
-        let j = order[k - 1];
-        running = running.min(factor * m as f64 * p[j] / k as f64);
+        let (pj, j) = pairs[k - 1];
+        running = running.min(factor * m as f64 * pj / k as f64);
         adjusted[j] = running.min(1.0);
     }
     Ok(adjusted)
@@ -240,6 +246,40 @@ mod tests {
                 check_fdr(bad),
                 Err(SelectionError::FdrOutOfRange(_))
             ));
+        }
+    }
+
+    /// The pair sort walks the same order as the stable index sort it replaced, so the
+    /// q-values are bit for bit those of the plain loop over `ascending_order`.
+    #[test]
+    fn bh_adjusted_equals_the_stable_index_order_walk() {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(4);
+        for case in 0..200 {
+            let m = rng.gen_range(1..3000);
+            let grid = rng.gen_range(1..50);
+            let p: Vec<f64> = (0..m)
+                .map(|_| f64::from(rng.gen_range(0..=grid)) / f64::from(grid))
+                .collect();
+            let factor = if case % 2 == 0 {
+                1.0
+            } else {
+                harmonic_number(m)
+            };
+            let order = ascending_order(&p);
+            let mut expected = vec![0.0; m];
+            let mut running = f64::INFINITY;
+            for k in (1..=m).rev() {
+                let j = order[k - 1];
+                running = running.min(factor * m as f64 * p[j] / k as f64);
+                expected[j] = running.min(1.0);
+            }
+            let got = bh_adjusted(&p, factor).unwrap();
+            assert_eq!(
+                got.iter().map(|x| x.to_bits()).collect::<Vec<_>>(),
+                expected.iter().map(|x| x.to_bits()).collect::<Vec<_>>(),
+                "case {case}"
+            );
         }
     }
 

@@ -36,12 +36,12 @@ use rayon::prelude::*;
 
 use super::bh::{bh_level, check_fdr, within_level, SelectionError, TIE_TOLERANCE};
 use super::pruning::{prune_with, Pruning};
-use crate::conformal::pvalue::{check_weights, weight_of, CalibrationSet, PoolPValues};
+use crate::conformal::pvalue::{check_weights, CalibrationSet, PoolPValues};
 
 /// Extra relative margin used only to widen the segment-tree filters in the fast
 /// conditional calibration, so that rounding in the rearranged thresholds never hides an
 /// index that [`within_level`] would pass. Candidates are re-decided exactly.
-const FILTER_MARGIN: f64 = 1e-9;
+pub(crate) const FILTER_MARGIN: f64 = 1e-9;
 
 /// Result of conditional calibration for every pool unit, in input order.
 #[derive(Clone, Debug)]
@@ -64,7 +64,7 @@ pub struct ConditionalSelection {
 /// right), from the right end leftwards; the keys increase along the returned list.
 /// For any `lo`, the rightmost index in `[lo, len - 1]` with `key >= x` is on this list:
 /// an index off the list has a key no larger than some index to its right.
-fn right_to_left_maxima(keys: &[f64]) -> Vec<usize> {
+pub(crate) fn right_to_left_maxima(keys: &[f64]) -> Vec<usize> {
     let mut stairs = Vec::new();
     let mut best = f64::NEG_INFINITY;
     for (index, &key) in keys.iter().enumerate().rev() {
@@ -79,7 +79,7 @@ fn right_to_left_maxima(keys: &[f64]) -> Vec<usize> {
 /// Rightmost index in `[lo, hi]` with `passes_filter(index) && verify(index)`, scanning
 /// leftwards from `hi`. Only used after a widened-filter candidate failed verification,
 /// which needs a boundary gap between 1e-12 and 1e-9 relative (practically never).
-fn scan_left(
+pub(crate) fn scan_left(
     lo: usize,
     hi: usize,
     passes_filter: impl Fn(usize) -> bool,
@@ -106,12 +106,12 @@ pub fn conditional_counts(
 
 /// The pool sorted once, with `A(k)` and `b_j`, so that `K_j` can be computed at several
 /// levels without sorting again (the level curve). Nothing here depends on q.
-pub struct PreparedPool<'a> {
+pub struct PreparedPool {
     /// `None` for an empty pool.
-    sorted: Option<SortedPool<'a>>,
+    sorted: Option<SortedPool>,
 }
 
-impl<'a> PreparedPool<'a> {
+impl PreparedPool {
     /// Sort the pool scores and compute `A(k)` and `b_j`.
     ///
     /// # Errors
@@ -119,7 +119,7 @@ impl<'a> PreparedPool<'a> {
     pub fn new(
         calibration: &CalibrationSet,
         pool_scores: &[f64],
-        pool_weights: Option<&'a [f64]>,
+        pool_weights: Option<&[f64]>,
     ) -> Result<Self, SelectionError> {
         let m = pool_scores.len();
         if let Some(index) = pool_scores.iter().position(|v| v.is_nan()) {
@@ -159,7 +159,7 @@ impl<'a> PreparedPool<'a> {
 }
 
 /// The pool in sorted score order with what both regions of the `K_j` search read.
-struct SortedPool<'a> {
+struct SortedPool {
     q: f64,
     m: usize,
     /// `W`, the total labeled weight.
@@ -170,15 +170,18 @@ struct SortedPool<'a> {
     below: Vec<f64>,
     /// `last_tied[pos]`: 1-based `b` for the unit at sorted position `pos` (0-based).
     last_tied: Vec<usize>,
-    pool_weights: Option<&'a [f64]>,
+    /// `sorted_weights[pos]`: the weight of the unit at sorted position `pos`, gathered
+    /// once (`None` = every weight 1). Both regions read the weights in sorted order; a
+    /// gather through `order` there was a random read before each dependent search.
+    sorted_weights: Option<Vec<f64>>,
 }
 
-impl<'a> SortedPool<'a> {
+impl SortedPool {
     /// Sort the pool scores and compute `A(k)` and `b` (`pool_scores` non-empty, no NaN).
     fn new(
         calibration: &CalibrationSet,
         pool_scores: &[f64],
-        pool_weights: Option<&'a [f64]>,
+        pool_weights: Option<&[f64]>,
         q: f64,
     ) -> Self {
         let m = pool_scores.len();
@@ -209,6 +212,8 @@ impl<'a> SortedPool<'a> {
             }
             last_tied[pos] = end;
         }
+        let sorted_weights =
+            pool_weights.map(|w| order.par_iter().map(|&j| w[j]).collect::<Vec<f64>>());
         SortedPool {
             q,
             m,
@@ -216,13 +221,13 @@ impl<'a> SortedPool<'a> {
             order,
             below,
             last_tied,
-            pool_weights,
+            sorted_weights,
         }
     }
 
     #[inline]
     fn weight_at(&self, pos: usize) -> f64 {
-        weight_of(self.pool_weights, self.order[pos])
+        self.sorted_weights.as_ref().map_or(1.0, |w| w[pos])
     }
 
     #[inline]

@@ -9,6 +9,8 @@
 //!   probability, per-unit selection probability);
 //! - [`level_curve`]: expected conditional shortlist and BH count over a grid of levels;
 //! - [`resolution`]: pool units at the p-value floor, which the labeled set cannot rank;
+//! - [`streaming`]: conditional calibration and the BH count with the pool streamed in
+//!   passes (memory `O(n)` plus a budget);
 //! - [`pipeline`]: one run from scores to the shortlist (checked options, scores ->
 //!   p-values -> procedure, counts, warnings).
 
@@ -19,6 +21,7 @@ pub mod level_curve;
 pub mod pipeline;
 pub mod pruning;
 pub mod resolution;
+pub mod streaming;
 
 /// An FDR level for people: as typed for ordinary levels (`0.1`, `0.05`), in scientific
 /// notation with three significant digits below 1e-4 (`1.00e-300`; Rust's `{}` would print

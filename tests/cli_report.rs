@@ -218,7 +218,7 @@ fn shortlist_table_and_selection_plot() {
         .collect();
     assert_eq!(rows.len(), 100, "the first 100 rows");
     assert!(section.contains(&format!(
-        "The first 100 of {} rows are shown; the other {} are in candidates.csv",
+        "The first 100 of {} rows are shown; the other {} are in shortlist.csv",
         selected.len(),
         selected.len() - 100
     )));

@@ -446,7 +446,7 @@ pub fn shortlist_part(
             rows,
             note: None,
             scroll: false,
-            rows_in: Some("candidates.csv (the rows with selected = true)".to_string()),
+            rows_in: Some("shortlist.csv".to_string()),
         }],
     }
 }

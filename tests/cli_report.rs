@@ -166,6 +166,37 @@ fn shortlist_table_and_selection_plot() {
         out.to_str().unwrap(),
     ]);
     let html = check_page(&out.join("report.html"), 2);
+    // The warnings table speaks the ordered scale of summary.json `warning_details`
+    // (low < medium < high), one row per warning, in the same order; the settings say
+    // what "interesting" means in words.
+    let summary: serde_json::Value =
+        serde_json::from_slice(&fs::read(out.join("summary.json")).unwrap()).unwrap();
+    let levels: Vec<String> = summary["warning_details"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .map(|w| w["level"].as_str().unwrap().to_string())
+        .collect();
+    assert!(
+        !levels.is_empty(),
+        "the fixture run warns (the draw, unreachable units)"
+    );
+    let table_start = html.find("<th>concern</th>").expect("a concern column");
+    let table = &html[table_start..table_start + html[table_start..].find("</table>").unwrap()];
+    let shown: Vec<&str> = table
+        .split("<tr class=\"")
+        .skip(1)
+        .map(|row| {
+            row.split("</td><td>")
+                .nth(1)
+                .unwrap()
+                .split('<')
+                .next()
+                .unwrap()
+        })
+        .collect();
+    assert_eq!(shown, levels, "report rows follow warning_details");
+    assert!(html.contains("outcome above 6.5"), "threshold in words");
     let units = candidates(&out);
     let selected: Vec<&(String, bool, bool, f64)> = units.iter().filter(|u| u.1).collect();
     assert!(selected.len() > 100, "the test needs a long shortlist");

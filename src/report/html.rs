@@ -89,6 +89,23 @@ impl Finding {
         }
     }
 
+    /// A warning object (`warning_details`): its diagnostic, its level on the ordered
+    /// scale (low < medium < high), value, threshold and message.
+    pub fn from_warning(w: &crate::warning::Warning) -> Self {
+        let dash = || "\u{2014}".to_string();
+        Finding {
+            diagnostic: if w.title.is_empty() {
+                w.diagnostic.clone()
+            } else {
+                w.title.clone()
+            },
+            severity: w.level.word().to_string(),
+            value: w.value.map_or_else(dash, number),
+            threshold: w.threshold.map_or_else(dash, number),
+            meaning: w.message.clone(),
+        }
+    }
+
     /// A warning given as one line "name: message" (the selection's and the audit's own
     /// warnings, which state their values in the message).
     pub fn from_line(line: &str) -> Self {
@@ -235,7 +252,12 @@ pub fn selection_settings(summary: &SelectSummary) -> Vec<(String, String)> {
     let mut rows = vec![
         ("labeled file".to_string(), s.inputs.labeled_file.clone()),
         ("pool file".to_string(), s.inputs.pool_file.clone()),
-        ("threshold".to_string(), s.inputs.threshold.clone()),
+        (
+            "interesting units".to_string(),
+            s.threshold_rule
+                .as_ref()
+                .map_or_else(|| s.inputs.threshold.clone(), |rule| rule.words()),
+        ),
         ("target FDR q".to_string(), number(s.fdr)),
         ("procedure".to_string(), s.procedure.to_string()),
         (
@@ -647,18 +669,31 @@ pub fn selection_report(
         .as_ref()
         .map(|s| s.summary.warnings.iter().map(warning_line).collect())
         .unwrap_or_default();
-    let mut warnings: Vec<Finding> = summary
-        .shift
-        .as_ref()
-        .map(|s| s.summary.warnings.iter().map(Finding::from_shift).collect())
-        .unwrap_or_default();
-    warnings.extend(
+    // The warning objects when the summary has them (every run of this version): one
+    // ordered scale, worst first; otherwise the earlier strings.
+    let warnings: Vec<Finding> = if summary.warning_details.len() == summary.warnings.len()
+        && !summary.warning_details.is_empty()
+    {
         summary
-            .warnings
+            .warning_details
             .iter()
-            .filter(|w| !shift_lines.contains(w))
-            .map(|w| Finding::from_line(w)),
-    );
+            .map(Finding::from_warning)
+            .collect()
+    } else {
+        let mut warnings: Vec<Finding> = summary
+            .shift
+            .as_ref()
+            .map(|s| s.summary.warnings.iter().map(Finding::from_shift).collect())
+            .unwrap_or_default();
+        warnings.extend(
+            summary
+                .warnings
+                .iter()
+                .filter(|w| !shift_lines.contains(w))
+                .map(|w| Finding::from_line(w)),
+        );
+        warnings
+    };
     Report {
         title: "weighbridge selection report".to_string(),
         verdict: selection_verdict(summary),
@@ -1068,13 +1103,13 @@ impl Report {
             );
         } else {
             out.push_str(
-                "<div class=\"wide\">\n<table>\n<thead><tr><th>diagnostic</th><th>severity</th>\
+                "<div class=\"wide\">\n<table>\n<thead><tr><th>diagnostic</th><th>concern</th>\
                  <th>value</th><th>threshold</th><th>what it means</th></tr></thead>\n<tbody>\n",
             );
             for w in &self.warnings {
                 let class = match w.severity.as_str() {
-                    "severe" => "severe",
-                    "caution" => "caution",
+                    "severe" | "high" => "severe",
+                    "caution" | "medium" => "caution",
                     _ => "warning",
                 };
                 let _ = writeln!(

@@ -562,17 +562,28 @@ pub fn selection_svg(plot: &SelectionPlot<'_>) -> Result<(String, SelectionMarks
     // Ranges over every unit (not only those marked), so that thinning never moves the axes.
     let usable =
         (0..m).filter(|&j| plot.predictions[j].is_finite() && x(j) > 0.0 && x(j).is_finite());
+    // Predictions on a log axis when they are all positive and span more than three
+    // decades (IC50s in nM, say); a linear axis would squeeze all but the largest into one
+    // line.
+    let (mut plo, mut phi) = (f64::INFINITY, f64::NEG_INFINITY);
+    for j in usable.clone() {
+        plo = plo.min(plot.predictions[j]);
+        phi = phi.max(plot.predictions[j]);
+    }
+    let threshold_positive = !matches!(plot.threshold, Some(c) if c.is_finite() && c <= 0.0);
+    let ylog = plo > 0.0 && phi / plo > 1e3 && threshold_positive;
+    let fy = move |v: f64| if ylog { v.log10() } else { v };
     let (mut xlo, mut xhi, mut ylo, mut yhi) =
         (f64::INFINITY, 0.0f64, f64::INFINITY, f64::NEG_INFINITY);
     for j in usable {
         xlo = xlo.min(x(j));
         xhi = xhi.max(x(j));
-        ylo = ylo.min(plot.predictions[j]);
-        yhi = yhi.max(plot.predictions[j]);
+        ylo = ylo.min(fy(plot.predictions[j]));
+        yhi = yhi.max(fy(plot.predictions[j]));
     }
     if let Some(c) = plot.threshold.filter(|c| c.is_finite()) {
-        ylo = ylo.min(c);
-        yhi = yhi.max(c);
+        ylo = ylo.min(fy(c));
+        yhi = yhi.max(fy(c));
     }
     let pad = ((yhi - ylo) * 0.04).max(1e-6);
     let (ylo, yhi) = (ylo - pad, yhi + pad);
@@ -613,8 +624,19 @@ pub fn selection_svg(plot: &SelectionPlot<'_>) -> Result<(String, SelectionMarks
             } else {
                 "p-value, log scale"
             })
-            .y_desc("prediction")
+            .y_desc(if ylog {
+                "prediction, log scale"
+            } else {
+                "prediction"
+            })
             .x_label_formatter(&|v| log_tick(*v))
+            .y_label_formatter(&|v| {
+                if ylog {
+                    log_tick(10f64.powf(*v))
+                } else {
+                    crate::report::summary::shown(*v)
+                }
+            })
             .light_line_style(TRANSPARENT)
             .draw()
             .map_err(backend(PLOT))?;
@@ -625,7 +647,7 @@ pub fn selection_svg(plot: &SelectionPlot<'_>) -> Result<(String, SelectionMarks
                 .iter()
                 .copied()
                 .filter(move |&j| MarkKind::of(plot, j) == kind)
-                .map(move |j| (x(j), plot.predictions[j]))
+                .map(move |j| (x(j), fy(plot.predictions[j])))
         };
         // Drawn back to front: the many unselected units first.
         chart
@@ -655,7 +677,7 @@ pub fn selection_svg(plot: &SelectionPlot<'_>) -> Result<(String, SelectionMarks
         if let Some(c) = plot.threshold.filter(|c| c.is_finite()) {
             chart
                 .draw_series(std::iter::once(PathElement::new(
-                    vec![(xlo, c), (xhi, c)],
+                    vec![(xlo, fy(c)), (xhi, fy(c))],
                     BLACK.stroke_width(1),
                 )))
                 .map_err(backend(PLOT))?
@@ -861,6 +883,37 @@ mod tests {
         assert!(svg.contains("p-value, log scale"));
         assert_eq!(svg.matches("<circle").count(), 100 + 2);
         assert!(marks.complete);
+    }
+
+    #[test]
+    fn predictions_spanning_decades_go_on_a_log_axis() {
+        // IC50-like predictions from 0.01 to 1e7 (nine decades): log axis; the same
+        // shape within one decade, or with a value <= 0: linear (common practice: a log
+        // axis for positive values over several orders of magnitude).
+        let (base, weights, p, selected, _) = plot_inputs(200);
+        let decades: Vec<f64> = (0..200)
+            .map(|i| 10f64.powf(-2.0 + 9.0 * i as f64 / 199.0))
+            .collect();
+        let narrow: Vec<f64> = (0..200).map(|i| 1.0 + i as f64 / 40.0).collect();
+        let signed: Vec<f64> = decades.iter().map(|v| v - 1.0).collect();
+        for (predictions, log) in [
+            (&decades, true),
+            (&narrow, false),
+            (&signed, false),
+            (&base, false),
+        ] {
+            let plot = SelectionPlot {
+                predictions,
+                weights: &weights,
+                p_values: &p,
+                selected: &selected,
+                first_step: None,
+                threshold: Some(300.0),
+                unreachable_above: None,
+            };
+            let svg = selection_svg(&plot).unwrap().0;
+            assert_eq!(svg.contains("prediction, log scale"), log);
+        }
     }
 
     #[test]

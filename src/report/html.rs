@@ -24,8 +24,8 @@ use crate::report::plots::{
     balance_svg, overlap_svg, selection_svg, weights_svg, PlotError, SelectionPlot,
     SELECTION_PLOT_MARKS,
 };
+use crate::report::SelectSummary;
 use crate::report::{shift_diagnostics_text, ShiftReport, ShiftSection, CAUTIONS};
-use crate::report::{warning_line, SelectSummary};
 use crate::selection::pipeline::SelectionOutcome;
 use crate::shift::{Severity, ShiftWarning};
 use crate::workflows::rescreen::{Change, ChangeCounts, UnitChange};
@@ -662,38 +662,13 @@ pub fn selection_report(
     shift: Option<ShiftPart>,
     weights_method: WeightsMethod,
 ) -> Report {
-    // With fitted weights the summary's warnings begin with the shift warnings (as lines);
-    // they are listed from the structured form instead.
-    let shift_lines: Vec<String> = summary
-        .shift
-        .as_ref()
-        .map(|s| s.summary.warnings.iter().map(warning_line).collect())
-        .unwrap_or_default();
-    // The warning objects when the summary has them (every run of this version): one
-    // ordered scale, worst first; otherwise the earlier strings.
-    let warnings: Vec<Finding> = if summary.warning_details.len() == summary.warnings.len()
-        && !summary.warning_details.is_empty()
-    {
-        summary
-            .warning_details
-            .iter()
-            .map(Finding::from_warning)
-            .collect()
-    } else {
-        let mut warnings: Vec<Finding> = summary
-            .shift
-            .as_ref()
-            .map(|s| s.summary.warnings.iter().map(Finding::from_shift).collect())
-            .unwrap_or_default();
-        warnings.extend(
-            summary
-                .warnings
-                .iter()
-                .filter(|w| !shift_lines.contains(w))
-                .map(|w| Finding::from_line(w)),
-        );
-        warnings
-    };
+    // The warning objects (`SelectSummary::add_warning` keeps them beside the strings):
+    // one ordered scale, worst first.
+    let warnings: Vec<Finding> = summary
+        .warning_details
+        .iter()
+        .map(Finding::from_warning)
+        .collect();
     Report {
         title: "weighbridge selection report".to_string(),
         verdict: selection_verdict(summary),

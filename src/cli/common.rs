@@ -762,7 +762,7 @@ pub(crate) fn read_inputs(config: &SelectConfig) -> Result<(UnitTable, UnitTable
 }
 
 /// At most this many shared ids are named in the warning.
-const SHARED_IDS_LISTED: usize = 10;
+pub(crate) const SHARED_IDS_LISTED: usize = 10;
 
 /// The warning for ids that appear in both the labeled file and the pool: a unit both
 /// assayed and "untested" is usually a pool that was not updated after an assay, and it is
@@ -780,20 +780,30 @@ pub(crate) fn shared_ids_warning(
         .map(String::as_str)
         .filter(|id| labeled_ids.contains(id))
         .collect();
-    if shared.is_empty() {
+    let first: Vec<&str> = shared.iter().take(SHARED_IDS_LISTED).copied().collect();
+    shared_ids_warning_of(&first, shared.len())
+}
+
+/// [`shared_ids_warning`] from the first shared ids in pool order (at most
+/// [`SHARED_IDS_LISTED`] are named) and their total count.
+pub(crate) fn shared_ids_warning_of(
+    first: &[&str],
+    count: usize,
+) -> Option<crate::warning::Warning> {
+    if count == 0 {
         return None;
     }
-    let listed: Vec<String> = shared
+    let listed: Vec<String> = first
         .iter()
         .take(SHARED_IDS_LISTED)
         .map(|id| format!("`{}`", crate::io::errors::shown_text(id)))
         .collect();
-    let more = shared.len().saturating_sub(SHARED_IDS_LISTED);
+    let more = count.saturating_sub(listed.len());
     let message = format!(
         "{} id(s) appear in the labeled file and in the pool ({}{}); such a unit is both \
          assayed and treated as untested. Remove assayed units from the pool, or check that \
          the two files use different ids for different units.",
-        shared.len(),
+        count,
         listed.join(", "),
         if more > 0 {
             format!(" and {more} more")
@@ -808,7 +818,7 @@ pub(crate) fn shared_ids_warning(
             "shared_id_count",
             message,
         )
-        .measured(shared.len() as f64, 0.0)
+        .measured(count as f64, 0.0)
         .titled("ids in both files"),
     )
 }
@@ -821,6 +831,16 @@ pub(crate) fn describe_run(
     labeled: &crate::io::UnitTable,
     pool: &crate::io::UnitTable,
 ) {
+    describe_run_columns(summary, config, &labeled.feature_names, &pool.kept.names);
+}
+
+/// [`describe_run`] from the column names alone (the streamed selection holds no table).
+pub(crate) fn describe_run_columns(
+    summary: &mut crate::report::SelectSummary,
+    config: &SelectConfig,
+    feature_names: &[String],
+    kept_names: &[String],
+) {
     summary.command_line = super::command_line();
     summary.threshold_rule = Some(crate::report::ThresholdRule::new(
         config.threshold,
@@ -829,8 +849,8 @@ pub(crate) fn describe_run(
     ));
     summary.columns = Some(crate::report::Columns::of(
         &config.labeled_read,
-        &labeled.feature_names,
-        &pool.kept.names,
+        feature_names,
+        kept_names,
     ));
 }
 

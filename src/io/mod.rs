@@ -31,8 +31,8 @@ pub use folder::{FolderError, Manifest, RunFolder, MANIFEST};
 pub use outcome::{CensoredRule, MissingOutcome, OutcomeCells};
 pub use output::{abandon_temporaries, write_atomic, OutputSet};
 pub use read::{
-    column_overview, delimiter_for, parse_finite, read_id_list, read_table, read_table_choosing,
-    read_units, read_units_choosing, ColumnKind, ColumnOverview, KeptColumns, ReadOptions, Role,
-    UnitTable,
+    column_overview, delimiter_for, parse_finite, pool_id_hash, read_id_list, read_table,
+    read_table_choosing, read_units, read_units_choosing, ColumnKind, ColumnOverview, KeptColumns,
+    PoolChunk, PoolChunks, ReadOptions, Role, UnitTable,
 };
 pub use source::{check_one_stdin, Format, Source};

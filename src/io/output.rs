@@ -80,8 +80,15 @@ pub fn parse_temp_name(name: &str) -> Option<(&str, u32)> {
     Some((file_name, pid.parse().ok()?))
 }
 
+/// Where a temporary file's contents come from.
+enum WriteFrom<'a> {
+    Bytes(&'a [u8]),
+    /// Copied from its start.
+    File(&'a mut fs::File),
+}
+
 /// Write `bytes` to a new hidden temporary file next to the target and fsync it.
-fn write_temp(dir: &Path, file_name: &str, bytes: &[u8]) -> io::Result<PathBuf> {
+fn write_temp(dir: &Path, file_name: &str, from: WriteFrom<'_>) -> io::Result<PathBuf> {
     let process = std::process::id();
     loop {
         let count = TEMP_COUNTER.fetch_add(1, Ordering::Relaxed);
@@ -103,7 +110,17 @@ fn write_temp(dir: &Path, file_name: &str, bytes: &[u8]) -> io::Result<PathBuf> 
                 Err(error) => return Err(error),
             }
         };
-        let written = file.write_all(bytes).and_then(|()| file.sync_all());
+        let written = match from {
+            WriteFrom::Bytes(bytes) => file.write_all(bytes),
+            WriteFrom::File(source) => {
+                use std::io::Seek;
+                source
+                    .rewind()
+                    .and_then(|()| io::copy(source, &mut file))
+                    .map(|_| ())
+            }
+        }
+        .and_then(|()| file.sync_all());
         return match written {
             Ok(()) => Ok(temp),
             Err(error) => {
@@ -166,7 +183,7 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> io::Result<()> {
             )
         })?;
     let dir = parent_dir(path);
-    let temp = write_temp(dir, file_name, bytes)?;
+    let temp = write_temp(dir, file_name, WriteFrom::Bytes(bytes))?;
     Staged {
         temps: vec![(temp, path.to_path_buf())],
     }
@@ -234,7 +251,15 @@ impl Drop for Staged {
 /// operations; within one directory they do not fail in practice.)
 #[derive(Debug, Default)]
 pub struct OutputSet {
-    files: Vec<(String, Vec<u8>)>,
+    files: Vec<(String, Content)>,
+}
+
+/// What a staged file holds: bytes in memory, or a file already written elsewhere (an
+/// unnamed temporary file of the streamed selection, copied by the kernel when staged).
+#[derive(Debug)]
+enum Content {
+    Bytes(Vec<u8>),
+    File(fs::File),
 }
 
 impl OutputSet {
@@ -244,9 +269,19 @@ impl OutputSet {
 
     /// Stage a file. A later `add` with the same name replaces the earlier bytes.
     pub fn add(&mut self, file_name: &str, bytes: Vec<u8>) {
+        self.put(file_name, Content::Bytes(bytes));
+    }
+
+    /// Stage a file whose contents were written to `file` (read from its start when the
+    /// set is committed; outputs too large to hold in memory).
+    pub fn add_file(&mut self, file_name: &str, file: fs::File) {
+        self.put(file_name, Content::File(file));
+    }
+
+    fn put(&mut self, file_name: &str, content: Content) {
         match self.files.iter_mut().find(|(name, _)| name == file_name) {
-            Some(slot) => slot.1 = bytes,
-            None => self.files.push((file_name.to_string(), bytes)),
+            Some(slot) => slot.1 = content,
+            None => self.files.push((file_name.to_string(), content)),
         }
     }
 
@@ -288,7 +323,7 @@ impl OutputSet {
     /// Write every file to a temporary name in the existing folder `dir` (nothing is
     /// renamed yet). A directory in the way of a target is refused before anything is
     /// written, since its rename would fail after earlier files were renamed.
-    pub(crate) fn stage(self, dir: &Path) -> io::Result<Staged> {
+    pub(crate) fn stage(mut self, dir: &Path) -> io::Result<Staged> {
         for (name, _) in &self.files {
             let target = dir.join(name);
             if target.is_dir() {
@@ -301,9 +336,12 @@ impl OutputSet {
         let mut staged = Staged {
             temps: Vec::with_capacity(self.files.len()),
         };
-        for (name, bytes) in &self.files {
+        for (name, content) in &mut self.files {
             // On error `staged` is dropped, which removes the temporaries written so far.
-            let temp = write_temp(dir, name, bytes)?;
+            let temp = match content {
+                Content::Bytes(bytes) => write_temp(dir, name, WriteFrom::Bytes(bytes))?,
+                Content::File(file) => write_temp(dir, name, WriteFrom::File(file))?,
+            };
             staged.temps.push((temp, dir.join(name)));
         }
         Ok(staged)

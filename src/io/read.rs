@@ -22,6 +22,9 @@ use super::errors::{shown, InputError};
 use super::outcome::{classify, decide_censored, MissingOutcome, OutcomeCell, OutcomeCells};
 use super::source::{display_path, Source};
 
+mod chunks;
+pub use chunks::{id_hash as pool_id_hash, PoolChunk, PoolChunks};
+
 /// Which file a table came from; used in messages ("labeled file", "pool file").
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Role {

@@ -291,7 +291,7 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         threshold_rule: None,
         columns: None,
         n_labeled: outcome.n_labeled,
-        n_pool: outcome.scores.len(),
+        n_pool: outcome.pool_size,
         fdr: s.fdr,
         procedure: s.procedure.name(),
         pruning: s.pruning.map(|p| p.name()),
@@ -373,14 +373,22 @@ pub fn unselectable_reason(outcome: &SelectionOutcome, j: usize) -> String {
     if !outcome.unreachable[j] {
         return String::new();
     }
-    let w = outcome.weights[j];
+    unreachable_text(
+        outcome.weights[j],
+        outcome.total_labeled_weight,
+        outcome.settings.fdr,
+    )
+}
+
+/// [`unselectable_reason`] for a unit of weight `w`, labeled total `total`, level `fdr`.
+pub fn unreachable_text(w: f64, total: f64, fdr: f64) -> String {
     format!(
         "its p-value can never go below {} = w/(W+w) with weight {} (labeled total W = {}), \
          which is above the FDR level {}: the labeled set has too little weight near this unit",
-        prose_number(w / (outcome.total_labeled_weight + w)),
+        prose_number(w / (total + w)),
         prose_number(w),
-        prose_number(outcome.total_labeled_weight),
-        crate::selection::level_text(outcome.settings.fdr)
+        prose_number(total),
+        crate::selection::level_text(fdr)
     )
 }
 
@@ -509,8 +517,7 @@ pub fn candidates_csv(
     assert_eq!(ids.len(), outcome.scores.len(), "ids / outcome length");
     assert_eq!(ids.len(), pool.prediction.len(), "ids / predictions length");
     let mut writer = csv::Writer::from_writer(Vec::with_capacity(ids.len() * 96));
-    let mut header: Vec<String> = CANDIDATES_COLUMNS.iter().map(|c| c.to_string()).collect();
-    header.extend(kept_header(&pool.kept.names));
+    let header = candidates_header(&pool.kept.names);
     writer.write_record(&header).expect("write to memory");
     let mut rank = vec![0usize; ids.len()];
     for (r, &j) in shortlist_order(pool.prediction, &outcome.selected, pool.direction)
@@ -519,54 +526,165 @@ pub fn candidates_csv(
     {
         rank[j] = r + 1;
     }
-    let mut floats = ryu::Buffer::new();
-    let mut integers = itoa::Buffer::new();
-    let mut record = csv::ByteRecord::with_capacity(160, header.len());
+    let mut cells = RowCells::new(header.len());
     for (j, id) in ids.iter().enumerate() {
-        record.clear();
-        record.push_field(id.as_bytes());
-        for value in [outcome.scores[j], outcome.weights[j], outcome.p_values[j]] {
-            record.push_field(floats.format(value).as_bytes());
-        }
-        record.push_field(bool_text(outcome.selected[j]));
-        match (&outcome.first_step, &outcome.conditional_count) {
-            (Some(first), Some(count)) => {
-                record.push_field(bool_text(first[j]));
-                record.push_field(integers.format(count[j]).as_bytes());
-            }
-            _ => {
-                record.push_field(b"");
-                record.push_field(b"");
-            }
-        }
-        if outcome.unreachable[j] {
-            record.push_field(unselectable_reason(outcome, j).as_bytes());
-        } else {
-            record.push_field(b"");
-        }
-        record.push_field(
-            floats
-                .format(outcome.draw.selection_probability[j])
-                .as_bytes(),
-        );
-        record.push_field(floats.format(outcome.q_values[j]).as_bytes());
-        match &outcome.q_values_by {
-            Some(by) => record.push_field(floats.format(by[j]).as_bytes()),
-            None => record.push_field(b""),
-        }
-        record.push_field(bool_text(unreliable));
-        record.push_field(floats.format(pool.prediction[j]).as_bytes());
-        if rank[j] > 0 {
-            record.push_field(integers.format(rank[j]).as_bytes());
-        } else {
-            record.push_field(b"");
-        }
-        for cell in pool.kept.row(j) {
-            record.push_field(cell.as_bytes());
-        }
-        writer.write_byte_record(&record).expect("write to memory");
+        let reason = outcome.unreachable[j].then(|| unselectable_reason(outcome, j));
+        let row = CandidateRow {
+            id,
+            score: outcome.scores[j],
+            weight: outcome.weights[j],
+            p_value: outcome.p_values[j],
+            selected: outcome.selected[j],
+            conditional: match (&outcome.first_step, &outcome.conditional_count) {
+                (Some(first), Some(count)) => Some((first[j], count[j])),
+                _ => None,
+            },
+            unreachable_reason: reason.as_deref(),
+            selection_probability: outcome.draw.selection_probability[j],
+            q_value: outcome.q_values[j],
+            q_value_by: outcome.q_values_by.as_ref().map(|by| by[j]),
+            unreliable,
+            prediction: pool.prediction[j],
+            shortlist_rank: (rank[j] > 0).then_some(rank[j]),
+            kept: pool.kept.row(j),
+        };
+        writer
+            .write_byte_record(cells.candidate(&row))
+            .expect("write to memory");
     }
     writer.into_inner().expect("flush to memory")
+}
+
+/// The header of `candidates.csv`: [`CANDIDATES_COLUMNS`], then the kept columns.
+pub fn candidates_header(kept_names: &[String]) -> Vec<String> {
+    let mut header: Vec<String> = CANDIDATES_COLUMNS.iter().map(|c| c.to_string()).collect();
+    header.extend(kept_header(kept_names));
+    header
+}
+
+/// The header of `shortlist.csv`: [`SHORTLIST_COLUMNS`], then the kept columns.
+pub fn shortlist_header(kept_names: &[String]) -> Vec<String> {
+    let mut header: Vec<String> = SHORTLIST_COLUMNS.iter().map(|c| c.to_string()).collect();
+    header.extend(kept_header(kept_names));
+    header
+}
+
+/// One unit's row of `candidates.csv` (the in-memory and the streamed selection write
+/// rows through the same [`RowCells::candidate`]).
+pub struct CandidateRow<'a> {
+    pub id: &'a str,
+    pub score: f64,
+    pub weight: f64,
+    pub p_value: f64,
+    pub selected: bool,
+    /// Conditional calibration: first step and `K_j`.
+    pub conditional: Option<(bool, usize)>,
+    /// Why an unreachable unit can never be selected.
+    pub unreachable_reason: Option<&'a str>,
+    pub selection_probability: f64,
+    pub q_value: f64,
+    pub q_value_by: Option<f64>,
+    pub unreliable: bool,
+    pub prediction: f64,
+    pub shortlist_rank: Option<usize>,
+    pub kept: &'a [String],
+}
+
+/// One unit's row of `shortlist.csv`.
+pub struct ShortlistRow<'a> {
+    pub rank: usize,
+    pub id: &'a str,
+    pub prediction: f64,
+    pub p_value: f64,
+    pub q_value: f64,
+    pub selection_probability: f64,
+    pub weight: f64,
+    pub kept: &'a [String],
+}
+
+/// A reused record and number buffers for writing output rows.
+pub struct RowCells {
+    record: csv::ByteRecord,
+    floats: ryu::Buffer,
+    integers: itoa::Buffer,
+}
+
+impl RowCells {
+    /// Buffers for rows of `fields` fields.
+    pub fn new(fields: usize) -> Self {
+        RowCells {
+            record: csv::ByteRecord::with_capacity(160, fields),
+            floats: ryu::Buffer::new(),
+            integers: itoa::Buffer::new(),
+        }
+    }
+
+    /// The record of a `candidates.csv` row (floats in their shortest round-trip form).
+    pub fn candidate(&mut self, row: &CandidateRow<'_>) -> &csv::ByteRecord {
+        let RowCells {
+            record,
+            floats,
+            integers,
+        } = self;
+        record.clear();
+        record.push_field(row.id.as_bytes());
+        for value in [row.score, row.weight, row.p_value] {
+            record.push_field(floats.format(value).as_bytes());
+        }
+        record.push_field(bool_text(row.selected));
+        match row.conditional {
+            Some((first, count)) => {
+                record.push_field(bool_text(first));
+                record.push_field(integers.format(count).as_bytes());
+            }
+            None => {
+                record.push_field(b"");
+                record.push_field(b"");
+            }
+        }
+        record.push_field(row.unreachable_reason.unwrap_or("").as_bytes());
+        record.push_field(floats.format(row.selection_probability).as_bytes());
+        record.push_field(floats.format(row.q_value).as_bytes());
+        match row.q_value_by {
+            Some(by) => record.push_field(floats.format(by).as_bytes()),
+            None => record.push_field(b""),
+        }
+        record.push_field(bool_text(row.unreliable));
+        record.push_field(floats.format(row.prediction).as_bytes());
+        match row.shortlist_rank {
+            Some(rank) => record.push_field(integers.format(rank).as_bytes()),
+            None => record.push_field(b""),
+        }
+        for cell in row.kept {
+            record.push_field(cell.as_bytes());
+        }
+        record
+    }
+
+    /// The record of a `shortlist.csv` row.
+    pub fn shortlisted(&mut self, row: &ShortlistRow<'_>) -> &csv::ByteRecord {
+        let RowCells {
+            record,
+            floats,
+            integers,
+        } = self;
+        record.clear();
+        record.push_field(integers.format(row.rank).as_bytes());
+        record.push_field(row.id.as_bytes());
+        for value in [
+            row.prediction,
+            row.p_value,
+            row.q_value,
+            row.selection_probability,
+            row.weight,
+        ] {
+            record.push_field(floats.format(value).as_bytes());
+        }
+        for cell in row.kept {
+            record.push_field(cell.as_bytes());
+        }
+        record
+    }
 }
 
 /// The columns of `shortlist.csv` before the kept columns.
@@ -592,29 +710,23 @@ pub fn shortlist_csv(pool: &PoolColumns<'_>, outcome: &SelectionOutcome) -> Vec<
     assert_eq!(pool.ids.len(), outcome.scores.len(), "ids / outcome length");
     let order = shortlist_order(pool.prediction, &outcome.selected, pool.direction);
     let mut writer = csv::Writer::from_writer(Vec::with_capacity(64 + order.len() * 96));
-    let mut header: Vec<String> = SHORTLIST_COLUMNS.iter().map(|c| c.to_string()).collect();
-    header.extend(kept_header(&pool.kept.names));
+    let header = shortlist_header(&pool.kept.names);
     writer.write_record(&header).expect("write to memory");
-    let mut floats = ryu::Buffer::new();
-    let mut integers = itoa::Buffer::new();
-    let mut record = csv::ByteRecord::with_capacity(160, header.len());
+    let mut cells = RowCells::new(header.len());
     for (r, &j) in order.iter().enumerate() {
-        record.clear();
-        record.push_field(integers.format(r + 1).as_bytes());
-        record.push_field(pool.ids[j].as_bytes());
-        for value in [
-            pool.prediction[j],
-            outcome.p_values[j],
-            outcome.q_values[j],
-            outcome.draw.selection_probability[j],
-            outcome.weights[j],
-        ] {
-            record.push_field(floats.format(value).as_bytes());
-        }
-        for cell in pool.kept.row(j) {
-            record.push_field(cell.as_bytes());
-        }
-        writer.write_byte_record(&record).expect("write to memory");
+        let row = ShortlistRow {
+            rank: r + 1,
+            id: &pool.ids[j],
+            prediction: pool.prediction[j],
+            p_value: outcome.p_values[j],
+            q_value: outcome.q_values[j],
+            selection_probability: outcome.draw.selection_probability[j],
+            weight: outcome.weights[j],
+            kept: pool.kept.row(j),
+        };
+        writer
+            .write_byte_record(cells.shortlisted(&row))
+            .expect("write to memory");
     }
     writer.into_inner().expect("flush to memory")
 }
@@ -636,6 +748,29 @@ pub fn text_summary(
     pool: &PoolColumns<'_>,
     outcome: &SelectionOutcome,
 ) -> String {
+    let top: Vec<&str> = if summary.selected_count > 0 {
+        shortlist_order(pool.prediction, &outcome.selected, pool.direction)
+            .iter()
+            .take(TOP_SHOWN)
+            .map(|&j| pool.ids[j].as_str())
+            .collect()
+    } else {
+        Vec::new()
+    };
+    summary_text(summary, &top)
+}
+
+/// Ids shown from the top of shortlist.csv in the printed summary.
+pub const TOP_SHOWN: usize = 10;
+
+/// [`text_summary`] of a streamed selection, which hands over the top of the shortlist
+/// (at most [`TOP_SHOWN`] ids, best first) instead of per-unit results.
+pub fn text_summary_of_top(summary: &SelectSummary, top: &[String]) -> String {
+    let top: Vec<&str> = top.iter().map(String::as_str).collect();
+    summary_text(summary, &top)
+}
+
+fn summary_text(summary: &SelectSummary, top: &[&str]) -> String {
     let mut out = String::new();
     let s = summary;
     let _ = writeln!(
@@ -718,17 +853,11 @@ pub fn text_summary(
     );
     let _ = writeln!(out, "  seed: {}", s.seed);
     if s.selected_count > 0 {
-        let chosen = shortlist_order(pool.prediction, &outcome.selected, pool.direction);
-        let shown: Vec<&str> = chosen
-            .iter()
-            .take(10)
-            .map(|&j| pool.ids[j].as_str())
-            .collect();
         let _ = writeln!(
             out,
             "  top of shortlist.csv (best predicted first): {}{}",
-            shown.join(", "),
-            if chosen.len() > shown.len() {
+            top.join(", "),
+            if s.selected_count > top.len() {
                 ", ..."
             } else {
                 ""

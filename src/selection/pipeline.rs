@@ -213,6 +213,10 @@ pub struct PoolInput<'a> {
 pub struct SelectionOutcome {
     pub settings: SelectSettings,
     pub n_labeled: usize,
+    /// Pool size `m`. The per-unit vectors below have this length, except after a streamed
+    /// selection (`select --memory-budget`), which writes the per-unit results as it goes
+    /// and leaves them empty.
+    pub pool_size: usize,
     /// `W`.
     pub total_labeled_weight: f64,
     /// Imputed pool scores `Vh_j`.
@@ -449,6 +453,7 @@ pub fn run_selection(
     let mut outcome = SelectionOutcome {
         settings,
         n_labeled: n,
+        pool_size: m,
         total_labeled_weight: total,
         scores: pool_v,
         weights,
@@ -528,8 +533,8 @@ pub const ESS_FRACTION_WARNING: f64 = 0.1;
 /// sample size and an empty shortlist no unit could enter are `high`; BH with varying
 /// weights, deterministic pruning with varying weights and an empty shortlist are `medium`;
 /// a draw-dependent shortlist follows [`draw_level`].
-fn selection_warnings(o: &SelectionOutcome) -> Vec<Warning> {
-    let m = o.scores.len();
+pub(crate) fn selection_warnings(o: &SelectionOutcome) -> Vec<Warning> {
+    let m = o.pool_size;
     let q = o.settings.fdr;
     let qt = super::level_text(q);
     let mut warnings = Vec::new();

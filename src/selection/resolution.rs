@@ -61,7 +61,6 @@ pub fn resolution(
     q: f64,
 ) -> Resolution {
     let m = pool_scores.len();
-    let total = calibration.total_weight();
     let weight = |j: usize| pool_weights.map_or(1.0, |w| w[j]);
     let floor: Vec<bool> = pool_scores
         .iter()
@@ -69,8 +68,28 @@ pub fn resolution(
         .collect();
     let floor_count = floor.iter().filter(|&&f| f).count();
     let first_step_floor_count = first_step.map(|r1| (0..m).filter(|&j| floor[j] && r1[j]).count());
-    // The smallest floor is the one of the smallest weight (w / (W + w) increases in w).
     let smallest_weight = (0..m).map(weight).fold(f64::INFINITY, f64::min);
+    resolution_of_counts(
+        calibration.total_weight(),
+        m,
+        floor_count,
+        first_step_floor_count,
+        smallest_weight,
+        q,
+    )
+}
+
+/// [`resolution`] from its counts (the streamed selection gathers them pass by pass):
+/// the floor units, those of them in the first step, and the smallest pool weight.
+pub fn resolution_of_counts(
+    total: f64,
+    m: usize,
+    floor_count: usize,
+    first_step_floor_count: Option<usize>,
+    smallest_weight: f64,
+    q: f64,
+) -> Resolution {
+    // The smallest floor is the one of the smallest weight (w / (W + w) increases in w).
     let smallest_floor_pvalue = smallest_weight / (total + smallest_weight);
     let guess = (m as f64 * smallest_floor_pvalue / q)
         .ceil()

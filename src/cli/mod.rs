@@ -15,6 +15,7 @@ pub mod common;
 pub mod demo;
 pub mod rescreen;
 pub mod select;
+mod select_streamed;
 pub mod shift;
 mod signals;
 
@@ -48,7 +49,7 @@ pub struct Cli {
 #[derive(Debug, Subcommand)]
 enum Command {
     /// Select a shortlist from a pool with FDR control.
-    Select(select::SelectArgs),
+    Select(select::SelectCommand),
     /// Measure the shift between the labeled set and the pool and fit density-ratio weights.
     Shift(shift::ShiftArgs),
     /// Run the whole job on an invented screening scenario and explain the result.
@@ -174,6 +175,8 @@ impl PhaseTimer {
 pub(crate) struct StepStatus {
     enabled: bool,
     started: std::time::Instant,
+    /// When the last progress line was drawn (they are drawn at most 5 times a second).
+    last_progress: std::cell::Cell<Option<std::time::Instant>>,
 }
 
 impl StepStatus {
@@ -182,7 +185,31 @@ impl StepStatus {
         StepStatus {
             enabled: !quiet && std::io::stderr().is_terminal(),
             started: std::time::Instant::now(),
+            last_progress: std::cell::Cell::new(None),
         }
+    }
+
+    /// The step now running with the share done (0 to 1) as a percentage; redrawn at
+    /// most five times a second.
+    pub(crate) fn progress(&self, what: &str, done: f64) {
+        if !self.enabled {
+            return;
+        }
+        let now = std::time::Instant::now();
+        if let Some(last) = self.last_progress.get() {
+            if now.duration_since(last).as_millis() < 200 {
+                return;
+            }
+        }
+        self.last_progress.set(Some(now));
+        let mut err = std::io::stderr().lock();
+        let _ = write!(
+            err,
+            "\r\x1b[2Kweighbridge [{:6.1} s] {what} ... {:3.0}%",
+            self.started.elapsed().as_secs_f64(),
+            100.0 * done.clamp(0.0, 1.0)
+        );
+        let _ = err.flush();
     }
 
     /// Announce the step now starting.

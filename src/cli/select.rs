@@ -19,6 +19,27 @@ use super::common::{
 pub use super::common::{SelectArgs, SelectConfig};
 use super::{commit_outputs, open_output, print_stdout, Failure, PhaseTimer, StepStatus};
 
+/// `weighbridge select`: the selection's arguments and the memory budget.
+#[derive(Debug, clap::Args)]
+pub struct SelectCommand {
+    #[command(flatten)]
+    pub selection: SelectArgs,
+    /// Memory the run may use, e.g. 1GiB, 512MiB, 4G. When holding the pool in memory
+    /// would need more (estimated from the pool file's size: about 200 bytes per row plus
+    /// twice the row's length), the pool is streamed from the file instead: read twice,
+    /// its scores passed a few times through temporary files next to --out, memory about
+    /// 16 bytes per pool row, the same outputs. Streaming covers two files with no or
+    /// given weights and conditional calibration with homogeneous or deterministic pruning,
+    /// without --report; other runs stay in memory. Standard input (--pool -) is streamed
+    /// only when this option is given (it is copied to a temporary file first).
+    #[arg(long, value_name = "SIZE", value_parser = parse_budget_arg)]
+    pub memory_budget: Option<u64>,
+}
+
+fn parse_budget_arg(text: &str) -> Result<u64, String> {
+    super::select_streamed::parse_budget(text)
+}
+
 /// Run the selection; a level no unit can reach is blamed on the labeled file by name.
 fn select_or_explain(
     config: &SelectConfig,
@@ -26,7 +47,12 @@ fn select_or_explain(
     pool: PoolInput<'_>,
 ) -> Result<crate::selection::pipeline::SelectionOutcome, Failure> {
     let weighted = labeled.weights.is_some() || pool.weights.is_some();
-    run_selection(&config.options, labeled, pool).map_err(|e| match e {
+    run_selection(&config.options, labeled, pool).map_err(|e| explain(config, weighted, e))
+}
+
+/// The message for a selection error, naming the file or the weights to blame.
+pub(crate) fn explain(config: &SelectConfig, weighted: bool, e: SelectError) -> Failure {
+    match e {
         SelectError::LabeledSetTooSmall {
             fdr,
             n_labeled,
@@ -55,13 +81,60 @@ fn select_or_explain(
             }
         )),
         other => other.into(),
-    })
+    }
 }
 
-/// Run `select`.
-pub fn run(args: SelectArgs) -> Result<(), Failure> {
+/// Run `select`: streamed when the in-memory run would need more than the memory budget
+/// and the run is one streaming covers, else in memory.
+pub fn run(command: SelectCommand) -> Result<(), Failure> {
+    let config = SelectConfig::try_from(command.selection)?;
+    let budget = command
+        .memory_budget
+        .unwrap_or(super::select_streamed::DEFAULT_BUDGET);
+    let estimate = super::select_streamed::in_memory_estimate(&config.pool_path);
+    let over = match estimate {
+        Some(bytes) => bytes > budget,
+        // Standard input: streamed when a budget is given.
+        None => command.memory_budget.is_some(),
+    };
+    if over {
+        match super::select_streamed::not_streamable(&config) {
+            None => {
+                let why = match estimate {
+                    Some(bytes) => format!(
+                        "in memory it would need about {}, above the memory budget of {}",
+                        bytes_text(bytes),
+                        bytes_text(budget)
+                    ),
+                    None => "standard input with --memory-budget".to_string(),
+                };
+                return super::select_streamed::run(&config, budget, &why);
+            }
+            Some(flag) if !config.quiet => eprintln!(
+                "note: this run would need about {} in memory, above the memory budget of                  {}, but the streamed selection does not cover {flag}; running in memory.",
+                estimate.map_or("an unknown amount".to_string(), bytes_text),
+                bytes_text(budget)
+            ),
+            Some(_) => {}
+        }
+    }
+    run_in_memory(config)
+}
+
+/// A byte count in words: "1.5 GiB", "200 MiB".
+fn bytes_text(bytes: u64) -> String {
+    let b = bytes as f64;
+    if b >= (1u64 << 30) as f64 {
+        format!("{:.1} GiB", b / (1u64 << 30) as f64)
+    } else if b >= (1u64 << 20) as f64 {
+        format!("{:.0} MiB", b / (1u64 << 20) as f64)
+    } else {
+        format!("{:.0} KiB", (b / 1024.0).max(1.0))
+    }
+}
+
+fn run_in_memory(config: SelectConfig) -> Result<(), Failure> {
     let mut timer = PhaseTimer::new();
-    let config = SelectConfig::try_from(args)?;
     let folder = open_output(
         &config.out,
         config.force,

@@ -296,8 +296,8 @@ impl Weighting<'_> {
     /// domain classifier on 5 features (f1, ..., f5), fit on all rows".
     pub fn describe(&self) -> String {
         match self {
-            Weighting::None => "none (every weight 1: no shift assumed)".to_string(),
-            Weighting::Given { column, .. } => format!("given in column {column}"),
+            Weighting::None => no_weights_text(),
+            Weighting::Given { column, .. } => given_weights_text(column),
             Weighting::Fitted(f) => {
                 let names = &f.assessment.summary.balance;
                 let list: Vec<&str> = names.iter().map(|b| b.feature.as_str()).collect();
@@ -362,6 +362,16 @@ pub fn fit_rows_statement(
             labeled_rows - calibration_rows
         ),
     }
+}
+
+/// [`Weighting::describe`] of a run without weights.
+pub fn no_weights_text() -> String {
+    "none (every weight 1: no shift assumed)".to_string()
+}
+
+/// [`Weighting::describe`] of weights given in `column`.
+pub fn given_weights_text(column: &str) -> String {
+    format!("given in column {column}")
 }
 
 #[cfg(test)]

@@ -114,6 +114,12 @@ impl PoolChunks {
         })
     }
 
+    /// Share of a file of `len` bytes read so far (of the decompressed text for a
+    /// compressed file, so only a rough guide there; at most 1).
+    pub fn fraction_read(&self, len: u64) -> f64 {
+        (self.reader.position().byte() as f64 / len.max(1) as f64).min(1.0)
+    }
+
     /// Names of the kept columns, in the order asked for.
     pub fn kept_names(&self) -> Vec<String> {
         self.columns.kept.iter().map(|c| c.name.clone()).collect()

@@ -1,0 +1,754 @@
+//! `select` with the pool streamed: memory proportional to the labeled set, a chunk of the
+//! pool, and 16 bytes per pool unit for the q-values, instead of about 200 bytes per pool
+//! unit plus the outputs. Used when the in-memory run would need more than
+//! `--memory-budget` (default 1 GiB), for the runs the streamed selection covers
+//! (two files, no or given weights, conditional calibration with homogeneous or
+//! deterministic pruning, no report); docs/streaming.md has the passes and their costs.
+//!
+//! The passes over the pool:
+//! 1. the CSV, once, with every check of the in-memory reader: each unit's score and weight
+//!    go to an unnamed temporary file (16 bytes), its prediction and score to a second
+//!    one, its id to an 8-byte hash (repeated ids are then located by one more read);
+//! 2. the selection's own passes ([`crate::selection::streaming`]) over the binary file;
+//! 3. one more pass over the binary files collecting the p-values (sorted for the
+//!    q-values), the first-step counts (the draw's consequences) and the selected units'
+//!    predictions (the shortlist's order);
+//! 4. the CSV once more, writing candidates.csv in input order and the shortlist rows,
+//!    which are then put in their order.
+//!
+//! Every number written is computed by the same functions as the in-memory path, so the
+//! files are byte-identical (tests/cli_streamed_select.rs).
+
+use std::collections::HashSet;
+use std::fs::File;
+use std::io::{self, BufReader, BufWriter, Read, Write};
+use std::path::{Path, PathBuf};
+
+use crate::conformal::pvalue::CalibrationSet;
+use crate::conformal::score::{labeled_scores_toward, pool_scores_toward, Thresholds};
+use crate::io::source::is_stdin;
+use crate::io::{pool_id_hash, read_units, OutputSet, PoolChunk, PoolChunks, Role, Source};
+use crate::report::summary::{
+    candidates_header, shortlist_header, text_summary_of_top, unreachable_text, CandidateRow,
+    RowCells, ShortlistRow, TOP_SHOWN,
+};
+use crate::report::{select_summary, RunInputs};
+use crate::selection::bh::{adjusted_of, bh_adjusted_by_rank, within_level};
+use crate::selection::draw::{fixed_selection, homogeneous_draw, DrawSummary};
+use crate::selection::pipeline::{
+    kish_ess, selection_warnings, Procedure, SelectError, SelectionOutcome,
+};
+use crate::selection::pruning::Pruning;
+use crate::selection::resolution;
+use crate::selection::streaming::{
+    run_streaming, ChunkVisitor, PoolSource, SpillWriter, SpilledPool, StreamingError,
+    StreamingOptions,
+};
+use crate::shift::weighting::WeightSource;
+
+use super::common::{describe_run_columns, shared_ids_warning_of, InputFiles, SelectConfig};
+use super::{commit_outputs, open_output, print_stdout, Failure, PhaseTimer, StepStatus};
+
+/// The default `--memory-budget`: 1 GiB.
+pub const DEFAULT_BUDGET: u64 = 1 << 30;
+
+/// Rows read from the CSV per chunk.
+const ROWS_PER_CHUNK: usize = 1 << 16;
+
+/// Parse a `--memory-budget` value: a number of bytes with an optional unit (K, M, G, T
+/// with or without "iB"/"B", powers of 1024), e.g. `1GiB`, `512M`, `2000000000`.
+///
+/// # Errors
+/// A message naming the value and the accepted forms.
+pub fn parse_budget(text: &str) -> Result<u64, String> {
+    let t = text.trim();
+    let split = t
+        .find(|c: char| !(c.is_ascii_digit() || c == '.'))
+        .unwrap_or(t.len());
+    let (number, unit) = t.split_at(split);
+    let unit = unit.trim().to_ascii_lowercase();
+    let factor: u64 = match unit.as_str() {
+        "" | "b" => 1,
+        "k" | "kb" | "kib" => 1 << 10,
+        "m" | "mb" | "mib" => 1 << 20,
+        "g" | "gb" | "gib" => 1 << 30,
+        "t" | "tb" | "tib" => 1 << 40,
+        _ => u64::MAX,
+    };
+    let value: Option<f64> = number.parse().ok();
+    match value {
+        Some(v) if factor != u64::MAX && v.is_finite() && v > 0.0 => {
+            let bytes = v * factor as f64;
+            if bytes >= 1.0 && bytes < u64::MAX as f64 {
+                Ok(bytes as u64)
+            } else {
+                Err(format!("--memory-budget {text}: out of range"))
+            }
+        }
+        _ => Err(format!(
+            "--memory-budget {text}: expected a size such as 1GiB, 512MiB, 2G or a number \
+             of bytes"
+        )),
+    }
+}
+
+/// Why this run cannot be streamed, in the user's flags; `None` when it can.
+pub(crate) fn not_streamable(config: &SelectConfig) -> Option<&'static str> {
+    let o = &config.options;
+    if matches!(config.inputs, InputFiles::Table { .. }) {
+        Some("--table (give --labeled and --pool)")
+    } else if matches!(config.weights, WeightSource::Fitted { .. }) {
+        Some("--fit-weights (the classifier needs the pool's features in memory)")
+    } else if config.batch_design.is_some() {
+        Some("--batch-design")
+    } else if config.report {
+        Some("--report (its plots need every unit)")
+    } else if o.level_curve == Some(true) {
+        Some("--level-curve")
+    } else if o.procedure != Procedure::Conditional {
+        Some("--procedure bh or by (their p-values are randomized by default)")
+    } else if o.pruning == Pruning::Heterogeneous {
+        Some("--pruning heterogeneous (its Monte Carlo draw needs every unit)")
+    } else {
+        None
+    }
+}
+
+/// Bytes the in-memory `select` is estimated to need for this pool file: about
+/// `170 + 2 * (row length)` bytes per row (columns, p-values, order, the candidates.csv
+/// buffer; measured 226 bytes per row at 10^7 rows of 30 bytes), rows estimated from the
+/// file's length and its first rows (a compressed file is taken to hold four times its
+/// size). `None` for standard input, whose size is not known before it is read.
+pub(crate) fn in_memory_estimate(pool: &Path) -> Option<u64> {
+    if is_stdin(pool) {
+        return None;
+    }
+    let len = std::fs::metadata(pool).ok()?.len();
+    let mut source = Source::open(pool).ok()?;
+    let compressed = !matches!(source.format(), crate::io::Format::Text);
+    let mut sample = vec![0u8; 1 << 18];
+    let mut filled = 0;
+    while filled < sample.len() {
+        match source.read(&mut sample[filled..]) {
+            Ok(0) => break,
+            Ok(k) => filled += k,
+            Err(_) => return None,
+        }
+    }
+    let lines = memchr::memchr_iter(b'\n', &sample[..filled]).count().max(1) as u64;
+    let row = (filled as u64 / lines).max(1);
+    let text_len = if compressed {
+        len.saturating_mul(4)
+    } else {
+        len
+    };
+    let rows = text_len / row;
+    Some(rows.saturating_mul(170 + 2 * row))
+}
+
+/// A folder for the run's temporary files: the nearest existing folder at or above the
+/// output folder (so they are on the disk the outputs go to, not in a memory-backed /tmp).
+fn temp_dir_for(out: &Path) -> PathBuf {
+    let absolute = std::path::absolute(out).unwrap_or_else(|_| out.to_path_buf());
+    absolute
+        .ancestors()
+        .find(|p| p.is_dir())
+        .map_or_else(std::env::temp_dir, Path::to_path_buf)
+}
+
+fn internal(what: &str) -> impl Fn(io::Error) -> Failure + '_ {
+    move |e| Failure::Internal(format!("{what}: {e}"))
+}
+
+fn streaming_failure(e: StreamingError) -> Failure {
+    match e {
+        StreamingError::Selection(e) => SelectError::Selection(e).into(),
+        StreamingError::EmptyPool => SelectError::EmptyPool.into(),
+        other => Failure::Internal(other.to_string()),
+    }
+}
+
+/// A spilled binary pool read pass by pass, with progress on the terminal.
+struct Progressing<'s> {
+    pool: SpilledPool,
+    status: &'s StepStatus,
+    pass: usize,
+    m: u64,
+}
+
+impl PoolSource for Progressing<'_> {
+    fn pass(&mut self, visit: &mut ChunkVisitor<'_>) -> Result<(), StreamingError> {
+        self.pass += 1;
+        let (status, pass, m) = (self.status, self.pass, self.m.max(1));
+        let mut seen = 0u64;
+        self.pool.pass(&mut |scores, weights| {
+            visit(scores, weights);
+            seen += scores.len() as u64;
+            status.progress(
+                &format!("selection, pass {pass} over the pool"),
+                seen as f64 / m as f64,
+            );
+        })
+    }
+}
+
+/// What pass 1 learns besides the spilled pool.
+struct FirstPass {
+    m: usize,
+    smallest_weight: f64,
+    largest_weight: f64,
+    /// Some pool weight differs from the first labeled (or pool) weight.
+    weights_vary: bool,
+    shared_first: Vec<String>,
+    shared_count: usize,
+    kept_names: Vec<String>,
+}
+
+/// Run `select` streamed. `why` says why (printed with the summary).
+pub(crate) fn run(config: &SelectConfig, budget: u64, why: &str) -> Result<(), Failure> {
+    let mut timer = PhaseTimer::new();
+    let settings = config.options.check()?;
+    let q = settings.fdr;
+    let folder = open_output(
+        &config.out,
+        config.force,
+        &[&config.labeled_path, &config.pool_path],
+    )?;
+    let temp_dir = temp_dir_for(&config.out);
+    let status = StepStatus::new(config.quiet);
+    status.step("reading the labeled file");
+    crate::io::check_one_stdin(&[
+        ("--labeled", config.labeled_path.as_path()),
+        ("--pool", config.pool_path.as_path()),
+    ])?;
+    let labeled = read_units(&config.labeled_path, Role::Labeled, &config.labeled_read)?;
+    let n = labeled.len();
+    let labeled_thresholds = match (&labeled.threshold, config.threshold) {
+        (Some(column), _) => Thresholds::PerUnit(column),
+        (None, Some(c)) => Thresholds::Constant(c),
+        (None, None) => unreachable!("clap requires --threshold or --threshold-column"),
+    };
+    let labeled_v = labeled_scores_toward(
+        settings.score,
+        settings.direction,
+        labeled.outcome.as_deref().unwrap_or(&[]),
+        &labeled.prediction,
+        labeled_thresholds,
+    );
+    let calibration =
+        CalibrationSet::new(&labeled_v, labeled.weight.as_deref()).map_err(SelectError::from)?;
+    let total = calibration.total_weight();
+    let lowest_labeled = calibration.sorted_scores().first().copied();
+
+    // Standard input is read once: its bytes go to a temporary file read like the pool file.
+    let (pool_path, _stdin_copy) = if is_stdin(&config.pool_path) {
+        status.step("copying standard input to a temporary file");
+        let mut copy = tempfile::NamedTempFile::new_in(&temp_dir).map_err(internal(
+            "cannot create a temporary file for standard input",
+        ))?;
+        io::copy(&mut io::stdin().lock(), copy.as_file_mut())
+            .map_err(internal("cannot copy standard input to a temporary file"))?;
+        (copy.path().to_path_buf(), Some(copy))
+    } else {
+        (config.pool_path.clone(), None)
+    };
+    let shown = crate::io::source::display_path(&config.pool_path);
+    let open_pool = || PoolChunks::open_shown(&pool_path, &shown, &config.pool_read);
+    let pool_len = std::fs::metadata(&pool_path).map_or(0, |m| m.len());
+    timer.mark("read labeled");
+
+    // Pass 1: the CSV.
+    let mut chunks = open_pool()?;
+    let kept_width = chunks.kept_names().len();
+    let mut spill = SpillWriter::new(Some(&temp_dir), chunks.has_weight())
+        .map_err(internal("cannot create a temporary file"))?;
+    let side_file =
+        tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
+    let mut side = BufWriter::with_capacity(1 << 20, side_file);
+    let labeled_ids: HashSet<&str> = labeled.ids.iter().map(String::as_str).collect();
+    let first_weight = labeled.weight.as_ref().and_then(|w| w.first().copied());
+    let mut first = FirstPass {
+        m: 0,
+        smallest_weight: f64::INFINITY,
+        largest_weight: labeled
+            .weight
+            .as_ref()
+            .map_or(1.0, |w| w.iter().fold(0.0, |a: f64, &b| a.max(b))),
+        weights_vary: labeled
+            .weight
+            .as_ref()
+            .is_some_and(|w| w.windows(2).any(|p| p[0] != p[1])),
+        shared_first: Vec::new(),
+        shared_count: 0,
+        kept_names: chunks.kept_names(),
+    };
+    let mut hashes: Vec<u64> = Vec::new();
+    let mut chunk = chunks.chunk();
+    let write_error = internal("cannot write a temporary file");
+    while chunks.next_chunk(&mut chunk, ROWS_PER_CHUNK)? {
+        let scores = chunk_scores(config, &settings, &chunk, chunks.has_threshold());
+        let weights = chunk.weight(chunks.has_weight());
+        for (r, id) in chunk.ids().iter().enumerate() {
+            let w = weights.map_or(1.0, |w| w[r]);
+            spill.push(scores[r], w).map_err(&write_error)?;
+            side.write_all(&chunk.prediction()[r].to_le_bytes())
+                .and_then(|()| side.write_all(&scores[r].to_le_bytes()))
+                .map_err(&write_error)?;
+            hashes.push(pool_id_hash(id));
+            first.smallest_weight = first.smallest_weight.min(w);
+            first.largest_weight = first.largest_weight.max(w);
+            if weights.is_some() && Some(w) != first_weight.or(weights.map(|w| w[0])) {
+                first.weights_vary = true;
+            }
+            if labeled_ids.contains(id.as_str()) {
+                if first.shared_first.len() < super::common::SHARED_IDS_LISTED {
+                    first.shared_first.push(id.clone());
+                }
+                first.shared_count += 1;
+            }
+        }
+        first.m += chunk.len();
+        if pool_len > 0 {
+            status.progress("reading the pool", chunks.fraction_read(pool_len));
+        }
+    }
+    drop(chunk);
+    let m = first.m;
+    hashes.sort_unstable();
+    let repeated: HashSet<u64> = hashes
+        .windows(2)
+        .filter(|p| p[0] == p[1])
+        .map(|p| p[0])
+        .collect();
+    drop(hashes);
+    if !repeated.is_empty() {
+        if let Some(error) = open_pool()?.locate_duplicate(&repeated)? {
+            return Err(error.into());
+        }
+    }
+    if crate::shift::weights::overflow_safe_scale(first.largest_weight, n + m) != 1.0 {
+        return Err(Failure::Input(format!(
+            "the weights in column {} are so large that their sums would overflow; the \
+             streamed selection does not rescale them. Hint: divide the weights in both \
+             files by the same large number (ratios are what count), or raise \
+             --memory-budget to run in memory.",
+            config.pool_read.weight_column.as_deref().unwrap_or("w")
+        )));
+    }
+    let pool_spill = spill
+        .finish()
+        .map_err(internal("cannot write a temporary file"))?;
+    let mut side_file = side
+        .into_inner()
+        .map_err(|e| Failure::Internal(format!("cannot write a temporary file: {e}")))?;
+    timer.mark("pass 1: read the pool");
+
+    // No unit can reach the level: the same error as in memory.
+    let wmin = first.smallest_weight;
+    if !within_level(wmin, total + wmin, q) {
+        return Err(super::select::explain(
+            config,
+            labeled.weight.is_some(),
+            SelectError::LabeledSetTooSmall {
+                fdr: q,
+                n_labeled: n,
+                smallest_floor: wmin / (total + wmin),
+            },
+        ));
+    }
+
+    // Pass 2: the streamed selection.
+    let pruning = settings.pruning.unwrap_or(Pruning::Homogeneous);
+    let mut pool = Progressing {
+        pool: pool_spill,
+        status: &status,
+        pass: 0,
+        m: m as u64,
+    };
+    let options = StreamingOptions {
+        q,
+        pruning,
+        seed: settings.seed,
+        bh_pvalues: settings.pvalues,
+        memory_budget: (budget / 2) as usize,
+    };
+    let mut selection =
+        run_streaming(&calibration, &mut pool, options).map_err(streaming_failure)?;
+    let counts = selection.counts.clone();
+    let r_star = selection.r_star();
+    timer.mark("pass 2: streamed selection");
+
+    // Pass 3: p-values, first-step counts, selected predictions.
+    use std::io::Seek;
+    side_file
+        .rewind()
+        .map_err(internal("cannot read a temporary file"))?;
+    let mut side = BufReader::with_capacity(1 << 20, side_file);
+    let mut p_values: Vec<f64> = Vec::with_capacity(m);
+    let mut first_counts: Vec<usize> = Vec::with_capacity(counts.first_step_count);
+    let mut chosen: Vec<(f64, u64)> = Vec::with_capacity(r_star);
+    let mut first_step_floor = 0usize;
+    let mut side_error: Option<io::Error> = None;
+    let mut pair = [0u8; 16];
+    status.step("p-values and the shortlist's order");
+    selection
+        .for_each_unit(&mut pool, |j, unit| {
+            if side_error.is_some() {
+                return;
+            }
+            if let Err(e) = side.read_exact(&mut pair) {
+                side_error = Some(e);
+                return;
+            }
+            let prediction = f64::from_le_bytes(pair[..8].try_into().expect("8 bytes"));
+            let score = f64::from_le_bytes(pair[8..].try_into().expect("8 bytes"));
+            p_values.push(unit.numerator / unit.denominator);
+            if unit.first_step {
+                first_counts.push(unit.conditional_count);
+                if lowest_labeled.map_or(true, |lowest| score < lowest) {
+                    first_step_floor += 1;
+                }
+            }
+            if unit.selected {
+                chosen.push((prediction, j));
+            }
+        })
+        .map_err(streaming_failure)?;
+    if let Some(e) = side_error {
+        return Err(Failure::Internal(format!(
+            "cannot read a temporary file: {e}"
+        )));
+    }
+    drop(side);
+    p_values.par_sort_unstable_by(f64::total_cmp);
+    let q_by_rank = bh_adjusted_by_rank(&p_values, 1.0);
+    // The shortlist's order: best predicted first, ties in input order (`shortlist_order`).
+    match config.direction {
+        crate::conformal::score::Direction::Above => {
+            chosen.par_sort_by(|a, b| b.0.total_cmp(&a.0).then(a.1.cmp(&b.1)))
+        }
+        crate::conformal::score::Direction::Below => {
+            chosen.par_sort_by(|a, b| a.0.total_cmp(&b.0).then(a.1.cmp(&b.1)))
+        }
+    }
+    // rank_of[i] = rank of the i-th selected unit in input order.
+    let mut by_input: Vec<(u64, u32)> = chosen
+        .iter()
+        .enumerate()
+        .map(|(r, &(_, j))| (j, (r + 1) as u32))
+        .collect();
+    drop(chosen);
+    by_input.par_sort_unstable_by_key(|&(j, _)| j);
+    let ranks: Vec<u32> = by_input.into_iter().map(|(_, r)| r).collect();
+    first_counts.sort_unstable();
+    let draw = match pruning {
+        Pruning::Deterministic => fixed_selection(&vec![true; r_star]),
+        _ => homogeneous_draw(&vec![true; first_counts.len()], &first_counts),
+    };
+    timer.mark("pass 3: p-values and order");
+
+    // The summary, as the in-memory path builds it.
+    let mut res = resolution::resolution_of_counts(
+        total,
+        m,
+        counts.floor_count,
+        Some(first_step_floor),
+        wmin,
+        q,
+    );
+    let depends_on_draw = !draw.is_fixed();
+    if !depends_on_draw {
+        res.stable_levels.push(q);
+    }
+    res.reading = resolution::reading(&res, m, q, depends_on_draw);
+    let selection_probability =
+        |first_step: bool, selected: bool, k: usize, d: &DrawSummary| match pruning {
+            Pruning::Deterministic => f64::from(u8::from(selected)),
+            _ if first_step => d.selection_probability[first_counts.partition_point(|&x| x < k)],
+            _ => 0.0,
+        };
+    let bh_pvalues = settings.pvalues;
+    let mut outcome = SelectionOutcome {
+        settings: settings.clone(),
+        n_labeled: n,
+        pool_size: m,
+        total_labeled_weight: total,
+        scores: Vec::new(),
+        weights: Vec::new(),
+        p_values: Vec::new(),
+        selected: Vec::new(),
+        first_step: None,
+        conditional_count: None,
+        unreachable: Vec::new(),
+        selected_count: r_star,
+        first_step_count: Some(counts.first_step_count),
+        bh_selected_count: counts.bh_selected_count,
+        bh_pvalues,
+        unreachable_count: counts.unreachable_count,
+        pruning_draw: counts.pruning_draw,
+        weights_vary: first.weights_vary,
+        labeled_ess: labeled.weight.as_deref().map_or(n as f64, kish_ess),
+        draw,
+        q_values: Vec::new(),
+        q_values_by: None,
+        resolution: res,
+        level_curve: None,
+        warnings: Vec::new(),
+    };
+    outcome.warnings = selection_warnings(&outcome);
+
+    // Pass 4: the CSV again, writing the outputs.
+    status.step("writing candidates.csv");
+    let candidates_file =
+        tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
+    let mut candidates =
+        csv::Writer::from_writer(BufWriter::with_capacity(1 << 20, candidates_file));
+    let shortlist_rows_file =
+        tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
+    let mut shortlist_rows = BufWriter::with_capacity(1 << 20, shortlist_rows_file);
+    // Each shortlist row is formatted in memory, then appended to the rows file.
+    let mut shortlist_row = csv::Writer::from_writer(Vec::with_capacity(256));
+    let header = candidates_header(&first.kept_names);
+    candidates
+        .write_record(&header)
+        .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?;
+    // (offset, length) of each shortlist row in the rows file, by rank.
+    let mut row_at: Vec<(u64, u32)> = vec![(0, 0); r_star];
+    let mut top: Vec<String> = vec![String::new(); r_star.min(TOP_SHOWN)];
+    let mut cells = RowCells::new(header.len());
+    let mut short_cells = RowCells::new(header.len());
+    let mut chunks = open_pool()?;
+    let mut chunk = chunks.chunk();
+    let mut chunk_start = 0u64;
+    let mut chunk_scores_now: Vec<f64> = Vec::new();
+    let mut failure: Option<Failure> = None;
+    let mut selected_seen = 0usize;
+    let mut written_bytes = 0u64;
+    let has_threshold = chunks.has_threshold();
+    let has_weight = chunks.has_weight();
+    let draw = &outcome.draw;
+    selection
+        .for_each_unit(&mut pool, |j, unit| {
+            if failure.is_some() {
+                return;
+            }
+            while j >= chunk_start + chunk.len() as u64 {
+                chunk_start += chunk.len() as u64;
+                match chunks.next_chunk(&mut chunk, ROWS_PER_CHUNK) {
+                    Ok(true) => {
+                        chunk_scores_now = chunk_scores(config, &settings, &chunk, has_threshold);
+                        if pool_len > 0 {
+                            status
+                                .progress("writing candidates.csv", chunks.fraction_read(pool_len));
+                        }
+                    }
+                    Ok(false) => {
+                        failure = Some(Failure::Input(format!(
+                            "{}: the file changed while it was read (fewer rows on the second \
+                             read)",
+                            shown.display()
+                        )));
+                        return;
+                    }
+                    Err(e) => {
+                        failure = Some(e.into());
+                        return;
+                    }
+                }
+            }
+            let r = (j - chunk_start) as usize;
+            let w = chunk.weight(has_weight).map_or(1.0, |w| w[r]);
+            let p = unit.numerator / unit.denominator;
+            let q_value = adjusted_of(&p_values, &q_by_rank, p);
+            let reason = (!within_level(w, total + w, q)).then(|| unreachable_text(w, total, q));
+            let rank = unit.selected.then(|| {
+                let rank = ranks[selected_seen] as usize;
+                selected_seen += 1;
+                rank
+            });
+            let probability =
+                selection_probability(unit.first_step, unit.selected, unit.conditional_count, draw);
+            let id = &chunk.ids()[r];
+            let kept = chunk.kept_row(r, kept_width);
+            let row = CandidateRow {
+                id,
+                score: chunk_scores_now[r],
+                weight: w,
+                p_value: p,
+                selected: unit.selected,
+                conditional: Some((unit.first_step, unit.conditional_count)),
+                unreachable_reason: reason.as_deref(),
+                selection_probability: probability,
+                q_value,
+                q_value_by: None,
+                unreliable: false,
+                prediction: chunk.prediction()[r],
+                shortlist_rank: rank,
+                kept,
+            };
+            if let Err(e) = candidates.write_byte_record(cells.candidate(&row)) {
+                failure = Some(Failure::Internal(format!(
+                    "cannot write candidates.csv: {e}"
+                )));
+                return;
+            }
+            if let Some(rank) = rank {
+                let row = ShortlistRow {
+                    rank,
+                    id,
+                    prediction: chunk.prediction()[r],
+                    p_value: p,
+                    q_value,
+                    selection_probability: probability,
+                    weight: w,
+                    kept,
+                };
+                let written = shortlist_row
+                    .write_byte_record(short_cells.shortlisted(&row))
+                    .and_then(|()| shortlist_row.flush().map_err(csv::Error::from))
+                    .map_err(io::Error::other)
+                    .and_then(|()| shortlist_rows.write_all(shortlist_row.get_ref()));
+                if let Err(e) = written {
+                    failure = Some(Failure::Internal(format!(
+                        "cannot write shortlist.csv: {e}"
+                    )));
+                    return;
+                }
+                let len = shortlist_row.get_ref().len();
+                // The in-memory row buffer is emptied for the next row.
+                let _ = std::mem::replace(
+                    &mut shortlist_row,
+                    csv::Writer::from_writer(Vec::with_capacity(256)),
+                );
+                row_at[rank - 1] = (written_bytes, len as u32);
+                written_bytes += len as u64;
+                if rank <= top.len() {
+                    top[rank - 1] = id.clone();
+                }
+            }
+        })
+        .map_err(streaming_failure)?;
+    if let Some(f) = failure {
+        return Err(f);
+    }
+    let candidates_file = candidates
+        .into_inner()
+        .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?
+        .into_inner()
+        .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?;
+    let rows_file = shortlist_rows
+        .into_inner()
+        .map_err(|e| Failure::Internal(format!("cannot write shortlist.csv: {e}")))?;
+    let shortlist_file = ordered_shortlist(
+        &temp_dir,
+        &rows_file,
+        &row_at,
+        &shortlist_header(&first.kept_names),
+    )
+    .map_err(internal("cannot write shortlist.csv"))?;
+    timer.mark("pass 4: write candidates and shortlist");
+
+    let inputs = RunInputs {
+        labeled_file: config.labeled_path.display().to_string(),
+        pool_file: config.pool_path.display().to_string(),
+        threshold: match (&config.pool_read.threshold_column, config.threshold) {
+            (Some(name), _) => format!("column {name}"),
+            (None, Some(c)) => format!("value {c}"),
+            (None, None) => String::new(),
+        },
+        weights: match &config.weights {
+            WeightSource::Given { column } => crate::shift::weighting::given_weights_text(column),
+            _ => crate::shift::weighting::no_weights_text(),
+        },
+    };
+    let mut summary = select_summary(&outcome, inputs);
+    describe_run_columns(
+        &mut summary,
+        config,
+        &labeled.feature_names,
+        &first.kept_names,
+    );
+    let shared: Vec<&str> = first.shared_first.iter().map(String::as_str).collect();
+    if let Some(w) = shared_ids_warning_of(&shared, first.shared_count) {
+        summary.add_warning(w);
+    }
+    summary.dropped_missing_outcome_count = labeled.dropped_missing_outcome;
+    summary.censored_outcome_count = labeled.censored_outcomes;
+    let mut files = OutputSet::new();
+    files.add_file("candidates.csv", candidates_file);
+    files.add_file("shortlist.csv", shortlist_file);
+    let json = serde_json::to_vec_pretty(&summary)
+        .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?;
+    files.add("summary.json", json);
+    status.step("writing the outputs");
+    commit_outputs(folder, files, "select")?;
+    timer.mark("write outputs");
+    drop(status);
+    if !config.quiet {
+        let mut text = text_summary_of_top(&summary, &top);
+        text.push_str(&format!(
+            "streamed selection ({why}): the pool was read twice and its scores passed {} \
+             times; {} units needed their exact rank{}\n",
+            counts.passes + 2,
+            counts.ranked_units,
+            if counts.spilled {
+                ", held in a temporary file"
+            } else {
+                ""
+            }
+        ));
+        text.push_str(&format!(
+            "wrote {} (the {} selected units, best first), {} and {}\n",
+            config.out.join("shortlist.csv").display(),
+            summary.selected_count,
+            config.out.join("candidates.csv").display(),
+            config.out.join("summary.json").display()
+        ));
+        print_stdout(&text);
+    }
+    Ok(())
+}
+
+/// The scores of a chunk's rows.
+fn chunk_scores(
+    config: &SelectConfig,
+    settings: &crate::selection::pipeline::SelectSettings,
+    chunk: &PoolChunk,
+    has_threshold: bool,
+) -> Vec<f64> {
+    let thresholds = match (chunk.threshold(has_threshold), config.threshold) {
+        (Some(column), _) => Thresholds::PerUnit(column),
+        (None, Some(c)) => Thresholds::Constant(c),
+        (None, None) => unreachable!("clap requires --threshold or --threshold-column"),
+    };
+    pool_scores_toward(
+        settings.score,
+        settings.direction,
+        chunk.prediction(),
+        thresholds,
+    )
+}
+
+/// shortlist.csv: the header, then the rows of `rows` in rank order (`row_at[rank - 1]` is
+/// a row's offset and length).
+fn ordered_shortlist(
+    dir: &Path,
+    rows: &File,
+    row_at: &[(u64, u32)],
+    header: &[String],
+) -> io::Result<File> {
+    use std::os::unix::fs::FileExt;
+    let file = tempfile::tempfile_in(dir)?;
+    let mut out = csv::Writer::from_writer(BufWriter::with_capacity(1 << 20, file));
+    out.write_record(header)?;
+    let mut out = out.into_inner().map_err(|e| e.into_error())?;
+    let mut buffer = Vec::new();
+    for &(offset, len) in row_at {
+        buffer.resize(len as usize, 0);
+        rows.read_exact_at(&mut buffer, offset)?;
+        out.write_all(&buffer)?;
+    }
+    out.into_inner().map_err(|e| e.into_error())
+}
+
+use rayon::prelude::*;

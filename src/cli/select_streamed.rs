@@ -33,7 +33,7 @@ use crate::report::summary::{
     RowCells, ShortlistRow, TOP_SHOWN,
 };
 use crate::report::{select_summary, RunInputs};
-use crate::selection::bh::{adjusted_of, bh_adjusted_by_rank, within_level};
+use crate::selection::bh::{bh_adjusted_in_place, within_level};
 use crate::selection::draw::{fixed_selection, homogeneous_draw, DrawSummary};
 use crate::selection::pipeline::{
     kish_ess, selection_warnings, Procedure, SelectError, SelectionOutcome,
@@ -384,7 +384,8 @@ pub(crate) fn run(config: &SelectConfig, budget: u64, why: &str) -> Result<(), F
         .rewind()
         .map_err(internal("cannot read a temporary file"))?;
     let mut side = BufReader::with_capacity(1 << 20, side_file);
-    let mut p_values: Vec<f64> = Vec::with_capacity(m);
+    // (p_j, j), turned into (q-value, j) in input order.
+    let mut q_values: Vec<(f64, usize)> = Vec::with_capacity(m);
     let mut first_counts: Vec<usize> = Vec::with_capacity(counts.first_step_count);
     let mut chosen: Vec<(f64, u64)> = Vec::with_capacity(r_star);
     let mut first_step_floor = 0usize;
@@ -402,7 +403,7 @@ pub(crate) fn run(config: &SelectConfig, budget: u64, why: &str) -> Result<(), F
             }
             let prediction = f64::from_le_bytes(pair[..8].try_into().expect("8 bytes"));
             let score = f64::from_le_bytes(pair[8..].try_into().expect("8 bytes"));
-            p_values.push(unit.numerator / unit.denominator);
+            q_values.push((unit.numerator / unit.denominator, j as usize));
             if unit.first_step {
                 first_counts.push(unit.conditional_count);
                 if lowest_labeled.map_or(true, |lowest| score < lowest) {
@@ -420,8 +421,7 @@ pub(crate) fn run(config: &SelectConfig, budget: u64, why: &str) -> Result<(), F
         )));
     }
     drop(side);
-    p_values.par_sort_unstable_by(f64::total_cmp);
-    let q_by_rank = bh_adjusted_by_rank(&p_values, 1.0);
+    bh_adjusted_in_place(&mut q_values, 1.0);
     // The shortlist's order: best predicted first, ties in input order (`shortlist_order`).
     match config.direction {
         crate::conformal::score::Direction::Above => {
@@ -559,7 +559,7 @@ pub(crate) fn run(config: &SelectConfig, budget: u64, why: &str) -> Result<(), F
             let r = (j - chunk_start) as usize;
             let w = chunk.weight(has_weight).map_or(1.0, |w| w[r]);
             let p = unit.numerator / unit.denominator;
-            let q_value = adjusted_of(&p_values, &q_by_rank, p);
+            let q_value = q_values[j as usize].0;
             let reason = (!within_level(w, total + w, q)).then(|| unreachable_text(w, total, q));
             let rank = unit.selected.then(|| {
                 let rank = ranks[selected_seen] as usize;

@@ -94,7 +94,7 @@ pub fn run(command: SelectCommand) -> Result<(), Failure> {
     let estimate = super::select_streamed::in_memory_estimate(&config.pool_path);
     let over = match estimate {
         Some(bytes) => bytes > budget,
-        // Standard input: streamed when a budget is given.
+        // Standard input or a pipe: streamed when a budget is given.
         None => command.memory_budget.is_some(),
     };
     if over {
@@ -106,12 +106,14 @@ pub fn run(command: SelectCommand) -> Result<(), Failure> {
                         bytes_text(bytes),
                         bytes_text(budget)
                     ),
-                    None => "standard input with --memory-budget".to_string(),
+                    None => "a pool read once (standard input or a pipe) with --memory-budget"
+                        .to_string(),
                 };
                 return super::select_streamed::run(&config, budget, &why);
             }
             Some(flag) if !config.quiet => eprintln!(
-                "note: this run would need about {} in memory, above the memory budget of                  {}, but the streamed selection does not cover {flag}; running in memory.",
+                "note: this run would need about {} in memory, above the memory budget of \
+                 {}, but the streamed selection does not cover {flag}; running in memory.",
                 estimate.map_or("an unknown amount".to_string(), bytes_text),
                 bytes_text(budget)
             ),

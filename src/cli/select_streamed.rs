@@ -120,7 +120,8 @@ pub(crate) fn not_streamable(config: &SelectConfig) -> Option<&'static str> {
 /// file's length and its first rows (a compressed file is taken to hold four times its
 /// size). `None` for standard input, whose size is not known before it is read.
 pub(crate) fn in_memory_estimate(pool: &Path) -> Option<u64> {
-    if is_stdin(pool) {
+    if read_once_only(pool) {
+        // Sampling a pipe would consume what the run must read.
         return None;
     }
     let len = std::fs::metadata(pool).ok()?.len();
@@ -144,6 +145,11 @@ pub(crate) fn in_memory_estimate(pool: &Path) -> Option<u64> {
     };
     let rows = text_len / row;
     Some(rows.saturating_mul(170 + 2 * row))
+}
+
+/// Whether the pool can be read only once: standard input, a named pipe, a device.
+pub(crate) fn read_once_only(pool: &Path) -> bool {
+    is_stdin(pool) || std::fs::metadata(pool).is_ok_and(|m| !m.is_file())
 }
 
 /// A folder for the run's temporary files: the nearest existing folder at or above the
@@ -240,14 +246,20 @@ pub(crate) fn run(config: &SelectConfig, budget: u64, why: &str) -> Result<(), F
     let total = calibration.total_weight();
     let lowest_labeled = calibration.sorted_scores().first().copied();
 
-    // Standard input is read once: its bytes go to a temporary file read like the pool file.
-    let (pool_path, _stdin_copy) = if is_stdin(&config.pool_path) {
-        status.step("copying standard input to a temporary file");
+    // Standard input or a pipe is read once: its bytes go to a temporary file read like
+    // the pool file.
+    let (pool_path, _stdin_copy) = if read_once_only(&config.pool_path) {
+        status.step("copying the pool to a temporary file (it can be read only once)");
         let mut copy = tempfile::NamedTempFile::new_in(&temp_dir).map_err(internal(
             "cannot create a temporary file for standard input",
         ))?;
-        io::copy(&mut io::stdin().lock(), copy.as_file_mut())
-            .map_err(internal("cannot copy standard input to a temporary file"))?;
+        let copied = if is_stdin(&config.pool_path) {
+            io::copy(&mut io::stdin().lock(), copy.as_file_mut())
+        } else {
+            std::fs::File::open(&config.pool_path)
+                .and_then(|mut pipe| io::copy(&mut pipe, copy.as_file_mut()))
+        };
+        copied.map_err(internal("cannot copy the pool to a temporary file"))?;
         (copy.path().to_path_buf(), Some(copy))
     } else {
         (config.pool_path.clone(), None)

@@ -6,7 +6,7 @@
 use crate::io::OutputSet;
 use crate::report::{
     add_shift, candidates_csv, select_summary, shift_section, shortlist_csv, text_summary,
-    PoolColumns, RunInputs,
+    MemoryUse, PoolColumns, RunInputs,
 };
 use crate::selection::pipeline::{run_selection, LabeledInput, PoolInput, SelectError};
 use crate::shift::weighting::WeightSource;
@@ -109,7 +109,7 @@ pub fn run(command: SelectCommand) -> Result<(), Failure> {
                     None => "a pool read once (standard input or a pipe) with --memory-budget"
                         .to_string(),
                 };
-                return super::select_streamed::run(&config, budget, &why);
+                return super::select_streamed::run(&config, budget, estimate, &why);
             }
             Some(flag) if !config.quiet => eprintln!(
                 "note: this run would need about {} in memory, above the memory budget of \
@@ -120,7 +120,16 @@ pub fn run(command: SelectCommand) -> Result<(), Failure> {
             Some(_) => {}
         }
     }
-    run_in_memory(config)
+    let memory = MemoryUse {
+        mode: "in_memory",
+        memory_budget_bytes: budget,
+        estimated_in_memory_bytes: estimate,
+        pool_reads: None,
+        score_passes: None,
+        ranked_units: None,
+        ranked_units_spilled: None,
+    };
+    run_in_memory(config, memory)
 }
 
 /// A byte count in words: "1.5 GiB", "200 MiB".
@@ -135,7 +144,7 @@ fn bytes_text(bytes: u64) -> String {
     }
 }
 
-fn run_in_memory(config: SelectConfig) -> Result<(), Failure> {
+fn run_in_memory(config: SelectConfig, memory: MemoryUse) -> Result<(), Failure> {
     let mut timer = PhaseTimer::new();
     let folder = open_output(
         &config.out,
@@ -204,6 +213,7 @@ fn run_in_memory(config: SelectConfig) -> Result<(), Failure> {
         summary.add_warning(w);
     }
     summary.unreliable_weights = unreliable;
+    summary.memory = Some(memory);
     (
         summary.dropped_missing_outcome_count,
         summary.censored_outcome_count,

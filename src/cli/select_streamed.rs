@@ -19,6 +19,7 @@
 //! Every number written is computed by the same functions as the in-memory path, so the
 //! files are byte-identical (tests/cli_streamed_select.rs).
 
+use rayon::prelude::*;
 use std::collections::HashSet;
 use std::fs::File;
 use std::io::{self, BufReader, BufWriter, Read, Write};
@@ -211,7 +212,12 @@ struct FirstPass {
 }
 
 /// Run `select` streamed. `why` says why (printed with the summary).
-pub(crate) fn run(config: &SelectConfig, budget: u64, why: &str) -> Result<(), Failure> {
+pub(crate) fn run(
+    config: &SelectConfig,
+    budget: u64,
+    estimate: Option<u64>,
+    why: &str,
+) -> Result<(), Failure> {
     let mut timer = PhaseTimer::new();
     let settings = config.options.check()?;
     let q = settings.fdr;
@@ -686,6 +692,15 @@ pub(crate) fn run(config: &SelectConfig, budget: u64, why: &str) -> Result<(), F
     }
     summary.dropped_missing_outcome_count = labeled.dropped_missing_outcome;
     summary.censored_outcome_count = labeled.censored_outcomes;
+    summary.memory = Some(crate::report::MemoryUse {
+        mode: "streamed",
+        memory_budget_bytes: budget,
+        estimated_in_memory_bytes: estimate,
+        pool_reads: Some(2),
+        score_passes: Some(counts.passes + 2),
+        ranked_units: Some(counts.ranked_units),
+        ranked_units_spilled: Some(counts.spilled),
+    });
     let mut files = OutputSet::new();
     files.add_file("candidates.csv", candidates_file);
     files.add_file("shortlist.csv", shortlist_file);
@@ -763,4 +778,26 @@ fn ordered_shortlist(
     out.into_inner().map_err(|e| e.into_error())
 }
 
-use rayon::prelude::*;
+#[cfg(test)]
+mod tests {
+    use super::parse_budget;
+
+    #[test]
+    fn budgets_in_binary_units_and_plain_bytes() {
+        // Common practice: K, M, G as powers of 1024 for memory sizes, as in `free -h`.
+        assert_eq!(parse_budget("1GiB"), Ok(1 << 30));
+        assert_eq!(parse_budget("1G"), Ok(1 << 30));
+        assert_eq!(parse_budget("512MiB"), Ok(512 << 20));
+        assert_eq!(parse_budget("512 mb"), Ok(512 << 20));
+        assert_eq!(parse_budget("1.5GiB"), Ok(3 << 29));
+        assert_eq!(parse_budget("2048"), Ok(2048));
+        assert_eq!(parse_budget("1KiB"), Ok(1024));
+        for bad in ["", "lots", "-1G", "0", "1XB", "GiB", "1e3G", "nan"] {
+            let e = parse_budget(bad).unwrap_err();
+            assert!(
+                e.starts_with(&format!("--memory-budget {bad}")),
+                "{bad}: {e}"
+            );
+        }
+    }
+}

@@ -13,7 +13,7 @@ pub mod summary;
 pub use summary::{
     add_shift, balance_csv, candidates_csv, kept_header, select_summary, shift_diagnostics_text,
     shift_report, shift_section, shift_text, shortlist_csv, shortlist_order, text_summary,
-    tool_info, unselectable_reason, warning_line, weights_csv, Columns, PoolColumns, RunInputs,
-    SelectSummary, ShiftInputs, ShiftReport, ShiftSection, ThresholdRule, ToolInfo, UnreliableMark,
-    CANDIDATES_COLUMNS, CAUTIONS, SCHEMA_VERSION, SHORTLIST_COLUMNS,
+    tool_info, unselectable_reason, warning_line, weights_csv, Columns, MemoryUse, PoolColumns,
+    RunInputs, SelectSummary, ShiftInputs, ShiftReport, ShiftSection, ThresholdRule, ToolInfo,
+    UnreliableMark, CANDIDATES_COLUMNS, CAUTIONS, SCHEMA_VERSION, SHORTLIST_COLUMNS,
 };

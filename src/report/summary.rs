@@ -227,6 +227,29 @@ pub struct SelectSummary {
     pub dropped_missing_outcome_count: usize,
     /// Labeled outcomes given as censored values (`>x`, `<=x`, ...) and used by their bound.
     pub censored_outcome_count: usize,
+    /// How the pool was held: `mode` (`in_memory` or `streamed`), `memory_budget_bytes`,
+    /// `estimated_in_memory_bytes`, and for a streamed run its passes. Null when not set
+    /// by the command.
+    pub memory: Option<MemoryUse>,
+}
+
+/// How `select` held the pool (summary.json `memory`).
+#[derive(Clone, Debug, Serialize)]
+pub struct MemoryUse {
+    /// `in_memory` or `streamed`.
+    pub mode: &'static str,
+    /// The budget (`--memory-budget`, default 1 GiB).
+    pub memory_budget_bytes: u64,
+    /// What holding the pool in memory was estimated to need; null for a pool that can be
+    /// read only once (standard input, a pipe).
+    pub estimated_in_memory_bytes: Option<u64>,
+    /// Streamed runs: times the pool file was read (2), times its scores were passed
+    /// through the temporary file, units that needed their exact rank, and whether those
+    /// went to a temporary file. Null in memory.
+    pub pool_reads: Option<usize>,
+    pub score_passes: Option<usize>,
+    pub ranked_units: Option<usize>,
+    pub ranked_units_spilled: Option<bool>,
 }
 
 impl SelectSummary {
@@ -325,6 +348,7 @@ pub fn select_summary(outcome: &SelectionOutcome, inputs: RunInputs) -> SelectSu
         cautions: CAUTIONS.to_vec(),
         dropped_missing_outcome_count: 0,
         censored_outcome_count: 0,
+        memory: None,
     }
 }
 

@@ -234,7 +234,8 @@ fn write_tables(dir: &Path, m: usize) -> (PathBuf, PathBuf) {
 #[test]
 fn thresholds_in_a_column_and_kept_cells_with_commas_and_quotes() {
     let dir = TempDir::new().unwrap();
-    let (labeled, pool) = write_tables(dir.path(), 5000);
+    // More rows than one chunk of the streamed read (65536), so batches and pieces join.
+    let (labeled, pool) = write_tables(dir.path(), 140_000);
     let (l, p) = (labeled.display().to_string(), pool.display().to_string());
     let args = strings(&[
         "--labeled",
@@ -254,7 +255,14 @@ fn thresholds_in_a_column_and_kept_cells_with_commas_and_quotes() {
     assert!(selected_count(&out) > 0, "the generated run selects");
     let shortlist = fs::read_to_string(out.join("shortlist.csv")).unwrap();
     assert!(shortlist.contains("\"a, b\"") && shortlist.contains("\"say \"\"hi\"\"\""));
+    // Deterministic pruning selects nothing on the large table; on 5000 rows it does.
+    let small = dir.path().join("small");
+    fs::create_dir(&small).unwrap();
+    let (labeled, pool) = write_tables(&small, 5000);
+    let (l, p) = (labeled.display().to_string(), pool.display().to_string());
     let mut deterministic = args.clone();
+    deterministic[1] = l;
+    deterministic[3] = p;
     deterministic.extend(strings(&["--pruning", "deterministic"]));
     let (out, _) = same_both_ways(dir.path(), "column-deterministic", &deterministic, None);
     assert!(

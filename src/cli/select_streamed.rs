@@ -43,7 +43,7 @@ use crate::selection::pruning::Pruning;
 use crate::selection::resolution;
 use crate::selection::streaming::{
     run_streaming, ChunkVisitor, PoolSource, SpillWriter, SpilledPool, StreamingError,
-    StreamingOptions,
+    StreamingOptions, UnitResult,
 };
 use crate::shift::weighting::WeightSource;
 
@@ -515,46 +515,114 @@ pub(crate) fn run(
     };
     outcome.warnings = selection_warnings(&outcome);
 
-    // Pass 4: the CSV again, writing the outputs.
+    // Pass 4: the CSV again, in lockstep with the selection's last pass. Each chunk's
+    // units are gathered, then its rows formatted in parallel pieces and written in order.
     status.step("writing candidates.csv");
     let candidates_file =
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
-    let mut candidates =
-        csv::Writer::from_writer(BufWriter::with_capacity(1 << 20, candidates_file));
+    let mut candidates = BufWriter::with_capacity(1 << 20, candidates_file);
     let shortlist_rows_file =
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
     let mut shortlist_rows = BufWriter::with_capacity(1 << 20, shortlist_rows_file);
-    // Each shortlist row is formatted in memory, then appended to the rows file.
-    let mut shortlist_row = csv::Writer::from_writer(Vec::with_capacity(256));
     let header = candidates_header(&first.kept_names);
-    candidates
+    let mut header_bytes = csv::Writer::from_writer(Vec::new());
+    header_bytes
         .write_record(&header)
+        .and_then(|()| header_bytes.flush().map_err(csv::Error::from))
         .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?;
+    candidates
+        .write_all(header_bytes.get_ref())
+        .map_err(internal("cannot write candidates.csv"))?;
     // (offset, length) of each shortlist row in the rows file, by rank.
     let mut row_at: Vec<(u64, u32)> = vec![(0, 0); r_star];
     let mut top: Vec<String> = vec![String::new(); r_star.min(TOP_SHOWN)];
-    let mut cells = RowCells::new(header.len());
-    let mut short_cells = RowCells::new(header.len());
     let mut chunks = open_pool()?;
     let mut chunk = chunks.chunk();
     let mut chunk_start = 0u64;
-    let mut chunk_scores_now: Vec<f64> = Vec::new();
+    let mut batch: Vec<UnitResult> = Vec::with_capacity(ROWS_PER_CHUNK);
     let mut failure: Option<Failure> = None;
     let mut selected_seen = 0usize;
     let mut written_bytes = 0u64;
     let has_threshold = chunks.has_threshold();
     let has_weight = chunks.has_weight();
     let draw = &outcome.draw;
+    let shape = RowShape {
+        fields: header.len(),
+        kept_width,
+        has_weight,
+        total,
+        q,
+    };
+    let mut flush = |chunk: &PoolChunk, chunk_start: u64, batch: &mut Vec<UnitResult>| {
+        let scores = chunk_scores(config, &settings, chunk, has_threshold);
+        let ranks_here: Vec<Option<usize>> = batch
+            .iter()
+            .map(|unit| {
+                unit.selected.then(|| {
+                    selected_seen += 1;
+                    ranks[selected_seen - 1] as usize
+                })
+            })
+            .collect();
+        let pieces: Vec<FormattedRows> = (0..batch.len())
+            .step_by(ROWS_PER_PIECE)
+            .collect::<Vec<_>>()
+            .into_par_iter()
+            .map(|from| {
+                let to = (from + ROWS_PER_PIECE).min(batch.len());
+                format_rows(
+                    &shape,
+                    chunk,
+                    &scores,
+                    &batch[from..to],
+                    &ranks_here[from..to],
+                    from,
+                    &q_values[chunk_start as usize + from..chunk_start as usize + to],
+                    |unit: &UnitResult| {
+                        selection_probability(
+                            unit.first_step,
+                            unit.selected,
+                            unit.conditional_count,
+                            draw,
+                        )
+                    },
+                )
+            })
+            .collect::<Result<_, csv::Error>>()
+            .map_err(|e| Failure::Internal(format!("cannot format candidates.csv: {e}")))?;
+        for piece in pieces {
+            candidates
+                .write_all(&piece.candidates)
+                .map_err(internal("cannot write candidates.csv"))?;
+            shortlist_rows
+                .write_all(&piece.shortlist)
+                .map_err(internal("cannot write shortlist.csv"))?;
+            for (rank, r, len) in piece.shortlist_rows {
+                row_at[rank - 1] = (written_bytes, len);
+                written_bytes += u64::from(len);
+                if rank <= top.len() {
+                    top[rank - 1] = chunk.ids()[r].clone();
+                }
+            }
+        }
+        batch.clear();
+        Ok::<(), Failure>(())
+    };
     selection
         .for_each_unit(&mut pool, |j, unit| {
             if failure.is_some() {
                 return;
             }
             while j >= chunk_start + chunk.len() as u64 {
+                if !batch.is_empty() {
+                    if let Err(e) = flush(&chunk, chunk_start, &mut batch) {
+                        failure = Some(e);
+                        return;
+                    }
+                }
                 chunk_start += chunk.len() as u64;
                 match chunks.next_chunk(&mut chunk, ROWS_PER_CHUNK) {
                     Ok(true) => {
-                        chunk_scores_now = chunk_scores(config, &settings, &chunk, has_threshold);
                         if pool_len > 0 {
                             status
                                 .progress("writing candidates.csv", chunks.fraction_read(pool_len));
@@ -574,84 +642,16 @@ pub(crate) fn run(
                     }
                 }
             }
-            let r = (j - chunk_start) as usize;
-            let w = chunk.weight(has_weight).map_or(1.0, |w| w[r]);
-            let p = unit.numerator / unit.denominator;
-            let q_value = q_values[j as usize].0;
-            let reason = (!within_level(w, total + w, q)).then(|| unreachable_text(w, total, q));
-            let rank = unit.selected.then(|| {
-                let rank = ranks[selected_seen] as usize;
-                selected_seen += 1;
-                rank
-            });
-            let probability =
-                selection_probability(unit.first_step, unit.selected, unit.conditional_count, draw);
-            let id = &chunk.ids()[r];
-            let kept = chunk.kept_row(r, kept_width);
-            let row = CandidateRow {
-                id,
-                score: chunk_scores_now[r],
-                weight: w,
-                p_value: p,
-                selected: unit.selected,
-                conditional: Some((unit.first_step, unit.conditional_count)),
-                unreachable_reason: reason.as_deref(),
-                selection_probability: probability,
-                q_value,
-                q_value_by: None,
-                unreliable: false,
-                prediction: chunk.prediction()[r],
-                shortlist_rank: rank,
-                kept,
-            };
-            if let Err(e) = candidates.write_byte_record(cells.candidate(&row)) {
-                failure = Some(Failure::Internal(format!(
-                    "cannot write candidates.csv: {e}"
-                )));
-                return;
-            }
-            if let Some(rank) = rank {
-                let row = ShortlistRow {
-                    rank,
-                    id,
-                    prediction: chunk.prediction()[r],
-                    p_value: p,
-                    q_value,
-                    selection_probability: probability,
-                    weight: w,
-                    kept,
-                };
-                let written = shortlist_row
-                    .write_byte_record(short_cells.shortlisted(&row))
-                    .and_then(|()| shortlist_row.flush().map_err(csv::Error::from))
-                    .map_err(io::Error::other)
-                    .and_then(|()| shortlist_rows.write_all(shortlist_row.get_ref()));
-                if let Err(e) = written {
-                    failure = Some(Failure::Internal(format!(
-                        "cannot write shortlist.csv: {e}"
-                    )));
-                    return;
-                }
-                let len = shortlist_row.get_ref().len();
-                // The in-memory row buffer is emptied for the next row.
-                let _ = std::mem::replace(
-                    &mut shortlist_row,
-                    csv::Writer::from_writer(Vec::with_capacity(256)),
-                );
-                row_at[rank - 1] = (written_bytes, len as u32);
-                written_bytes += len as u64;
-                if rank <= top.len() {
-                    top[rank - 1] = id.clone();
-                }
-            }
+            batch.push(unit);
         })
         .map_err(streaming_failure)?;
     if let Some(f) = failure {
         return Err(f);
     }
+    if !batch.is_empty() {
+        flush(&chunk, chunk_start, &mut batch)?;
+    }
     let candidates_file = candidates
-        .into_inner()
-        .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?
         .into_inner()
         .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?;
     let rows_file = shortlist_rows
@@ -758,6 +758,97 @@ fn chunk_scores(
 
 /// shortlist.csv: the header, then the rows of `rows` in rank order (`row_at[rank - 1]` is
 /// a row's offset and length).
+/// Rows formatted together in pass 4 (a piece of a chunk).
+const ROWS_PER_PIECE: usize = 1 << 13;
+
+/// What every candidates.csv row of a run shares.
+struct RowShape {
+    fields: usize,
+    kept_width: usize,
+    has_weight: bool,
+    total: f64,
+    q: f64,
+}
+
+/// One piece's formatted rows: candidates.csv bytes, shortlist rows' bytes, and for each
+/// shortlist row its rank, its row in the chunk and its length.
+struct FormattedRows {
+    candidates: Vec<u8>,
+    shortlist: Vec<u8>,
+    shortlist_rows: Vec<(usize, usize, u32)>,
+}
+
+/// Format the rows `offset..offset + units.len()` of a chunk (`q_values`, `ranks` and
+/// `units` for those rows), as the in-memory path's candidates.csv and shortlist.csv rows.
+#[allow(clippy::too_many_arguments)]
+fn format_rows(
+    shape: &RowShape,
+    chunk: &PoolChunk,
+    scores: &[f64],
+    units: &[UnitResult],
+    ranks: &[Option<usize>],
+    offset: usize,
+    q_values: &[(f64, usize)],
+    probability_of: impl Fn(&UnitResult) -> f64,
+) -> Result<FormattedRows, csv::Error> {
+    let (total, q) = (shape.total, shape.q);
+    let mut candidates = csv::Writer::from_writer(Vec::with_capacity(units.len() * 96));
+    let mut shortlist = csv::Writer::from_writer(Vec::new());
+    let mut shortlist_rows = Vec::new();
+    let mut cells = RowCells::new(shape.fields);
+    let mut short_cells = RowCells::new(shape.fields);
+    for (i, unit) in units.iter().enumerate() {
+        let r = offset + i;
+        let w = chunk.weight(shape.has_weight).map_or(1.0, |w| w[r]);
+        let p = unit.numerator / unit.denominator;
+        let q_value = q_values[i].0;
+        let reason = (!within_level(w, total + w, q)).then(|| unreachable_text(w, total, q));
+        let probability = probability_of(unit);
+        let id = &chunk.ids()[r];
+        let kept = chunk.kept_row(r, shape.kept_width);
+        let row = CandidateRow {
+            id,
+            score: scores[r],
+            weight: w,
+            p_value: p,
+            selected: unit.selected,
+            conditional: Some((unit.first_step, unit.conditional_count)),
+            unreachable_reason: reason.as_deref(),
+            selection_probability: probability,
+            q_value,
+            q_value_by: None,
+            unreliable: false,
+            prediction: chunk.prediction()[r],
+            shortlist_rank: ranks[i],
+            kept,
+        };
+        candidates.write_byte_record(cells.candidate(&row))?;
+        if let Some(rank) = ranks[i] {
+            let row = ShortlistRow {
+                rank,
+                id,
+                prediction: chunk.prediction()[r],
+                p_value: p,
+                q_value,
+                selection_probability: probability,
+                weight: w,
+                kept,
+            };
+            let before = shortlist.get_ref().len();
+            shortlist.write_byte_record(short_cells.shortlisted(&row))?;
+            shortlist.flush()?;
+            shortlist_rows.push((rank, r, (shortlist.get_ref().len() - before) as u32));
+        }
+    }
+    candidates.flush()?;
+    shortlist.flush()?;
+    Ok(FormattedRows {
+        candidates: candidates.into_inner().map_err(|e| e.into_error())?,
+        shortlist: shortlist.into_inner().map_err(|e| e.into_error())?,
+        shortlist_rows,
+    })
+}
+
 fn ordered_shortlist(
     dir: &Path,
     rows: &File,

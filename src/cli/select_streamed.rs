@@ -24,11 +24,14 @@ use std::collections::HashSet;
 use std::fs::File;
 use std::io::{self, BufReader, BufWriter, Read, Write};
 use std::path::{Path, PathBuf};
+use std::sync::mpsc::{sync_channel, Receiver};
 
 use crate::conformal::pvalue::CalibrationSet;
 use crate::conformal::score::{labeled_scores_toward, pool_scores_toward, Thresholds};
 use crate::io::source::is_stdin;
-use crate::io::{pool_id_hash, read_units, OutputSet, PoolChunk, PoolChunks, Role, Source};
+use crate::io::{
+    pool_id_hash, read_units, InputError, OutputSet, PoolChunk, PoolChunks, Role, Source,
+};
 use crate::report::summary::{
     candidates_header, shortlist_header, text_summary_of_top, unreachable_text, CandidateRow,
     RowCells, ShortlistRow, TOP_SHOWN,
@@ -276,7 +279,7 @@ pub(crate) fn run(
     timer.mark("read labeled");
 
     // Pass 1: the CSV.
-    let mut chunks = open_pool()?;
+    let chunks = open_pool()?;
     let kept_width = chunks.kept_names().len();
     let mut spill = SpillWriter::new(Some(&temp_dir), chunks.has_weight())
         .map_err(internal("cannot create a temporary file"))?;
@@ -301,11 +304,12 @@ pub(crate) fn run(
         kept_names: chunks.kept_names(),
     };
     let mut hashes: Vec<u64> = Vec::new();
-    let mut chunk = chunks.chunk();
     let write_error = internal("cannot write a temporary file");
-    while chunks.next_chunk(&mut chunk, ROWS_PER_CHUNK)? {
-        let scores = chunk_scores(config, &settings, &chunk, chunks.has_threshold());
-        let weights = chunk.weight(chunks.has_weight());
+    let (has_threshold, has_weight) = (chunks.has_threshold(), chunks.has_weight());
+    let mut ahead = ReadAhead::start(chunks, pool_len);
+    while let Some((chunk, fraction)) = ahead.next()? {
+        let scores = chunk_scores(config, &settings, &chunk, has_threshold);
+        let weights = chunk.weight(has_weight);
         for (r, id) in chunk.ids().iter().enumerate() {
             let w = weights.map_or(1.0, |w| w[r]);
             spill.push(scores[r], w).map_err(&write_error)?;
@@ -327,10 +331,9 @@ pub(crate) fn run(
         }
         first.m += chunk.len();
         if pool_len > 0 {
-            status.progress("reading the pool", chunks.fraction_read(pool_len));
+            status.progress("reading the pool", fraction);
         }
     }
-    drop(chunk);
     let m = first.m;
     hashes.sort_unstable();
     let repeated: HashSet<u64> = hashes
@@ -536,15 +539,16 @@ pub(crate) fn run(
     // (offset, length) of each shortlist row in the rows file, by rank.
     let mut row_at: Vec<(u64, u32)> = vec![(0, 0); r_star];
     let mut top: Vec<String> = vec![String::new(); r_star.min(TOP_SHOWN)];
-    let mut chunks = open_pool()?;
+    let chunks = open_pool()?;
     let mut chunk = chunks.chunk();
+    let has_threshold = chunks.has_threshold();
+    let has_weight = chunks.has_weight();
+    let mut ahead = ReadAhead::start(chunks, pool_len);
     let mut chunk_start = 0u64;
     let mut batch: Vec<UnitResult> = Vec::with_capacity(ROWS_PER_CHUNK);
     let mut failure: Option<Failure> = None;
     let mut selected_seen = 0usize;
     let mut written_bytes = 0u64;
-    let has_threshold = chunks.has_threshold();
-    let has_weight = chunks.has_weight();
     let draw = &outcome.draw;
     let shape = RowShape {
         fields: header.len(),
@@ -621,14 +625,14 @@ pub(crate) fn run(
                     }
                 }
                 chunk_start += chunk.len() as u64;
-                match chunks.next_chunk(&mut chunk, ROWS_PER_CHUNK) {
-                    Ok(true) => {
+                match ahead.next() {
+                    Ok(Some((next, fraction))) => {
+                        chunk = next;
                         if pool_len > 0 {
-                            status
-                                .progress("writing candidates.csv", chunks.fraction_read(pool_len));
+                            status.progress("writing candidates.csv", fraction);
                         }
                     }
-                    Ok(false) => {
+                    Ok(None) => {
                         failure = Some(Failure::Input(format!(
                             "{}: the file changed while it was read (fewer rows on the second \
                              read)",
@@ -637,7 +641,7 @@ pub(crate) fn run(
                         return;
                     }
                     Err(e) => {
-                        failure = Some(e.into());
+                        failure = Some(e);
                         return;
                     }
                 }
@@ -758,6 +762,50 @@ fn chunk_scores(
 
 /// shortlist.csv: the header, then the rows of `rows` in rank order (`row_at[rank - 1]` is
 /// a row's offset and length).
+/// The pool's chunks read on a second thread, up to two ahead of their use, so that
+/// parsing the CSV overlaps the work done with each chunk.
+struct ReadAhead {
+    chunks: Receiver<Result<(PoolChunk, f64), InputError>>,
+    reader: Option<std::thread::JoinHandle<()>>,
+}
+
+impl ReadAhead {
+    fn start(mut chunks: PoolChunks, pool_len: u64) -> Self {
+        let (sender, receiver) = sync_channel(2);
+        let reader = std::thread::spawn(move || loop {
+            let mut chunk = chunks.chunk();
+            let next = match chunks.next_chunk(&mut chunk, ROWS_PER_CHUNK) {
+                Ok(true) => Ok((chunk, chunks.fraction_read(pool_len))),
+                Ok(false) => return,
+                Err(e) => Err(e),
+            };
+            let last = next.is_err();
+            if sender.send(next).is_err() || last {
+                return;
+            }
+        });
+        ReadAhead {
+            chunks: receiver,
+            reader: Some(reader),
+        }
+    }
+
+    /// The next chunk and the fraction of the file read so far; `None` at the end.
+    fn next(&mut self) -> Result<Option<(PoolChunk, f64)>, Failure> {
+        match self.chunks.recv() {
+            Ok(Ok(next)) => Ok(Some(next)),
+            Ok(Err(e)) => Err(e.into()),
+            // The reader has stopped: at the end of the file, or by a panic (not an end).
+            Err(_) => match self.reader.take().map(std::thread::JoinHandle::join) {
+                Some(Err(_)) => Err(Failure::Internal(
+                    "the thread reading the pool stopped unexpectedly".to_string(),
+                )),
+                _ => Ok(None),
+            },
+        }
+    }
+}
+
 /// Rows formatted together in pass 4 (a piece of a chunk).
 const ROWS_PER_PIECE: usize = 1 << 13;
 

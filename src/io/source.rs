@@ -48,7 +48,7 @@ struct Run {
 /// An input table read once, front to back, with the bookkeeping described in the module
 /// documentation.
 pub struct Source {
-    inner: Box<dyn Read>,
+    inner: Box<dyn Read + Send>,
     /// Bytes delivered so far.
     offset: u64,
     /// Recent runs of line-end bytes, in file order.
@@ -68,8 +68,8 @@ impl Source {
     /// directory is refused, and so is a binary format that is not a table (the error's
     /// message names the format and what to do; its kind is `InvalidData`).
     pub fn open(path: &Path) -> io::Result<Source> {
-        let (raw, len): (Box<dyn Read>, u64) = if is_stdin(path) {
-            (Box::new(io::stdin().lock()), 0)
+        let (raw, len): (Box<dyn Read + Send>, u64) = if is_stdin(path) {
+            (Box::new(io::stdin()), 0)
         } else {
             let file = File::open(path)?;
             let metadata = file.metadata()?;
@@ -101,7 +101,7 @@ impl Source {
     }
 
     /// Wrap any reader (tests, in-memory data).
-    pub fn new(inner: Box<dyn Read>) -> Source {
+    pub fn new(inner: Box<dyn Read + Send>) -> Source {
         Source {
             inner,
             offset: 0,
@@ -271,7 +271,7 @@ const REFUSED: &[(&[u8], &str, &str)] = &[
 ///
 /// # Errors
 /// A read error, or an `InvalidData` error naming a refused binary format and what to do.
-fn decompressed(mut raw: Box<dyn Read>) -> io::Result<(Format, Box<dyn Read>)> {
+fn decompressed(mut raw: Box<dyn Read + Send>) -> io::Result<(Format, Box<dyn Read + Send>)> {
     // Read up to SIGNATURE_BYTES (a pipe may deliver them one at a time).
     let mut head = [0u8; SIGNATURE_BYTES];
     let mut have = 0;
@@ -290,7 +290,7 @@ fn decompressed(mut raw: Box<dyn Read>) -> io::Result<(Format, Box<dyn Read>)> {
             format!("this is {name}, not a CSV/TSV table. Hint: {todo}."),
         ));
     }
-    let whole: Box<dyn Read> = Box::new(io::Cursor::new(head.to_vec()).chain(raw));
+    let whole: Box<dyn Read + Send> = Box::new(io::Cursor::new(head.to_vec()).chain(raw));
     if head.starts_with(b"\x1f\x8b") {
         let decoder = flate2::read::MultiGzDecoder::new(BufReader::with_capacity(1 << 16, whole));
         return Ok((Format::Gzip, Box::new(Damaged::new(decoder, Format::Gzip))));

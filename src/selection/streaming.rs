@@ -304,8 +304,73 @@ impl MinTree {
 
 /// The `O(n)` summary of pass 1 with the filters of pass 2: everything a unit's decision
 /// reads besides its own score and weight (the "broadcast arrays" of docs/streaming.md).
+/// `#{i : V_i < s}` over sorted labeled scores without a search of the whole array: a
+/// grid of `cells` equal cells over the finite labeled range, `start[c]` = labeled scores
+/// in cells before `c`, then a search within `s`'s cell only. Exact: `cell` is monotone in
+/// its argument (a subtraction, a product by a positive number, a saturating cast), so a
+/// labeled score in an earlier cell is below `s` and one in a later cell is above it.
+#[derive(Clone, Debug)]
+struct BucketIndex {
+    lo: f64,
+    scale: f64,
+    /// `start[c]` for `c` in `0..=cells`.
+    start: Vec<u32>,
+}
+
+impl BucketIndex {
+    fn new(sorted: &[f64]) -> Self {
+        let finite = || sorted.iter().copied().filter(|v| v.is_finite());
+        let lo = finite().next().unwrap_or(0.0);
+        let hi = finite().last().unwrap_or(0.0);
+        let cells = (2 * sorted.len()).clamp(1, 1 << 22);
+        let scale = if hi > lo && (hi - lo).is_finite() {
+            cells as f64 / (hi - lo)
+        } else {
+            0.0
+        };
+        let mut index = BucketIndex {
+            lo,
+            scale,
+            start: vec![0; cells + 1],
+        };
+        // start[c] = #{v : cell(v) < c}; cell(v) is non-decreasing along `sorted`.
+        let mut c = 0;
+        for (i, &v) in sorted.iter().enumerate() {
+            let cell = index.cell(v);
+            while c < cell {
+                c += 1;
+                index.start[c] = i as u32;
+            }
+        }
+        while c < cells {
+            c += 1;
+            index.start[c] = sorted.len() as u32;
+        }
+        index
+    }
+
+    /// The cell of `x`: `floor((x - lo) * scale)` clamped to the grid (`-inf` and values
+    /// below `lo` in cell 0, `+inf` and values from `hi` in the last).
+    #[inline]
+    fn cell(&self, x: f64) -> usize {
+        let t = (x - self.lo) * self.scale;
+        // `as` saturates (and sends NaN, from inf * 0, to 0): monotone in x.
+        (t as usize).min(self.start.len() - 2)
+    }
+
+    /// `#{v in sorted : v < s}`.
+    #[inline]
+    fn below(&self, sorted: &[f64], s: f64) -> usize {
+        let c = self.cell(s);
+        let (from, to) = (self.start[c] as usize, self.start[c + 1] as usize);
+        from + sorted[from..to].partition_point(|&v| v < s)
+    }
+}
+
 struct Summary<'c> {
     calibration: &'c CalibrationSet,
+    /// `#{i : V_i < s}` by a grid over the labeled scores.
+    index: BucketIndex,
     q: f64,
     m: usize,
     total: f64,
@@ -383,6 +448,7 @@ impl<'c> Summary<'c> {
         let high_values = high_stairs.iter().map(|&i| tau[i]).collect();
         let low_tree = MinTree::new(&sigma);
         Summary {
+            index: BucketIndex::new(calibration.sorted_scores()),
             calibration,
             q,
             m,
@@ -423,9 +489,7 @@ impl<'c> Summary<'c> {
     /// The bucket `#{i : V_i < score}`.
     #[inline]
     fn bucket_of(&self, score: f64) -> usize {
-        self.calibration
-            .sorted_scores()
-            .partition_point(|&v| v < score)
+        self.index.below(self.calibration.sorted_scores(), score)
     }
 
     /// [`Self::decide`] with the unit's bucket already known.
@@ -689,6 +753,8 @@ pub fn run_streaming<'c>(
     let n = labeled.len();
     let total = calibration.total_weight();
 
+    let index = BucketIndex::new(labeled);
+
     // Pass 1: bucket histogram and largest score per bucket; checks.
     let mut bucket_count = vec![0u64; n + 1];
     let mut bucket_max = vec![f64::NEG_INFINITY; n + 1];
@@ -716,7 +782,7 @@ pub fn run_streaming<'c>(
         }
         let buckets: Vec<u32> = scores
             .par_iter()
-            .map(|&s| labeled.partition_point(|&v| v < s) as u32)
+            .map(|&s| index.below(labeled, s) as u32)
             .collect();
         for (&b, &s) in buckets.iter().zip(scores) {
             bucket_count[b as usize] += 1;
@@ -1194,6 +1260,61 @@ impl StreamingSelection<'_> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[test]
+    fn bucket_index_counts_as_a_binary_search_of_the_whole_array() {
+        use rand::{Rng, SeedableRng};
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(7);
+        let inf = f64::INFINITY;
+        let mut sets: Vec<Vec<f64>> = vec![
+            vec![],
+            vec![1.0],
+            vec![2.0; 50],
+            vec![-inf, -inf, 0.0, inf, inf],
+            vec![inf; 5],
+            vec![-inf, inf],
+            vec![0.0, f64::MIN_POSITIVE * 1e-10, f64::MIN_POSITIVE],
+            vec![-1e300, -1.0, 0.0, 1e-300, 1.0, 1e300],
+            vec![-f64::MAX, f64::MAX],
+            (0..1000).map(|i| f64::from(i / 7) * 0.001).collect(),
+        ];
+        for _ in 0..20 {
+            let n = rng.gen_range(1..3000);
+            let spread = 10f64.powi(rng.gen_range(-8..8));
+            let mut v: Vec<f64> = (0..n)
+                .map(|_| {
+                    let x: f64 = rng.gen::<f64>() - 0.5;
+                    // Heavy tail and a grid, so that cells hold very different counts.
+                    (x.powi(5) * spread * 1e3).round() / 1e3
+                })
+                .collect();
+            if rng.gen_bool(0.3) {
+                v.push(inf);
+            }
+            v.sort_by(f64::total_cmp);
+            sets.push(v);
+        }
+        for sorted in &sets {
+            let index = BucketIndex::new(sorted);
+            let mut queries: Vec<f64> = vec![-inf, inf, 0.0, -0.0, f64::MAX, -f64::MAX];
+            for &v in sorted {
+                queries.extend([v, v.next_up(), v.next_down()]);
+            }
+            for _ in 0..200 {
+                let a = sorted.first().copied().unwrap_or(0.0).max(-1e308);
+                let b = sorted.last().copied().unwrap_or(1.0).min(1e308);
+                queries.push(a + (b - a) * rng.gen::<f64>());
+            }
+            for s in queries {
+                assert_eq!(
+                    index.below(sorted, s),
+                    sorted.partition_point(|&v| v < s),
+                    "query {s:e} in {} values",
+                    sorted.len()
+                );
+            }
+        }
+    }
 
     #[test]
     fn min_tree_finds_the_rightmost_passing_index() {

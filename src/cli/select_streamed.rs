@@ -31,6 +31,7 @@ use crate::conformal::score::{labeled_scores_toward, pool_scores_toward, Thresho
 use crate::io::source::is_stdin;
 use crate::io::{
     pool_id_hash, read_units, InputError, OutputSet, PoolChunk, PoolChunks, Role, Source,
+    StagedFile,
 };
 use crate::report::summary::{
     candidates_header, shortlist_header, text_summary_of_top, unreachable_text, CandidateRow,
@@ -224,7 +225,7 @@ pub(crate) fn run(
     let mut timer = PhaseTimer::new();
     let settings = config.options.check()?;
     let q = settings.fdr;
-    let folder = open_output(
+    let mut folder = open_output(
         &config.out,
         config.force,
         &[&config.labeled_path, &config.pool_path],
@@ -521,8 +522,11 @@ pub(crate) fn run(
     // Pass 4: the CSV again, in lockstep with the selection's last pass. Each chunk's
     // units are gathered, then its rows formatted in parallel pieces and written in order.
     status.step("writing candidates.csv");
-    let candidates_file =
-        tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
+    // Written in place under the commit's temporary name: renamed, not copied, at the end
+    // (the output folder is created now for that; removed again if the run fails).
+    folder.create_now()?;
+    let candidates_file = StagedFile::create(&config.out, "candidates.csv")
+        .map_err(internal("cannot create candidates.csv"))?;
     let mut candidates = BufWriter::with_capacity(1 << 20, candidates_file);
     let shortlist_rows_file =
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
@@ -662,7 +666,7 @@ pub(crate) fn run(
         .into_inner()
         .map_err(|e| Failure::Internal(format!("cannot write shortlist.csv: {e}")))?;
     let shortlist_file = ordered_shortlist(
-        &temp_dir,
+        &config.out,
         &rows_file,
         &row_at,
         &shortlist_header(&first.kept_names),
@@ -706,8 +710,8 @@ pub(crate) fn run(
         ranked_units_spilled: Some(counts.spilled),
     });
     let mut files = OutputSet::new();
-    files.add_file("candidates.csv", candidates_file);
-    files.add_file("shortlist.csv", shortlist_file);
+    files.add_staged("candidates.csv", candidates_file);
+    files.add_staged("shortlist.csv", shortlist_file);
     let json = serde_json::to_vec_pretty(&summary)
         .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?;
     files.add("summary.json", json);
@@ -902,9 +906,9 @@ fn ordered_shortlist(
     rows: &File,
     row_at: &[(u64, u32)],
     header: &[String],
-) -> io::Result<File> {
+) -> io::Result<StagedFile> {
     use std::os::unix::fs::FileExt;
-    let file = tempfile::tempfile_in(dir)?;
+    let file = StagedFile::create(dir, "shortlist.csv")?;
     let mut out = csv::Writer::from_writer(BufWriter::with_capacity(1 << 20, file));
     out.write_record(header)?;
     let mut out = out.into_inner().map_err(|e| e.into_error())?;

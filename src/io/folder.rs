@@ -393,6 +393,18 @@ pub struct RunFolder {
     reads: Vec<PathBuf>,
     lock: Option<DirLock>,
     locked_at: SystemTime,
+    /// Folders created by [`RunFolder::create_now`], outermost first: removed (when empty)
+    /// if the run ends without committing.
+    created: Vec<PathBuf>,
+}
+
+impl Drop for RunFolder {
+    fn drop(&mut self) {
+        if !self.created.is_empty() {
+            remove_created(&self.created);
+            forget_created_dirs();
+        }
+    }
 }
 
 impl RunFolder {
@@ -413,6 +425,7 @@ impl RunFolder {
             reads,
             lock: None,
             locked_at: SystemTime::now(),
+            created: Vec::new(),
         };
         if dir.exists() {
             if !dir.is_dir() {
@@ -519,6 +532,20 @@ impl RunFolder {
         }
     }
 
+    /// Create the folder now (and missing parents) and lock it, for outputs written in
+    /// place before the commit ([`crate::io::StagedFile`]). The folders created are removed
+    /// (when empty) if the run ends without committing. Nothing happens when the folder
+    /// exists.
+    ///
+    /// # Errors
+    /// [`FolderError`] naming the folder.
+    pub fn create_now(&mut self) -> Result<(), FolderError> {
+        if self.lock.is_none() {
+            self.created = self.create_and_lock()?;
+        }
+        Ok(())
+    }
+
     /// Write `set` into the folder as one run of `command`: all files and the manifest, or
     /// nothing; then remove the previous run's files that this run did not write and does
     /// not read. Returns the paths written (the manifest not included).
@@ -534,11 +561,10 @@ impl RunFolder {
                 format!("output file name {MANIFEST} is reserved"),
             )));
         }
-        let created = if self.lock.is_none() {
-            self.create_and_lock()?
-        } else {
-            Vec::new()
-        };
+        let mut created = std::mem::take(&mut self.created);
+        if self.lock.is_none() {
+            created = self.create_and_lock()?;
+        }
         let result = self.commit_locked(set, command);
         if result.is_err() {
             remove_created(&created);
@@ -648,6 +674,28 @@ mod tests {
             set.add(name, bytes.as_bytes().to_vec());
         }
         set
+    }
+
+    #[test]
+    fn a_folder_created_early_is_removed_unless_committed() {
+        let dir = TempDir::new().unwrap();
+        let out = dir.path().join("new").join("out");
+        let mut folder = RunFolder::open(&out, false, &[]).unwrap();
+        assert!(!out.exists(), "open creates nothing");
+        folder.create_now().unwrap();
+        assert!(out.is_dir());
+        drop(folder);
+        assert!(!out.exists() && !dir.path().join("new").exists());
+
+        let mut folder = RunFolder::open(&out, false, &[]).unwrap();
+        folder.create_now().unwrap();
+        folder.commit(set(&[("a.csv", "1")]), "select").unwrap();
+        assert_eq!(names(&out), vec![MANIFEST.to_string(), "a.csv".to_string()]);
+        // An existing folder is neither created nor removed.
+        let mut folder = RunFolder::open(&out, false, &[]).unwrap();
+        folder.create_now().unwrap();
+        drop(folder);
+        assert!(out.join("a.csv").exists());
     }
 
     #[test]

@@ -29,7 +29,7 @@ pub use columns::{check_same_features, resolve_features};
 pub use errors::InputError;
 pub use folder::{FolderError, Manifest, RunFolder, MANIFEST};
 pub use outcome::{CensoredRule, MissingOutcome, OutcomeCells};
-pub use output::{abandon_temporaries, write_atomic, OutputSet};
+pub use output::{abandon_temporaries, write_atomic, OutputSet, StagedFile};
 pub use read::{
     column_overview, delimiter_for, parse_finite, pool_id_hash, read_id_list, read_table,
     read_table_choosing, read_units, read_units_choosing, ColumnKind, ColumnOverview, KeptColumns,

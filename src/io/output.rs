@@ -87,47 +87,102 @@ enum WriteFrom<'a> {
     File(&'a mut fs::File),
 }
 
-/// Write `bytes` to a new hidden temporary file next to the target and fsync it.
-fn write_temp(dir: &Path, file_name: &str, from: WriteFrom<'_>) -> io::Result<PathBuf> {
+/// Create a new hidden temporary file `.NAME.PID-COUNT.tmp` in `dir`, registered so that
+/// an interruption removes it.
+fn create_temp(dir: &Path, file_name: &str) -> io::Result<(PathBuf, fs::File)> {
     let process = std::process::id();
     loop {
         let count = TEMP_COUNTER.fetch_add(1, Ordering::Relaxed);
         let temp = dir.join(format!(".{file_name}.{process}-{count}.tmp"));
-        let mut file = {
-            let mut registry = registry();
-            if registry.terminating {
-                return Err(io::Error::new(
-                    io::ErrorKind::Interrupted,
-                    "the run was interrupted",
-                ));
-            }
-            match OpenOptions::new().write(true).create_new(true).open(&temp) {
-                Ok(file) => {
-                    registry.temps.push(temp.clone());
-                    file
-                }
-                Err(error) if error.kind() == io::ErrorKind::AlreadyExists => continue,
-                Err(error) => return Err(error),
-            }
-        };
-        let written = match from {
-            WriteFrom::Bytes(bytes) => file.write_all(bytes),
-            WriteFrom::File(source) => {
-                use std::io::Seek;
-                source
-                    .rewind()
-                    .and_then(|()| io::copy(source, &mut file))
-                    .map(|_| ())
-            }
+        let mut registry = registry();
+        if registry.terminating {
+            return Err(io::Error::new(
+                io::ErrorKind::Interrupted,
+                "the run was interrupted",
+            ));
         }
-        .and_then(|()| file.sync_all());
-        return match written {
-            Ok(()) => Ok(temp),
-            Err(error) => {
-                discard_temps(std::slice::from_ref(&temp));
-                Err(error)
+        match OpenOptions::new()
+            .read(true)
+            .write(true)
+            .create_new(true)
+            .open(&temp)
+        {
+            Ok(file) => {
+                registry.temps.push(temp.clone());
+                return Ok((temp, file));
             }
-        };
+            Err(error) if error.kind() == io::ErrorKind::AlreadyExists => continue,
+            Err(error) => return Err(error),
+        }
+    }
+}
+
+/// Write `bytes` to a new hidden temporary file next to the target and fsync it.
+fn write_temp(dir: &Path, file_name: &str, from: WriteFrom<'_>) -> io::Result<PathBuf> {
+    let (temp, mut file) = create_temp(dir, file_name)?;
+    let written = match from {
+        WriteFrom::Bytes(bytes) => file.write_all(bytes),
+        WriteFrom::File(source) => {
+            use std::io::Seek;
+            source
+                .rewind()
+                .and_then(|()| io::copy(source, &mut file))
+                .map(|_| ())
+        }
+    }
+    .and_then(|()| file.sync_all());
+    match written {
+        Ok(()) => Ok(temp),
+        Err(error) => {
+            discard_temps(std::slice::from_ref(&temp));
+            Err(error)
+        }
+    }
+}
+
+/// An output file written in place, under the temporary name a commit into `dir` uses, so
+/// that committing renames it instead of copying it (outputs too large to hold in memory:
+/// no second copy on disk). Registered like the commit's own temporary files, so an
+/// interruption removes it; removed when dropped uncommitted.
+#[derive(Debug)]
+pub struct StagedFile {
+    dir: PathBuf,
+    temp: PathBuf,
+    file: fs::File,
+    owned: bool,
+}
+
+impl StagedFile {
+    /// A new empty file for `file_name` in the existing folder `dir`.
+    ///
+    /// # Errors
+    /// I/O errors from creating the file; `Interrupted` when the run is being stopped.
+    pub fn create(dir: &Path, file_name: &str) -> io::Result<StagedFile> {
+        let (temp, file) = create_temp(dir, file_name)?;
+        Ok(StagedFile {
+            dir: dir.to_path_buf(),
+            temp,
+            file,
+            owned: true,
+        })
+    }
+}
+
+impl Write for StagedFile {
+    fn write(&mut self, buf: &[u8]) -> io::Result<usize> {
+        self.file.write(buf)
+    }
+
+    fn flush(&mut self) -> io::Result<()> {
+        self.file.flush()
+    }
+}
+
+impl Drop for StagedFile {
+    fn drop(&mut self) {
+        if self.owned {
+            discard_temps(std::slice::from_ref(&self.temp));
+        }
     }
 }
 
@@ -260,6 +315,7 @@ pub struct OutputSet {
 enum Content {
     Bytes(Vec<u8>),
     File(fs::File),
+    Staged(StagedFile),
 }
 
 impl OutputSet {
@@ -276,6 +332,12 @@ impl OutputSet {
     /// set is committed; outputs too large to hold in memory).
     pub fn add_file(&mut self, file_name: &str, file: fs::File) {
         self.put(file_name, Content::File(file));
+    }
+
+    /// Stage a file written in place ([`StagedFile`]): renamed when the set is committed
+    /// into the folder it was created in, copied into any other.
+    pub fn add_staged(&mut self, file_name: &str, file: StagedFile) {
+        self.put(file_name, Content::Staged(file));
     }
 
     fn put(&mut self, file_name: &str, content: Content) {
@@ -341,6 +403,15 @@ impl OutputSet {
             let temp = match content {
                 Content::Bytes(bytes) => write_temp(dir, name, WriteFrom::Bytes(bytes))?,
                 Content::File(file) => write_temp(dir, name, WriteFrom::File(file))?,
+                Content::Staged(staged_file) if staged_file.dir == dir => {
+                    staged_file.file.sync_all()?;
+                    // From here `staged` removes it on a failure.
+                    staged_file.owned = false;
+                    staged_file.temp.clone()
+                }
+                Content::Staged(staged_file) => {
+                    write_temp(dir, name, WriteFrom::File(&mut staged_file.file))?
+                }
             };
             staged.temps.push((temp, dir.join(name)));
         }
@@ -359,6 +430,40 @@ mod tests {
             .map(|entry| entry.unwrap().file_name().to_string_lossy().into_owned())
             .filter(|name| name.ends_with(".tmp"))
             .collect()
+    }
+
+    #[test]
+    fn a_staged_file_is_renamed_in_its_folder_copied_elsewhere_and_removed_if_dropped() {
+        use std::os::unix::fs::MetadataExt;
+        let dir = TempDir::new().unwrap();
+        // Committed into its own folder: renamed (the same inode), nothing left over.
+        let mut staged = StagedFile::create(dir.path(), "big.csv").unwrap();
+        staged.write_all(b"a,b\n1,2\n").unwrap();
+        let inode = fs::metadata(&staged.temp).unwrap().ino();
+        let mut set = OutputSet::new();
+        set.add_staged("big.csv", staged);
+        set.add("small.json", b"{}".to_vec());
+        set.commit(dir.path()).unwrap();
+        let target = dir.path().join("big.csv");
+        assert_eq!(fs::read(&target).unwrap(), b"a,b\n1,2\n");
+        assert_eq!(fs::metadata(&target).unwrap().ino(), inode);
+        assert!(leftovers(dir.path()).is_empty());
+        // Committed into another folder: copied, and the original removed.
+        let other = dir.path().join("other");
+        let mut staged = StagedFile::create(dir.path(), "big.csv").unwrap();
+        staged.write_all(b"x\n").unwrap();
+        let mut set = OutputSet::new();
+        set.add_staged("big.csv", staged);
+        set.commit(&other).unwrap();
+        assert_eq!(fs::read(other.join("big.csv")).unwrap(), b"x\n");
+        assert!(leftovers(dir.path()).is_empty() && leftovers(&other).is_empty());
+        // Dropped uncommitted: removed and forgotten.
+        let staged = StagedFile::create(dir.path(), "gone.csv").unwrap();
+        let temp = staged.temp.clone();
+        assert!(temp.exists());
+        drop(staged);
+        assert!(!temp.exists());
+        assert!(!registry().temps.contains(&temp));
     }
 
     #[test]

@@ -321,7 +321,7 @@ impl BucketIndex {
     fn new(sorted: &[f64]) -> Self {
         let finite = || sorted.iter().copied().filter(|v| v.is_finite());
         let lo = finite().next().unwrap_or(0.0);
-        let hi = finite().last().unwrap_or(0.0);
+        let hi = finite().next_back().unwrap_or(0.0);
         let cells = (2 * sorted.len()).clamp(1, 1 << 22);
         let scale = if hi > lo && (hi - lo).is_finite() {
             cells as f64 / (hi - lo)

@@ -530,7 +530,7 @@ pub(crate) fn run(
     let mut candidates = BufWriter::with_capacity(1 << 20, candidates_file);
     let shortlist_rows_file =
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
-    let mut shortlist_rows = BufWriter::with_capacity(1 << 20, shortlist_rows_file);
+    let shortlist_rows = BufWriter::with_capacity(1 << 20, shortlist_rows_file);
     let header = candidates_header(&first.kept_names);
     let mut header_bytes = csv::Writer::from_writer(Vec::new());
     header_bytes
@@ -540,19 +540,12 @@ pub(crate) fn run(
     candidates
         .write_all(header_bytes.get_ref())
         .map_err(internal("cannot write candidates.csv"))?;
-    // (offset, length) of each shortlist row in the rows file, by rank.
-    let mut row_at: Vec<(u64, u32)> = vec![(0, 0); r_star];
-    let mut top: Vec<String> = vec![String::new(); r_star.min(TOP_SHOWN)];
     let chunks = open_pool()?;
-    let mut chunk = chunks.chunk();
     let has_threshold = chunks.has_threshold();
     let has_weight = chunks.has_weight();
     let mut ahead = ReadAhead::start(chunks, pool_len);
-    let mut chunk_start = 0u64;
-    let mut batch: Vec<UnitResult> = Vec::with_capacity(ROWS_PER_CHUNK);
     let mut failure: Option<Failure> = None;
     let mut selected_seen = 0usize;
-    let mut written_bytes = 0u64;
     let draw = &outcome.draw;
     let shape = RowShape {
         fields: header.len(),
@@ -561,104 +554,147 @@ pub(crate) fn run(
         total,
         q,
     };
-    let mut flush = |chunk: &PoolChunk, chunk_start: u64, batch: &mut Vec<UnitResult>| {
-        let scores = chunk_scores(config, &settings, chunk, has_threshold);
-        let ranks_here: Vec<Option<usize>> = batch
-            .iter()
-            .map(|unit| {
-                unit.selected.then(|| {
-                    selected_seen += 1;
-                    ranks[selected_seen - 1] as usize
-                })
-            })
-            .collect();
-        let pieces: Vec<FormattedRows> = (0..batch.len())
-            .step_by(ROWS_PER_PIECE)
-            .collect::<Vec<_>>()
-            .into_par_iter()
-            .map(|from| {
-                let to = (from + ROWS_PER_PIECE).min(batch.len());
-                format_rows(
-                    &shape,
-                    chunk,
-                    &scores,
-                    &batch[from..to],
-                    &ranks_here[from..to],
-                    from,
-                    &q_values[chunk_start as usize + from..chunk_start as usize + to],
-                    |unit: &UnitResult| {
-                        selection_probability(
-                            unit.first_step,
-                            unit.selected,
-                            unit.conditional_count,
-                            draw,
+    let (settings_ref, q_values_ref) = (&settings, &q_values);
+    let probability_of = |unit: &UnitResult| {
+        selection_probability(unit.first_step, unit.selected, unit.conditional_count, draw)
+    };
+    // Three threads in step: the CSV reader (ReadAhead), the selection's last pass (here),
+    // and the formatting and writing of each finished chunk's rows (below, one chunk
+    // behind; its pieces formatted in parallel).
+    let (candidates, shortlist_rows, row_at, top) = std::thread::scope(|scope| {
+        let (to_writer, finished) = sync_channel::<FinishedChunk>(1);
+        let writer = scope.spawn(move || -> Result<_, Failure> {
+            let (mut candidates, mut shortlist_rows) = (candidates, shortlist_rows);
+            // (offset, length) of each shortlist row in the rows file, by rank.
+            let mut row_at: Vec<(u64, u32)> = vec![(0, 0); r_star];
+            let mut top: Vec<String> = vec![String::new(); r_star.min(TOP_SHOWN)];
+            let mut written_bytes = 0u64;
+            for done in finished {
+                let (chunk, units) = (&done.chunk, &done.units);
+                let scores = chunk_scores(config, settings_ref, chunk, has_threshold);
+                let pieces: Vec<FormattedRows> = (0..units.len())
+                    .step_by(ROWS_PER_PIECE)
+                    .collect::<Vec<_>>()
+                    .into_par_iter()
+                    .map(|from| {
+                        let to = (from + ROWS_PER_PIECE).min(units.len());
+                        let at = done.start as usize;
+                        format_rows(
+                            &shape,
+                            chunk,
+                            &scores,
+                            &units[from..to],
+                            &done.ranks[from..to],
+                            from,
+                            &q_values_ref[at + from..at + to],
+                            probability_of,
                         )
-                    },
-                )
+                    })
+                    .collect::<Result<_, csv::Error>>()
+                    .map_err(|e| Failure::Internal(format!("cannot format candidates.csv: {e}")))?;
+                for piece in pieces {
+                    candidates
+                        .write_all(&piece.candidates)
+                        .map_err(internal("cannot write candidates.csv"))?;
+                    shortlist_rows
+                        .write_all(&piece.shortlist)
+                        .map_err(internal("cannot write shortlist.csv"))?;
+                    for (rank, r, len) in piece.shortlist_rows {
+                        row_at[rank - 1] = (written_bytes, len);
+                        written_bytes += u64::from(len);
+                        if rank <= top.len() {
+                            top[rank - 1] = chunk.ids()[r].clone();
+                        }
+                    }
+                }
+            }
+            Ok((candidates, shortlist_rows, row_at, top))
+        });
+        // Hand a finished chunk to the writer with the shortlist ranks of its units.
+        let mut hand_over = |chunk: PoolChunk, start: u64, units: Vec<UnitResult>| {
+            let ranks_here: Vec<Option<usize>> = units
+                .iter()
+                .map(|unit| {
+                    unit.selected.then(|| {
+                        selected_seen += 1;
+                        ranks[selected_seen - 1] as usize
+                    })
+                })
+                .collect();
+            to_writer
+                .send(FinishedChunk {
+                    chunk,
+                    start,
+                    units,
+                    ranks: ranks_here,
+                })
+                .is_ok()
+        };
+        let writer_stopped = || Failure::Internal("the writer of candidates.csv stopped".into());
+        let mut current: Option<PoolChunk> = None;
+        let (mut chunk_start, mut chunk_len) = (0u64, 0u64);
+        let mut batch: Vec<UnitResult> = Vec::with_capacity(ROWS_PER_CHUNK);
+        let passed = selection
+            .for_each_unit(&mut pool, |j, unit| {
+                if failure.is_some() {
+                    return;
+                }
+                while j >= chunk_start + chunk_len {
+                    if let Some(done) = current.take() {
+                        let units =
+                            std::mem::replace(&mut batch, Vec::with_capacity(ROWS_PER_CHUNK));
+                        if !hand_over(done, chunk_start, units) {
+                            failure = Some(writer_stopped());
+                            return;
+                        }
+                    }
+                    chunk_start += chunk_len;
+                    match ahead.next() {
+                        Ok(Some((next, fraction))) => {
+                            chunk_len = next.len() as u64;
+                            current = Some(next);
+                            if pool_len > 0 {
+                                status.progress("writing candidates.csv", fraction);
+                            }
+                        }
+                        Ok(None) => {
+                            failure = Some(Failure::Input(format!(
+                                "{}: the file changed while it was read (fewer rows on the \
+                                 second read)",
+                                shown.display()
+                            )));
+                            return;
+                        }
+                        Err(e) => {
+                            failure = Some(e);
+                            return;
+                        }
+                    }
+                }
+                batch.push(unit);
             })
-            .collect::<Result<_, csv::Error>>()
-            .map_err(|e| Failure::Internal(format!("cannot format candidates.csv: {e}")))?;
-        for piece in pieces {
-            candidates
-                .write_all(&piece.candidates)
-                .map_err(internal("cannot write candidates.csv"))?;
-            shortlist_rows
-                .write_all(&piece.shortlist)
-                .map_err(internal("cannot write shortlist.csv"))?;
-            for (rank, r, len) in piece.shortlist_rows {
-                row_at[rank - 1] = (written_bytes, len);
-                written_bytes += u64::from(len);
-                if rank <= top.len() {
-                    top[rank - 1] = chunk.ids()[r].clone();
+            .map_err(streaming_failure);
+        if passed.is_ok() && failure.is_none() {
+            if let Some(done) = current.take() {
+                if !hand_over(done, chunk_start, batch) {
+                    failure = Some(writer_stopped());
                 }
             }
         }
-        batch.clear();
-        Ok::<(), Failure>(())
-    };
-    selection
-        .for_each_unit(&mut pool, |j, unit| {
-            if failure.is_some() {
-                return;
-            }
-            while j >= chunk_start + chunk.len() as u64 {
-                if !batch.is_empty() {
-                    if let Err(e) = flush(&chunk, chunk_start, &mut batch) {
-                        failure = Some(e);
-                        return;
-                    }
-                }
-                chunk_start += chunk.len() as u64;
-                match ahead.next() {
-                    Ok(Some((next, fraction))) => {
-                        chunk = next;
-                        if pool_len > 0 {
-                            status.progress("writing candidates.csv", fraction);
-                        }
-                    }
-                    Ok(None) => {
-                        failure = Some(Failure::Input(format!(
-                            "{}: the file changed while it was read (fewer rows on the second \
-                             read)",
-                            shown.display()
-                        )));
-                        return;
-                    }
-                    Err(e) => {
-                        failure = Some(e);
-                        return;
-                    }
-                }
-            }
-            batch.push(unit);
-        })
-        .map_err(streaming_failure)?;
-    if let Some(f) = failure {
-        return Err(f);
-    }
-    if !batch.is_empty() {
-        flush(&chunk, chunk_start, &mut batch)?;
-    }
+        drop(hand_over);
+        // The writer's loop ends when the channel closes.
+        drop(to_writer);
+        let written = writer
+            .join()
+            .map_err(|_| Failure::Internal("the writer of candidates.csv panicked".into()))?;
+        // A failure of the writer explains a failed hand-over: it comes first.
+        let written = written?;
+        passed?;
+        match failure {
+            Some(f) => Err(f),
+            None => Ok(written),
+        }
+    })?;
     let candidates_file = candidates
         .into_inner()
         .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?;
@@ -808,6 +844,15 @@ impl ReadAhead {
             },
         }
     }
+}
+
+/// A chunk whose units the selection has passed, for the writer: its rows, the index of
+/// its first row, and per row the unit's result and shortlist rank.
+struct FinishedChunk {
+    chunk: PoolChunk,
+    start: u64,
+    units: Vec<UnitResult>,
+    ranks: Vec<Option<usize>>,
 }
 
 /// Rows formatted together in pass 4 (a piece of a chunk).

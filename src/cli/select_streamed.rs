@@ -681,7 +681,6 @@ pub(crate) fn run(
                 }
             }
         }
-        drop(hand_over);
         // The writer's loop ends when the channel closes.
         drop(to_writer);
         let written = writer

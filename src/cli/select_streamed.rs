@@ -260,14 +260,14 @@ pub(crate) fn run(
     // the pool file.
     let (pool_path, _stdin_copy) = if read_once_only(&config.pool_path) {
         status.step("copying the pool to a temporary file (it can be read only once)");
-        let mut copy = tempfile::NamedTempFile::new_in(&temp_dir).map_err(internal(
-            "cannot create a temporary file for standard input",
-        ))?;
+        // A registered temporary file: removed when the run ends, also by Ctrl-C.
+        let mut copy = StagedFile::create(&temp_dir, "pool-copy")
+            .map_err(internal("cannot create a temporary file for the pool"))?;
         let copied = if is_stdin(&config.pool_path) {
-            io::copy(&mut io::stdin().lock(), copy.as_file_mut())
+            io::copy(&mut io::stdin().lock(), &mut copy)
         } else {
             std::fs::File::open(&config.pool_path)
-                .and_then(|mut pipe| io::copy(&mut pipe, copy.as_file_mut()))
+                .and_then(|mut pipe| io::copy(&mut pipe, &mut copy))
         };
         copied.map_err(internal("cannot copy the pool to a temporary file"))?;
         (copy.path().to_path_buf(), Some(copy))

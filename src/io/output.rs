@@ -168,6 +168,13 @@ impl StagedFile {
     }
 }
 
+impl StagedFile {
+    /// Where the file is while it is written.
+    pub fn path(&self) -> &Path {
+        &self.temp
+    }
+}
+
 impl Write for StagedFile {
     fn write(&mut self, buf: &[u8]) -> io::Result<usize> {
         self.file.write(buf)

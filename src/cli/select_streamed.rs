@@ -185,6 +185,8 @@ struct Progressing<'s> {
     status: &'s StepStatus,
     pass: usize,
     m: u64,
+    /// What the progress line says; `None`: the selection's pass number.
+    label: Option<&'static str>,
 }
 
 impl PoolSource for Progressing<'_> {
@@ -192,13 +194,14 @@ impl PoolSource for Progressing<'_> {
         self.pass += 1;
         let (status, pass, m) = (self.status, self.pass, self.m.max(1));
         let mut seen = 0u64;
+        let label = match self.label {
+            Some(label) => label.to_string(),
+            None => format!("selection, pass {pass} over the scores"),
+        };
         self.pool.pass(&mut |scores, weights| {
             visit(scores, weights);
             seen += scores.len() as u64;
-            status.progress(
-                &format!("selection, pass {pass} over the pool"),
-                seen as f64 / m as f64,
-            );
+            status.progress(&label, seen as f64 / m as f64);
         })
     }
 }
@@ -386,6 +389,7 @@ pub(crate) fn run(
         status: &status,
         pass: 0,
         m: m as u64,
+        label: None,
     };
     let options = StreamingOptions {
         q,
@@ -414,6 +418,7 @@ pub(crate) fn run(
     let mut side_error: Option<io::Error> = None;
     let mut pair = [0u8; 16];
     status.step("p-values and the shortlist's order");
+    pool.label = Some("p-values and the shortlist's order");
     selection
         .for_each_unit(&mut pool, |j, unit| {
             if side_error.is_some() {
@@ -522,6 +527,7 @@ pub(crate) fn run(
     // Pass 4: the CSV again, in lockstep with the selection's last pass. Each chunk's
     // units are gathered, then its rows formatted in parallel pieces and written in order.
     status.step("writing candidates.csv");
+    pool.label = Some("writing candidates.csv");
     // Written in place under the commit's temporary name: renamed, not copied, at the end
     // (the output folder is created now for that; removed again if the run fails).
     folder.create_now()?;

@@ -120,16 +120,7 @@ pub fn run(command: SelectCommand) -> Result<(), Failure> {
             Some(_) => {}
         }
     }
-    let memory = MemoryUse {
-        mode: "in_memory",
-        memory_budget_bytes: budget,
-        estimated_in_memory_bytes: estimate,
-        pool_reads: None,
-        score_passes: None,
-        ranked_units: None,
-        ranked_units_spilled: None,
-    };
-    run_in_memory(config, memory)
+    run_in_memory(config, MemoryUse::in_memory(budget, estimate))
 }
 
 /// A byte count in words: "1.5 GiB", "200 MiB".

@@ -533,19 +533,19 @@ pub(crate) fn run(
     folder.create_now()?;
     let candidates_file = StagedFile::create(&config.out, "candidates.csv")
         .map_err(internal("cannot create candidates.csv"))?;
-    let mut candidates = BufWriter::with_capacity(1 << 20, candidates_file);
     let shortlist_rows_file =
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
     let shortlist_rows = BufWriter::with_capacity(1 << 20, shortlist_rows_file);
     let header = candidates_header(&first.kept_names);
-    let mut header_bytes = csv::Writer::from_writer(Vec::new());
-    header_bytes
+    // The header through the csv writer; the rows are formatted in pieces (format_rows).
+    let mut with_header =
+        csv::Writer::from_writer(BufWriter::with_capacity(1 << 20, candidates_file));
+    with_header
         .write_record(&header)
-        .and_then(|()| header_bytes.flush().map_err(csv::Error::from))
         .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?;
-    candidates
-        .write_all(header_bytes.get_ref())
-        .map_err(internal("cannot write candidates.csv"))?;
+    let candidates = with_header
+        .into_inner()
+        .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?;
     let chunks = open_pool()?;
     let has_threshold = chunks.has_threshold();
     let has_weight = chunks.has_weight();
@@ -743,12 +743,11 @@ pub(crate) fn run(
     summary.censored_outcome_count = labeled.censored_outcomes;
     summary.memory = Some(crate::report::MemoryUse {
         mode: "streamed",
-        memory_budget_bytes: budget,
-        estimated_in_memory_bytes: estimate,
         pool_reads: Some(2),
         score_passes: Some(counts.passes + 2),
         ranked_units: Some(counts.ranked_units),
         ranked_units_spilled: Some(counts.spilled),
+        ..crate::report::MemoryUse::in_memory(budget, estimate)
     });
     let mut files = OutputSet::new();
     files.add_staged("candidates.csv", candidates_file);
@@ -805,8 +804,6 @@ fn chunk_scores(
     )
 }
 
-/// shortlist.csv: the header, then the rows of `rows` in rank order (`row_at[rank - 1]` is
-/// a row's offset and length).
 /// The pool's chunks read on a second thread, up to two ahead of their use, so that
 /// parsing the CSV overlaps the work done with each chunk.
 struct ReadAhead {
@@ -899,9 +896,10 @@ fn format_rows(
     let mut shortlist_rows = Vec::new();
     let mut cells = RowCells::new(shape.fields);
     let mut short_cells = RowCells::new(shape.fields);
+    let weights = chunk.weight(shape.has_weight);
     for (i, unit) in units.iter().enumerate() {
         let r = offset + i;
-        let w = chunk.weight(shape.has_weight).map_or(1.0, |w| w[r]);
+        let w = weights.map_or(1.0, |w| w[r]);
         let p = unit.numerator / unit.denominator;
         let q_value = q_values[i].0;
         let reason = (!within_level(w, total + w, q)).then(|| unreachable_text(w, total, q));
@@ -951,6 +949,8 @@ fn format_rows(
     })
 }
 
+/// shortlist.csv: the header, then the rows of `rows` in rank order (`row_at[rank - 1]` is
+/// a row's offset and length).
 fn ordered_shortlist(
     dir: &Path,
     rows: &File,

@@ -166,9 +166,7 @@ impl StagedFile {
             owned: true,
         })
     }
-}
 
-impl StagedFile {
     /// Where the file is while it is written.
     pub fn path(&self) -> &Path {
         &self.temp
@@ -316,12 +314,11 @@ pub struct OutputSet {
     files: Vec<(String, Content)>,
 }
 
-/// What a staged file holds: bytes in memory, or a file already written elsewhere (an
-/// unnamed temporary file of the streamed selection, copied by the kernel when staged).
+/// What a staged file holds: bytes in memory, or a file already written in place
+/// ([`StagedFile`], the streamed selection's large outputs).
 #[derive(Debug)]
 enum Content {
     Bytes(Vec<u8>),
-    File(fs::File),
     Staged(StagedFile),
 }
 
@@ -333,12 +330,6 @@ impl OutputSet {
     /// Stage a file. A later `add` with the same name replaces the earlier bytes.
     pub fn add(&mut self, file_name: &str, bytes: Vec<u8>) {
         self.put(file_name, Content::Bytes(bytes));
-    }
-
-    /// Stage a file whose contents were written to `file` (read from its start when the
-    /// set is committed; outputs too large to hold in memory).
-    pub fn add_file(&mut self, file_name: &str, file: fs::File) {
-        self.put(file_name, Content::File(file));
     }
 
     /// Stage a file written in place ([`StagedFile`]): renamed when the set is committed
@@ -409,7 +400,6 @@ impl OutputSet {
             // On error `staged` is dropped, which removes the temporaries written so far.
             let temp = match content {
                 Content::Bytes(bytes) => write_temp(dir, name, WriteFrom::Bytes(bytes))?,
-                Content::File(file) => write_temp(dir, name, WriteFrom::File(file))?,
                 Content::Staged(staged_file) if staged_file.dir == dir => {
                     staged_file.file.sync_all()?;
                     // From here `staged` removes it on a failure.

@@ -252,6 +252,21 @@ pub struct MemoryUse {
     pub ranked_units_spilled: Option<bool>,
 }
 
+impl MemoryUse {
+    /// An in-memory run under `budget`, with what it was estimated to need.
+    pub fn in_memory(budget: u64, estimate: Option<u64>) -> Self {
+        MemoryUse {
+            mode: "in_memory",
+            memory_budget_bytes: budget,
+            estimated_in_memory_bytes: estimate,
+            pool_reads: None,
+            score_passes: None,
+            ranked_units: None,
+            ranked_units_spilled: None,
+        }
+    }
+}
+
 impl SelectSummary {
     /// Append a warning in both forms (`warnings` and `warning_details`).
     pub fn add_warning(&mut self, warning: Warning) {

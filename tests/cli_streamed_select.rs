@@ -101,7 +101,8 @@ fn same_both_ways(
     assert_eq!(summary(&in_memory)["memory"]["mode"], "in_memory");
     assert_eq!(summary(&streamed)["memory"]["mode"], "streamed");
     assert_eq!(summary(&streamed)["memory"]["memory_budget_bytes"], 1024);
-    assert_eq!(summary(&streamed)["memory"]["pool_reads"], 2);
+    // Read once: the outputs are written from the temporary files of the first read.
+    assert_eq!(summary(&streamed)["memory"]["pool_reads"], 1);
     streamed_stable_levels(&streamed);
     // The printed summary says that the pool was streamed and why.
     let text = String::from_utf8_lossy(&b.stdout);

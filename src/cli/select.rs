@@ -26,7 +26,7 @@ pub struct SelectCommand {
     pub selection: SelectArgs,
     /// Memory the run may use, e.g. 1GiB, 512MiB, 4G. When holding the pool in memory
     /// would need more (estimated from the pool file's size: about 200 bytes per row plus
-    /// twice the row's length), the pool is streamed from the file instead: read twice,
+    /// twice the row's length), the pool is streamed from the file instead: read once,
     /// its scores passed a few times through temporary files next to --out, memory about
     /// 16 bytes per pool row, the same outputs. Streaming covers two files with no or
     /// given weights and conditional calibration with homogeneous or deterministic pruning,

@@ -7,14 +7,15 @@
 //!
 //! The passes over the pool:
 //! 1. the CSV, once, with every check of the in-memory reader: each unit's score and weight
-//!    go to an unnamed temporary file (16 bytes), its prediction and score to a second
-//!    one, its id to an 8-byte hash (repeated ids are then located by one more read);
+//!    go to an unnamed temporary file (16 bytes), its prediction, score and weight to a
+//!    second one (24 bytes), its id and kept cells to a third, and its id to an 8-byte hash
+//!    (repeated ids are then located by one more read);
 //! 2. the selection's own passes ([`crate::selection::streaming`]) over the binary file;
 //! 3. one more pass over the binary files collecting the p-values (sorted for the
 //!    q-values), the first-step counts (the draw's consequences) and the selected units'
-//!    predictions (the shortlist's order);
-//! 4. the CSV once more, writing candidates.csv in input order and the shortlist rows,
-//!    which are then put in their order.
+//!    predictions (the shortlist's order), and writing each unit's result (16 bytes);
+//! 4. the temporary files of passes 1 and 3 read back, writing candidates.csv in input
+//!    order and the shortlist rows, which are then put in their order.
 //!
 //! Every number written is computed by the same functions as the in-memory path, so the
 //! files are byte-identical (tests/cli_streamed_select.rs).
@@ -290,6 +291,11 @@ pub(crate) fn run(
     let side_file =
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
     let mut side = BufWriter::with_capacity(1 << 20, side_file);
+    // Each row's id and kept cells, length-prefixed, for writing the outputs without
+    // reading the CSV again.
+    let text_file =
+        tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
+    let mut text = BufWriter::with_capacity(1 << 20, text_file);
     let labeled_ids: HashSet<&str> = labeled.ids.iter().map(String::as_str).collect();
     let first_weight = labeled.weight.as_ref().and_then(|w| w.first().copied());
     let mut first = FirstPass {
@@ -319,7 +325,12 @@ pub(crate) fn run(
             spill.push(scores[r], w).map_err(&write_error)?;
             side.write_all(&chunk.prediction()[r].to_le_bytes())
                 .and_then(|()| side.write_all(&scores[r].to_le_bytes()))
+                .and_then(|()| side.write_all(&w.to_le_bytes()))
                 .map_err(&write_error)?;
+            write_cell(&mut text, id.as_bytes()).map_err(&write_error)?;
+            for cell in chunk.kept_row(r, kept_width) {
+                write_cell(&mut text, cell.as_bytes()).map_err(&write_error)?;
+            }
             hashes.push(pool_id_hash(id));
             first.smallest_weight = first.smallest_weight.min(w);
             first.largest_weight = first.largest_weight.max(w);
@@ -346,6 +357,8 @@ pub(crate) fn run(
         .map(|p| p[0])
         .collect();
     drop(hashes);
+    // Once, or twice when an 8-byte hash repeats (to find the repeated id, if any).
+    let pool_reads = if repeated.is_empty() { 1 } else { 2 };
     if !repeated.is_empty() {
         if let Some(error) = open_pool()?.locate_duplicate(&repeated)? {
             return Err(error.into());
@@ -364,6 +377,9 @@ pub(crate) fn run(
         .finish()
         .map_err(internal("cannot write a temporary file"))?;
     let mut side_file = side
+        .into_inner()
+        .map_err(|e| Failure::Internal(format!("cannot write a temporary file: {e}")))?;
+    let mut text_file = text
         .into_inner()
         .map_err(|e| Failure::Internal(format!("cannot write a temporary file: {e}")))?;
     timer.mark("pass 1: read the pool");
@@ -410,13 +426,17 @@ pub(crate) fn run(
         .rewind()
         .map_err(internal("cannot read a temporary file"))?;
     let mut side = BufReader::with_capacity(1 << 20, side_file);
+    // Each unit's p-value and decisions (`UnitRecord`), read back when writing the outputs.
+    let units_file =
+        tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
+    let mut units_out = BufWriter::with_capacity(1 << 20, units_file);
     // (p_j, j), turned into (q-value, j) in input order.
     let mut q_values: Vec<(f64, usize)> = Vec::with_capacity(m);
     let mut first_counts: Vec<usize> = Vec::with_capacity(counts.first_step_count);
     let mut chosen: Vec<(f64, u64)> = Vec::with_capacity(r_star);
     let mut first_step_floor = 0usize;
     let mut side_error: Option<io::Error> = None;
-    let mut pair = [0u8; 16];
+    let mut record = [0u8; SIDE_BYTES];
     status.step("p-values and the shortlist's order");
     pool.label = Some("p-values and the shortlist's order");
     selection
@@ -424,13 +444,17 @@ pub(crate) fn run(
             if side_error.is_some() {
                 return;
             }
-            if let Err(e) = side.read_exact(&mut pair) {
+            if let Err(e) = side.read_exact(&mut record) {
                 side_error = Some(e);
                 return;
             }
-            let prediction = f64::from_le_bytes(pair[..8].try_into().expect("8 bytes"));
-            let score = f64::from_le_bytes(pair[8..].try_into().expect("8 bytes"));
-            q_values.push((unit.numerator / unit.denominator, j as usize));
+            let [prediction, score, _] = side_numbers(&record);
+            let p = unit.numerator / unit.denominator;
+            if let Err(e) = units_out.write_all(&UnitRecord::of(p, &unit).0) {
+                side_error = Some(e);
+                return;
+            }
+            q_values.push((p, j as usize));
             if unit.first_step {
                 first_counts.push(unit.conditional_count);
                 if lowest_labeled.map_or(true, |lowest| score < lowest) {
@@ -447,7 +471,10 @@ pub(crate) fn run(
             "cannot read a temporary file: {e}"
         )));
     }
-    drop(side);
+    let mut side_file = side.into_inner();
+    let mut units_file = units_out
+        .into_inner()
+        .map_err(|e| Failure::Internal(format!("cannot write a temporary file: {e}")))?;
     bh_adjusted_in_place(&mut q_values, 1.0);
     // The shortlist's order: best predicted first, ties in input order (`shortlist_order`).
     match config.direction {
@@ -524,10 +551,9 @@ pub(crate) fn run(
     };
     outcome.warnings = selection_warnings(&outcome);
 
-    // Pass 4: the CSV again, in lockstep with the selection's last pass. Each chunk's
-    // units are gathered, then its rows formatted in parallel pieces and written in order.
+    // Pass 4: the temporary files of passes 1 and 3 read back in blocks of rows, each
+    // block's rows formatted in parallel pieces and written in order by a second thread.
     status.step("writing candidates.csv");
-    pool.label = Some("writing candidates.csv");
     // Written in place under the commit's temporary name: renamed, not copied, at the end
     // (the output folder is created now for that; removed again if the run fails).
     folder.create_now()?;
@@ -546,58 +572,37 @@ pub(crate) fn run(
     let candidates = with_header
         .into_inner()
         .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?;
-    let chunks = open_pool()?;
-    let has_threshold = chunks.has_threshold();
-    let has_weight = chunks.has_weight();
-    let mut ahead = ReadAhead::start(chunks, pool_len);
-    let mut failure: Option<Failure> = None;
-    let mut selected_seen = 0usize;
+    let read_error = internal("cannot read a temporary file");
+    for file in [&mut side_file, &mut units_file, &mut text_file] {
+        file.rewind().map_err(&read_error)?;
+    }
+    let mut blocks = BlockReader {
+        side: BufReader::with_capacity(1 << 20, side_file),
+        units: BufReader::with_capacity(1 << 20, units_file),
+        text: BufReader::with_capacity(1 << 20, text_file),
+        fields_per_row: 1 + kept_width,
+        ranks: &ranks,
+        selected_seen: 0,
+        start: 0,
+    };
     let draw = &outcome.draw;
     let shape = RowShape {
-        fields: header.len(),
         kept_width,
-        has_weight,
         total,
         q,
     };
-    let (settings_ref, q_values_ref) = (&settings, &q_values);
-    let probability_of = |unit: &UnitResult| {
-        selection_probability(unit.first_step, unit.selected, unit.conditional_count, draw)
+    let probability_of = |first_step: bool, selected: bool, k: usize| {
+        selection_probability(first_step, selected, k, draw)
     };
-    // Three threads in step: the CSV reader (ReadAhead), the selection's last pass (here),
-    // and the formatting and writing of each finished chunk's rows (below, one chunk
-    // behind; its pieces formatted in parallel).
     let (candidates, shortlist_rows, row_at, top) = std::thread::scope(|scope| {
-        let (to_writer, finished) = sync_channel::<FinishedChunk>(1);
+        let (to_writer, formatted) = sync_channel::<(Block, Vec<FormattedRows>)>(1);
         let writer = scope.spawn(move || -> Result<_, Failure> {
             let (mut candidates, mut shortlist_rows) = (candidates, shortlist_rows);
             // (offset, length) of each shortlist row in the rows file, by rank.
             let mut row_at: Vec<(u64, u32)> = vec![(0, 0); r_star];
             let mut top: Vec<String> = vec![String::new(); r_star.min(TOP_SHOWN)];
             let mut written_bytes = 0u64;
-            for done in finished {
-                let (chunk, units) = (&done.chunk, &done.units);
-                let scores = chunk_scores(config, settings_ref, chunk, has_threshold);
-                let pieces: Vec<FormattedRows> = (0..units.len())
-                    .step_by(ROWS_PER_PIECE)
-                    .collect::<Vec<_>>()
-                    .into_par_iter()
-                    .map(|from| {
-                        let to = (from + ROWS_PER_PIECE).min(units.len());
-                        let at = done.start as usize;
-                        format_rows(
-                            &shape,
-                            chunk,
-                            &scores,
-                            &units[from..to],
-                            &done.ranks[from..to],
-                            from,
-                            &q_values_ref[at + from..at + to],
-                            probability_of,
-                        )
-                    })
-                    .collect::<Result<_, csv::Error>>()
-                    .map_err(|e| Failure::Internal(format!("cannot format candidates.csv: {e}")))?;
+            for (block, pieces) in formatted {
                 for piece in pieces {
                     candidates
                         .write_all(&piece.candidates)
@@ -609,84 +614,39 @@ pub(crate) fn run(
                         row_at[rank - 1] = (written_bytes, len);
                         written_bytes += u64::from(len);
                         if rank <= top.len() {
-                            top[rank - 1] = chunk.ids()[r].clone();
+                            top[rank - 1] = String::from_utf8_lossy(block.id(r)).into_owned();
                         }
                     }
                 }
             }
             Ok((candidates, shortlist_rows, row_at, top))
         });
-        // Hand a finished chunk to the writer with the shortlist ranks of its units.
-        let mut hand_over = |chunk: PoolChunk, start: u64, units: Vec<UnitResult>| {
-            let ranks_here: Vec<Option<usize>> = units
-                .iter()
-                .map(|unit| {
-                    unit.selected.then(|| {
-                        selected_seen += 1;
-                        ranks[selected_seen - 1] as usize
+        let mut done = 0usize;
+        let formatting = (|| -> Result<(), Failure> {
+            while done < m {
+                let block = blocks
+                    .next(ROWS_PER_CHUNK.min(m - done))
+                    .map_err(&read_error)?;
+                done += block.len;
+                let pieces = (0..block.len)
+                    .step_by(ROWS_PER_PIECE)
+                    .collect::<Vec<_>>()
+                    .into_par_iter()
+                    .map(|from| {
+                        let to = (from + ROWS_PER_PIECE).min(block.len);
+                        format_rows(&shape, &block, from..to, &q_values, probability_of)
                     })
-                })
-                .collect();
-            to_writer
-                .send(FinishedChunk {
-                    chunk,
-                    start,
-                    units,
-                    ranks: ranks_here,
-                })
-                .is_ok()
-        };
-        let writer_stopped = || Failure::Internal("the writer of candidates.csv stopped".into());
-        let mut current: Option<PoolChunk> = None;
-        let (mut chunk_start, mut chunk_len) = (0u64, 0u64);
-        let mut batch: Vec<UnitResult> = Vec::with_capacity(ROWS_PER_CHUNK);
-        let passed = selection
-            .for_each_unit(&mut pool, |j, unit| {
-                if failure.is_some() {
-                    return;
+                    .collect::<Result<Vec<_>, Failure>>()?;
+                if to_writer.send((block, pieces)).is_err() {
+                    // The writer stopped: its error is reported below.
+                    break;
                 }
-                while j >= chunk_start + chunk_len {
-                    if let Some(done) = current.take() {
-                        let units =
-                            std::mem::replace(&mut batch, Vec::with_capacity(ROWS_PER_CHUNK));
-                        if !hand_over(done, chunk_start, units) {
-                            failure = Some(writer_stopped());
-                            return;
-                        }
-                    }
-                    chunk_start += chunk_len;
-                    match ahead.next() {
-                        Ok(Some((next, fraction))) => {
-                            chunk_len = next.len() as u64;
-                            current = Some(next);
-                            if pool_len > 0 {
-                                status.progress("writing candidates.csv", fraction);
-                            }
-                        }
-                        Ok(None) => {
-                            failure = Some(Failure::Input(format!(
-                                "{}: the file changed while it was read (fewer rows on the \
-                                 second read)",
-                                shown.display()
-                            )));
-                            return;
-                        }
-                        Err(e) => {
-                            failure = Some(e);
-                            return;
-                        }
-                    }
-                }
-                batch.push(unit);
-            })
-            .map_err(streaming_failure);
-        if passed.is_ok() && failure.is_none() {
-            if let Some(done) = current.take() {
-                if !hand_over(done, chunk_start, batch) {
-                    failure = Some(writer_stopped());
+                if m > 0 {
+                    status.progress("writing candidates.csv", done as f64 / m as f64);
                 }
             }
-        }
+            Ok(())
+        })();
         // The writer's loop ends when the channel closes.
         drop(to_writer);
         let written = writer
@@ -694,11 +654,8 @@ pub(crate) fn run(
             .map_err(|_| Failure::Internal("the writer of candidates.csv panicked".into()))?;
         // A failure of the writer explains a failed hand-over: it comes first.
         let written = written?;
-        passed?;
-        match failure {
-            Some(f) => Err(f),
-            None => Ok(written),
-        }
+        formatting?;
+        Ok::<_, Failure>(written)
     })?;
     let candidates_file = candidates
         .into_inner()
@@ -743,8 +700,8 @@ pub(crate) fn run(
     summary.censored_outcome_count = labeled.censored_outcomes;
     summary.memory = Some(crate::report::MemoryUse {
         mode: "streamed",
-        pool_reads: Some(2),
-        score_passes: Some(counts.passes + 2),
+        pool_reads: Some(pool_reads),
+        score_passes: Some(counts.passes + 1),
         ranked_units: Some(counts.ranked_units),
         ranked_units_spilled: Some(counts.spilled),
         ..crate::report::MemoryUse::in_memory(budget, estimate)
@@ -762,9 +719,10 @@ pub(crate) fn run(
     if !config.quiet {
         let mut text = text_summary_of_top(&summary, &top);
         text.push_str(&format!(
-            "streamed selection ({why}): the pool was read twice and its scores passed {} \
+            "streamed selection ({why}): the pool was read {} and its scores passed {} \
              times; {} units needed their exact rank{}\n",
-            counts.passes + 2,
+            if pool_reads == 1 { "once" } else { "twice" },
+            counts.passes + 1,
             counts.ranked_units,
             if counts.spilled {
                 ", held in a temporary file"
@@ -848,103 +806,222 @@ impl ReadAhead {
     }
 }
 
-/// A chunk whose units the selection has passed, for the writer: its rows, the index of
-/// its first row, and per row the unit's result and shortlist rank.
-struct FinishedChunk {
-    chunk: PoolChunk,
-    start: u64,
-    units: Vec<UnitResult>,
+/// Bytes per row in the pass-1 side file: prediction, score and weight (f64, little
+/// endian).
+const SIDE_BYTES: usize = 24;
+
+/// The prediction, score and weight of a side-file record.
+fn side_numbers(record: &[u8]) -> [f64; 3] {
+    let at = |i: usize| f64::from_le_bytes(record[8 * i..8 * i + 8].try_into().expect("8 bytes"));
+    [at(0), at(1), at(2)]
+}
+
+/// Append one cell to the pass-1 text file: its length (u32, little endian), its bytes.
+fn write_cell(out: &mut impl Write, cell: &[u8]) -> io::Result<()> {
+    let len = u32::try_from(cell.len()).map_err(|_| io::Error::other("a cell of 4 GiB or more"))?;
+    out.write_all(&len.to_le_bytes())?;
+    out.write_all(cell)
+}
+
+/// A unit's pass-3 result as 16 bytes: its p-value (f64) and a u64 holding `K_j` with the
+/// first-step flag in bit 63 and the selected flag in bit 62.
+struct UnitRecord([u8; 16]);
+
+const FIRST_STEP_BIT: u64 = 1 << 63;
+const SELECTED_BIT: u64 = 1 << 62;
+
+impl UnitRecord {
+    fn of(p: f64, unit: &UnitResult) -> Self {
+        let k = unit.conditional_count as u64;
+        assert!(k < SELECTED_BIT, "K_j below 2^62");
+        let flags = if unit.first_step { FIRST_STEP_BIT } else { 0 }
+            | if unit.selected { SELECTED_BIT } else { 0 };
+        let mut bytes = [0u8; 16];
+        bytes[..8].copy_from_slice(&p.to_le_bytes());
+        bytes[8..].copy_from_slice(&(k | flags).to_le_bytes());
+        UnitRecord(bytes)
+    }
+
+    /// (p-value, first step, selected, `K_j`) of a record's bytes.
+    fn read(bytes: &[u8]) -> (f64, bool, bool, usize) {
+        let p = f64::from_le_bytes(bytes[..8].try_into().expect("8 bytes"));
+        let packed = u64::from_le_bytes(bytes[8..16].try_into().expect("8 bytes"));
+        let k = packed & !(FIRST_STEP_BIT | SELECTED_BIT);
+        (
+            p,
+            packed & FIRST_STEP_BIT != 0,
+            packed & SELECTED_BIT != 0,
+            k as usize,
+        )
+    }
+}
+
+/// Consecutive rows read back from the temporary files for pass 4.
+struct Block {
+    /// Index of the block's first row in the pool.
+    start: usize,
+    len: usize,
+    /// `SIDE_BYTES` per row.
+    side: Vec<u8>,
+    /// 16 bytes per row ([`UnitRecord`]).
+    units: Vec<u8>,
+    /// The rows' ids and kept cells, one after the other in one buffer ...
+    text: Vec<u8>,
+    /// ... field `f` of the block being `text[ends[f]..ends[f + 1]]` (`fields_per_row`
+    /// fields per row, the id first).
+    ends: Vec<usize>,
+    fields_per_row: usize,
+    /// The shortlist rank of each row (selected rows only).
     ranks: Vec<Option<usize>>,
 }
 
-/// Rows formatted together in pass 4 (a piece of a chunk).
+impl Block {
+    fn field(&self, f: usize) -> &[u8] {
+        &self.text[self.ends[f]..self.ends[f + 1]]
+    }
+
+    fn id(&self, r: usize) -> &[u8] {
+        self.field(r * self.fields_per_row)
+    }
+}
+
+/// The readers of pass 4 over the temporary files, in step.
+struct BlockReader<'r> {
+    side: BufReader<File>,
+    units: BufReader<File>,
+    text: BufReader<File>,
+    fields_per_row: usize,
+    /// Rank of each selected unit in input order.
+    ranks: &'r [u32],
+    selected_seen: usize,
+    start: usize,
+}
+
+impl BlockReader<'_> {
+    /// The next `len` rows.
+    fn next(&mut self, len: usize) -> io::Result<Block> {
+        let mut side = vec![0u8; len * SIDE_BYTES];
+        self.side.read_exact(&mut side)?;
+        let mut units = vec![0u8; len * 16];
+        self.units.read_exact(&mut units)?;
+        let fields = len * self.fields_per_row;
+        let mut ends = Vec::with_capacity(fields + 1);
+        ends.push(0);
+        let mut text = Vec::with_capacity(fields * 12);
+        let mut prefix = [0u8; 4];
+        for _ in 0..fields {
+            self.text.read_exact(&mut prefix)?;
+            let cell = u32::from_le_bytes(prefix) as usize;
+            let at = text.len();
+            text.resize(at + cell, 0);
+            self.text.read_exact(&mut text[at..])?;
+            ends.push(text.len());
+        }
+        let ranks = units
+            .chunks_exact(16)
+            .map(|record| {
+                UnitRecord::read(record).2.then(|| {
+                    self.selected_seen += 1;
+                    self.ranks[self.selected_seen - 1] as usize
+                })
+            })
+            .collect();
+        let block = Block {
+            start: self.start,
+            len,
+            side,
+            units,
+            text,
+            ends,
+            fields_per_row: self.fields_per_row,
+            ranks,
+        };
+        self.start += len;
+        Ok(block)
+    }
+}
+
+/// Rows formatted together in pass 4 (a piece of a block).
 const ROWS_PER_PIECE: usize = 1 << 13;
 
 /// What every candidates.csv row of a run shares.
 struct RowShape {
-    fields: usize,
     kept_width: usize,
-    has_weight: bool,
     total: f64,
     q: f64,
 }
 
 /// One piece's formatted rows: candidates.csv bytes, shortlist rows' bytes, and for each
-/// shortlist row its rank, its row in the chunk and its length.
+/// shortlist row its rank, its row in the block and its length.
 struct FormattedRows {
     candidates: Vec<u8>,
     shortlist: Vec<u8>,
     shortlist_rows: Vec<(usize, usize, u32)>,
 }
 
-/// Format the rows `offset..offset + units.len()` of a chunk (`q_values`, `ranks` and
-/// `units` for those rows), as the in-memory path's candidates.csv and shortlist.csv rows.
-#[allow(clippy::too_many_arguments)]
+/// Format the rows `rows` of a block (`q_values` is the whole pool's), as the in-memory
+/// path's candidates.csv and shortlist.csv rows.
 fn format_rows(
     shape: &RowShape,
-    chunk: &PoolChunk,
-    scores: &[f64],
-    units: &[UnitResult],
-    ranks: &[Option<usize>],
-    offset: usize,
+    block: &Block,
+    rows: std::ops::Range<usize>,
     q_values: &[(f64, usize)],
-    probability_of: impl Fn(&UnitResult) -> f64,
-) -> Result<FormattedRows, csv::Error> {
+    probability_of: impl Fn(bool, bool, usize) -> f64,
+) -> Result<FormattedRows, Failure> {
     let (total, q) = (shape.total, shape.q);
-    let mut candidates = csv::Writer::from_writer(Vec::with_capacity(units.len() * 96));
-    let mut shortlist = csv::Writer::from_writer(Vec::new());
+    let mut candidates = Vec::with_capacity(rows.len() * 112);
+    let mut shortlist = Vec::new();
     let mut shortlist_rows = Vec::new();
-    let mut cells = RowCells::new(shape.fields);
-    let mut short_cells = RowCells::new(shape.fields);
-    let weights = chunk.weight(shape.has_weight);
-    for (i, unit) in units.iter().enumerate() {
-        let r = offset + i;
-        let w = weights.map_or(1.0, |w| w[r]);
-        let p = unit.numerator / unit.denominator;
-        let q_value = q_values[i].0;
+    let mut cells = RowCells::new();
+    let mut kept: Vec<&[u8]> = Vec::with_capacity(shape.kept_width);
+    for r in rows {
+        let [prediction, score, w] = side_numbers(&block.side[r * SIDE_BYTES..]);
+        let (p, first_step, selected, k) = UnitRecord::read(&block.units[r * 16..]);
+        let q_value = q_values[block.start + r].0;
         let reason = (!within_level(w, total + w, q)).then(|| unreachable_text(w, total, q));
-        let probability = probability_of(unit);
-        let id = &chunk.ids()[r];
-        let kept = chunk.kept_row(r, shape.kept_width);
+        let probability = probability_of(first_step, selected, k);
+        let id = std::str::from_utf8(block.id(r)).map_err(|_| {
+            Failure::Internal("a temporary file holds an id that is not UTF-8".into())
+        })?;
+        kept.clear();
+        let first_field = r * block.fields_per_row;
+        kept.extend((1..block.fields_per_row).map(|c| block.field(first_field + c)));
         let row = CandidateRow {
             id,
-            score: scores[r],
+            score,
             weight: w,
             p_value: p,
-            selected: unit.selected,
-            conditional: Some((unit.first_step, unit.conditional_count)),
+            selected,
+            conditional: Some((first_step, k)),
             unreachable_reason: reason.as_deref(),
             selection_probability: probability,
             q_value,
             q_value_by: None,
             unreliable: false,
-            prediction: chunk.prediction()[r],
-            shortlist_rank: ranks[i],
-            kept,
+            prediction,
+            shortlist_rank: block.ranks[r],
+            kept: &kept,
         };
-        candidates.write_byte_record(cells.candidate(&row))?;
-        if let Some(rank) = ranks[i] {
+        cells.candidate_line(&row, &mut candidates);
+        if let Some(rank) = block.ranks[r] {
             let row = ShortlistRow {
                 rank,
                 id,
-                prediction: chunk.prediction()[r],
+                prediction,
                 p_value: p,
                 q_value,
                 selection_probability: probability,
                 weight: w,
-                kept,
+                kept: &kept,
             };
-            let before = shortlist.get_ref().len();
-            shortlist.write_byte_record(short_cells.shortlisted(&row))?;
-            shortlist.flush()?;
-            shortlist_rows.push((rank, r, (shortlist.get_ref().len() - before) as u32));
+            let before = shortlist.len();
+            cells.shortlist_line(&row, &mut shortlist);
+            shortlist_rows.push((rank, r, (shortlist.len() - before) as u32));
         }
     }
-    candidates.flush()?;
-    shortlist.flush()?;
     Ok(FormattedRows {
-        candidates: candidates.into_inner().map_err(|e| e.into_error())?,
-        shortlist: shortlist.into_inner().map_err(|e| e.into_error())?,
+        candidates,
+        shortlist,
         shortlist_rows,
     })
 }

@@ -565,7 +565,8 @@ pub fn candidates_csv(
     {
         rank[j] = r + 1;
     }
-    let mut cells = RowCells::new(header.len());
+    let mut out = writer.into_inner().expect("flush to memory");
+    let mut cells = RowCells::new();
     for (j, id) in ids.iter().enumerate() {
         let reason = outcome.unreachable[j].then(|| unselectable_reason(outcome, j));
         let row = CandidateRow {
@@ -587,11 +588,9 @@ pub fn candidates_csv(
             shortlist_rank: (rank[j] > 0).then_some(rank[j]),
             kept: pool.kept.row(j),
         };
-        writer
-            .write_byte_record(cells.candidate(&row))
-            .expect("write to memory");
+        cells.candidate_line(&row, &mut out);
     }
-    writer.into_inner().expect("flush to memory")
+    out
 }
 
 /// The header of `candidates.csv`: [`CANDIDATES_COLUMNS`], then the kept columns.
@@ -609,8 +608,9 @@ pub fn shortlist_header(kept_names: &[String]) -> Vec<String> {
 }
 
 /// One unit's row of `candidates.csv` (the in-memory and the streamed selection write
-/// rows through the same [`RowCells::candidate`]).
-pub struct CandidateRow<'a> {
+/// rows through the same [`RowCells::candidate`]). `kept` holds the `--keep-columns`
+/// cells: owned strings in memory, slices of one buffer in the streamed selection.
+pub struct CandidateRow<'a, K: AsRef<[u8]> = String> {
     pub id: &'a str,
     pub score: f64,
     pub weight: f64,
@@ -626,11 +626,11 @@ pub struct CandidateRow<'a> {
     pub unreliable: bool,
     pub prediction: f64,
     pub shortlist_rank: Option<usize>,
-    pub kept: &'a [String],
+    pub kept: &'a [K],
 }
 
 /// One unit's row of `shortlist.csv`.
-pub struct ShortlistRow<'a> {
+pub struct ShortlistRow<'a, K: AsRef<[u8]> = String> {
     pub rank: usize,
     pub id: &'a str,
     pub prediction: f64,
@@ -638,78 +638,165 @@ pub struct ShortlistRow<'a> {
     pub q_value: f64,
     pub selection_probability: f64,
     pub weight: f64,
-    pub kept: &'a [String],
+    pub kept: &'a [K],
 }
 
-/// A reused record and number buffers for writing output rows.
+/// Where a row's fields go: a line of CSV text ([`CsvLine`]) or, in the tests, a
+/// `csv::ByteRecord` for the csv crate's writer to compare with.
+pub trait FieldSink {
+    /// A field that may need quoting (ids, kept cells, prose).
+    fn text(&mut self, field: &[u8]);
+    /// A field that never needs quoting (numbers, `true`/`false`, empty).
+    fn plain(&mut self, field: &[u8]) {
+        self.text(field);
+    }
+}
+
+impl FieldSink for csv::ByteRecord {
+    fn text(&mut self, field: &[u8]) {
+        self.push_field(field);
+    }
+}
+
+/// One CSV line appended to a buffer, fields quoted exactly where the csv crate's default
+/// writer quotes them (a field holding `,`, `"`, `\r` or `\n` goes in double quotes, its
+/// quotes doubled), ended by `\n`. Numbers, most of a row, skip the scan for those bytes.
+pub struct CsvLine<'a> {
+    out: &'a mut Vec<u8>,
+    started: bool,
+}
+
+impl<'a> CsvLine<'a> {
+    /// A line to append to `out`.
+    pub fn new(out: &'a mut Vec<u8>) -> Self {
+        CsvLine {
+            out,
+            started: false,
+        }
+    }
+
+    /// End the line.
+    pub fn finish(self) {
+        self.out.push(b'\n');
+    }
+
+    fn separate(&mut self) {
+        if self.started {
+            self.out.push(b',');
+        }
+        self.started = true;
+    }
+}
+
+impl FieldSink for CsvLine<'_> {
+    fn text(&mut self, field: &[u8]) {
+        self.separate();
+        if field
+            .iter()
+            .any(|&b| matches!(b, b',' | b'"' | b'\r' | b'\n'))
+        {
+            self.out.push(b'"');
+            for &b in field {
+                if b == b'"' {
+                    self.out.push(b'"');
+                }
+                self.out.push(b);
+            }
+            self.out.push(b'"');
+        } else {
+            self.out.extend_from_slice(field);
+        }
+    }
+
+    fn plain(&mut self, field: &[u8]) {
+        self.separate();
+        self.out.extend_from_slice(field);
+    }
+}
+
+/// Number buffers reused for writing output rows.
 pub struct RowCells {
-    record: csv::ByteRecord,
     floats: ryu::Buffer,
     integers: itoa::Buffer,
 }
 
+impl Default for RowCells {
+    fn default() -> Self {
+        RowCells::new()
+    }
+}
+
 impl RowCells {
-    /// Buffers for rows of `fields` fields.
-    pub fn new(fields: usize) -> Self {
+    pub fn new() -> Self {
         RowCells {
-            record: csv::ByteRecord::with_capacity(160, fields),
             floats: ryu::Buffer::new(),
             integers: itoa::Buffer::new(),
         }
     }
 
-    /// The record of a `candidates.csv` row (floats in their shortest round-trip form).
-    pub fn candidate(&mut self, row: &CandidateRow<'_>) -> &csv::ByteRecord {
-        let RowCells {
-            record,
-            floats,
-            integers,
-        } = self;
-        record.clear();
-        record.push_field(row.id.as_bytes());
-        for value in [row.score, row.weight, row.p_value] {
-            record.push_field(floats.format(value).as_bytes());
-        }
-        record.push_field(bool_text(row.selected));
-        match row.conditional {
-            Some((first, count)) => {
-                record.push_field(bool_text(first));
-                record.push_field(integers.format(count).as_bytes());
-            }
-            None => {
-                record.push_field(b"");
-                record.push_field(b"");
-            }
-        }
-        record.push_field(row.unreachable_reason.unwrap_or("").as_bytes());
-        record.push_field(floats.format(row.selection_probability).as_bytes());
-        record.push_field(floats.format(row.q_value).as_bytes());
-        match row.q_value_by {
-            Some(by) => record.push_field(floats.format(by).as_bytes()),
-            None => record.push_field(b""),
-        }
-        record.push_field(bool_text(row.unreliable));
-        record.push_field(floats.format(row.prediction).as_bytes());
-        match row.shortlist_rank {
-            Some(rank) => record.push_field(integers.format(rank).as_bytes()),
-            None => record.push_field(b""),
-        }
-        for cell in row.kept {
-            record.push_field(cell.as_bytes());
-        }
-        record
+    /// Append a `candidates.csv` row to `out` (floats in their shortest round-trip form).
+    pub fn candidate_line<K: AsRef<[u8]>>(&mut self, row: &CandidateRow<'_, K>, out: &mut Vec<u8>) {
+        let mut line = CsvLine::new(out);
+        self.candidate(row, &mut line);
+        line.finish();
     }
 
-    /// The record of a `shortlist.csv` row.
-    pub fn shortlisted(&mut self, row: &ShortlistRow<'_>) -> &csv::ByteRecord {
-        let RowCells {
-            record,
-            floats,
-            integers,
-        } = self;
-        record.clear();
-        record.push_field(integers.format(row.rank).as_bytes());
-        record.push_field(row.id.as_bytes());
+    /// Append a `shortlist.csv` row to `out`.
+    pub fn shortlist_line<K: AsRef<[u8]>>(&mut self, row: &ShortlistRow<'_, K>, out: &mut Vec<u8>) {
+        let mut line = CsvLine::new(out);
+        self.shortlisted(row, &mut line);
+        line.finish();
+    }
+
+    /// The fields of a `candidates.csv` row, in [`CANDIDATES_COLUMNS`] order.
+    pub fn candidate<K: AsRef<[u8]>>(
+        &mut self,
+        row: &CandidateRow<'_, K>,
+        sink: &mut impl FieldSink,
+    ) {
+        let RowCells { floats, integers } = self;
+        sink.text(row.id.as_bytes());
+        for value in [row.score, row.weight, row.p_value] {
+            sink.plain(floats.format(value).as_bytes());
+        }
+        sink.plain(bool_text(row.selected));
+        match row.conditional {
+            Some((first, count)) => {
+                sink.plain(bool_text(first));
+                sink.plain(integers.format(count).as_bytes());
+            }
+            None => {
+                sink.plain(b"");
+                sink.plain(b"");
+            }
+        }
+        sink.text(row.unreachable_reason.unwrap_or("").as_bytes());
+        sink.plain(floats.format(row.selection_probability).as_bytes());
+        sink.plain(floats.format(row.q_value).as_bytes());
+        match row.q_value_by {
+            Some(by) => sink.plain(floats.format(by).as_bytes()),
+            None => sink.plain(b""),
+        }
+        sink.plain(bool_text(row.unreliable));
+        sink.plain(floats.format(row.prediction).as_bytes());
+        match row.shortlist_rank {
+            Some(rank) => sink.plain(integers.format(rank).as_bytes()),
+            None => sink.plain(b""),
+        }
+        for cell in row.kept {
+            sink.text(cell.as_ref());
+        }
+    }
+
+    /// The fields of a `shortlist.csv` row, in [`SHORTLIST_COLUMNS`] order.
+    pub fn shortlisted<K: AsRef<[u8]>>(
+        &mut self,
+        row: &ShortlistRow<'_, K>,
+        sink: &mut impl FieldSink,
+    ) {
+        let RowCells { floats, integers } = self;
+        sink.plain(integers.format(row.rank).as_bytes());
+        sink.text(row.id.as_bytes());
         for value in [
             row.prediction,
             row.p_value,
@@ -717,12 +804,11 @@ impl RowCells {
             row.selection_probability,
             row.weight,
         ] {
-            record.push_field(floats.format(value).as_bytes());
+            sink.plain(floats.format(value).as_bytes());
         }
         for cell in row.kept {
-            record.push_field(cell.as_bytes());
+            sink.text(cell.as_ref());
         }
-        record
     }
 }
 
@@ -751,7 +837,8 @@ pub fn shortlist_csv(pool: &PoolColumns<'_>, outcome: &SelectionOutcome) -> Vec<
     let mut writer = csv::Writer::from_writer(Vec::with_capacity(64 + order.len() * 96));
     let header = shortlist_header(&pool.kept.names);
     writer.write_record(&header).expect("write to memory");
-    let mut cells = RowCells::new(header.len());
+    let mut out = writer.into_inner().expect("flush to memory");
+    let mut cells = RowCells::new();
     for (r, &j) in order.iter().enumerate() {
         let row = ShortlistRow {
             rank: r + 1,
@@ -763,11 +850,9 @@ pub fn shortlist_csv(pool: &PoolColumns<'_>, outcome: &SelectionOutcome) -> Vec<
             weight: outcome.weights[j],
             kept: pool.kept.row(j),
         };
-        writer
-            .write_byte_record(cells.shortlisted(&row))
-            .expect("write to memory");
+        cells.shortlist_line(&row, &mut out);
     }
-    writer.into_inner().expect("flush to memory")
+    out
 }
 
 fn bool_text(value: bool) -> &'static [u8] {
@@ -1453,6 +1538,85 @@ mod tests {
     use super::*;
     use crate::conformal::score::Thresholds;
     use crate::selection::pipeline::{run_selection, LabeledInput, PoolInput, SelectOptions};
+
+    /// The rows written directly are byte for byte what the csv crate's writer (the
+    /// reference, crates.io `csv` 1.x with its default quoting) writes for the same fields,
+    /// on ids and kept cells holding every byte the quoting rule looks at.
+    #[test]
+    fn rows_written_directly_match_the_csv_writer() {
+        let awkward = [
+            "",
+            "plain",
+            "a,b",
+            "say \"hi\"",
+            "\"",
+            "line\nbreak",
+            "cr\rhere",
+            "\r\n",
+            " lead",
+            "tail ",
+            "tab\there",
+            "#hash",
+            "'single'",
+            "é ü 数",
+            ",,,",
+            "\"\"",
+            "x\"",
+            "semi;colon",
+        ];
+        let mut cells = RowCells::new();
+        let mut direct = Vec::new();
+        // Flexible: the two kinds of rows differ in length; quoting is the default's.
+        let mut reference = csv::WriterBuilder::new()
+            .flexible(true)
+            .from_writer(Vec::new());
+        for (i, id) in awkward.iter().enumerate() {
+            let kept: Vec<String> = vec![
+                awkward[(i + 3) % awkward.len()].to_string(),
+                awkward[(i * 7 + 1) % awkward.len()].to_string(),
+            ];
+            let reason = (i % 2 == 0).then_some(awkward[(i + 5) % awkward.len()]);
+            let row = CandidateRow {
+                id,
+                score: -1.5e-300 * i as f64,
+                weight: 1.0 / (i as f64 + 0.5),
+                p_value: f64::from(u8::try_from(i).unwrap()) / 17.0,
+                selected: i % 3 == 0,
+                conditional: (i % 4 != 0).then_some((i % 5 == 0, i * 1001)),
+                unreachable_reason: reason,
+                selection_probability: if i == 1 { f64::NAN } else { 0.25 },
+                q_value: if i == 2 { f64::INFINITY } else { 1e21 },
+                q_value_by: (i % 2 == 1).then_some(0.3),
+                unreliable: i == 4,
+                prediction: -0.0,
+                shortlist_rank: (i % 3 == 0).then_some(i + 1),
+                kept: &kept,
+            };
+            cells.candidate_line(&row, &mut direct);
+            let mut record = csv::ByteRecord::new();
+            cells.candidate(&row, &mut record);
+            reference.write_byte_record(&record).unwrap();
+            let short = ShortlistRow {
+                rank: i + 1,
+                id,
+                prediction: 7.25,
+                p_value: 1e-7,
+                q_value: 0.5,
+                selection_probability: 1.0,
+                weight: 2.0,
+                kept: &kept,
+            };
+            cells.shortlist_line(&short, &mut direct);
+            let mut record = csv::ByteRecord::new();
+            cells.shortlisted(&short, &mut record);
+            reference.write_byte_record(&record).unwrap();
+        }
+        let reference = reference.into_inner().unwrap();
+        assert_eq!(
+            String::from_utf8(direct).unwrap(),
+            String::from_utf8(reference).unwrap()
+        );
+    }
 
     #[test]
     fn shown_numbers_are_short() {

@@ -23,6 +23,7 @@
 use rayon::prelude::*;
 use std::collections::HashSet;
 use std::fs::File;
+use std::hash::BuildHasherDefault;
 use std::io::{self, BufReader, BufWriter, Read, Write};
 use std::path::{Path, PathBuf};
 use std::sync::mpsc::{sync_channel, Receiver};
@@ -207,6 +208,27 @@ impl PoolSource for Progressing<'_> {
     }
 }
 
+/// A hasher for keys that are already 64-bit hashes ([`pool_id_hash`]): the key itself.
+#[derive(Default)]
+struct Prehashed(u64);
+
+impl std::hash::Hasher for Prehashed {
+    fn finish(&self) -> u64 {
+        self.0
+    }
+
+    fn write(&mut self, bytes: &[u8]) {
+        // Only u64 keys are hashed; anything else is folded in, not dropped.
+        for &b in bytes {
+            self.0 = self.0.rotate_left(8) ^ u64::from(b);
+        }
+    }
+
+    fn write_u64(&mut self, value: u64) {
+        self.0 = value;
+    }
+}
+
 /// What pass 1 learns besides the spilled pool.
 struct FirstPass {
     m: usize,
@@ -297,6 +319,10 @@ pub(crate) fn run(
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
     let mut text = BufWriter::with_capacity(1 << 20, text_file);
     let labeled_ids: HashSet<&str> = labeled.ids.iter().map(String::as_str).collect();
+    // The labeled ids' hashes: a pool id is looked up by the hash computed anyway for the
+    // duplicate check, and compared as a string only when that hash is a labeled one's.
+    let labeled_hashes: HashSet<u64, BuildHasherDefault<Prehashed>> =
+        labeled.ids.iter().map(|id| pool_id_hash(id)).collect();
     let first_weight = labeled.weight.as_ref().and_then(|w| w.first().copied());
     let mut first = FirstPass {
         m: 0,
@@ -331,13 +357,14 @@ pub(crate) fn run(
             for cell in chunk.kept_row(r, kept_width) {
                 write_cell(&mut text, cell.as_bytes()).map_err(&write_error)?;
             }
-            hashes.push(pool_id_hash(id));
+            let hash = pool_id_hash(id);
+            hashes.push(hash);
             first.smallest_weight = first.smallest_weight.min(w);
             first.largest_weight = first.largest_weight.max(w);
             if weights.is_some() && Some(w) != first_weight.or(weights.map(|w| w[0])) {
                 first.weights_vary = true;
             }
-            if labeled_ids.contains(id.as_str()) {
+            if labeled_hashes.contains(&hash) && labeled_ids.contains(id.as_str()) {
                 if first.shared_first.len() < super::common::SHARED_IDS_LISTED {
                     first.shared_first.push(id.clone());
                 }
@@ -350,7 +377,7 @@ pub(crate) fn run(
         }
     }
     let m = first.m;
-    hashes.sort_unstable();
+    hashes.par_sort_unstable();
     let repeated: HashSet<u64> = hashes
         .windows(2)
         .filter(|p| p[0] == p[1])
@@ -475,7 +502,9 @@ pub(crate) fn run(
     let mut units_file = units_out
         .into_inner()
         .map_err(|e| Failure::Internal(format!("cannot write a temporary file: {e}")))?;
+    timer.mark("pass 3: the selection's last pass");
     bh_adjusted_in_place(&mut q_values, 1.0);
+    timer.mark("pass 3: q-values");
     // The shortlist's order: best predicted first, ties in input order (`shortlist_order`).
     match config.direction {
         crate::conformal::score::Direction::Above => {
@@ -499,7 +528,7 @@ pub(crate) fn run(
         Pruning::Deterministic => fixed_selection(&vec![true; r_star]),
         _ => homogeneous_draw(&vec![true; first_counts.len()], &first_counts),
     };
-    timer.mark("pass 3: p-values and order");
+    timer.mark("pass 3: the shortlist's order");
 
     // The summary, as the in-memory path builds it.
     let mut res = resolution::resolution_of_counts(
@@ -762,27 +791,47 @@ fn chunk_scores(
     )
 }
 
-/// The pool's chunks read on a second thread, up to two ahead of their use, so that
-/// parsing the CSV overlaps the work done with each chunk.
+/// The pool's chunks read on a second thread, ahead of their use, so that parsing the CSV
+/// overlaps the work done with each chunk. A plain file without quotes is parsed in
+/// parallel blocks ([`PoolChunks::in_parallel`]); other input by the serial reader.
 struct ReadAhead {
     chunks: Receiver<Result<(PoolChunk, f64), InputError>>,
     reader: Option<std::thread::JoinHandle<()>>,
 }
 
 impl ReadAhead {
-    fn start(mut chunks: PoolChunks, pool_len: u64) -> Self {
-        let (sender, receiver) = sync_channel(2);
-        let reader = std::thread::spawn(move || loop {
-            let mut chunk = chunks.chunk();
-            let next = match chunks.next_chunk(&mut chunk, ROWS_PER_CHUNK) {
-                Ok(true) => Ok((chunk, chunks.fraction_read(pool_len))),
-                Ok(false) => return,
-                Err(e) => Err(e),
-            };
-            let last = next.is_err();
-            if sender.send(next).is_err() || last {
-                return;
-            }
+    fn start(chunks: PoolChunks, pool_len: u64) -> Self {
+        let (sender, receiver) = sync_channel(8);
+        let reader = std::thread::spawn(move || match chunks.in_parallel() {
+            Ok(mut blocks) => loop {
+                match blocks.next_chunks() {
+                    Ok(round) if round.is_empty() => return,
+                    Ok(round) => {
+                        let fraction = blocks.fraction_read(pool_len);
+                        for chunk in round {
+                            if sender.send(Ok((chunk, fraction))).is_err() {
+                                return;
+                            }
+                        }
+                    }
+                    Err(e) => {
+                        let _ = sender.send(Err(e));
+                        return;
+                    }
+                }
+            },
+            Err(mut chunks) => loop {
+                let mut chunk = chunks.chunk();
+                let next = match chunks.next_chunk(&mut chunk, ROWS_PER_CHUNK) {
+                    Ok(true) => Ok((chunk, chunks.fraction_read(pool_len))),
+                    Ok(false) => return,
+                    Err(e) => Err(e),
+                };
+                let last = next.is_err();
+                if sender.send(next).is_err() || last {
+                    return;
+                }
+            },
         });
         ReadAhead {
             chunks: receiver,

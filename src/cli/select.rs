@@ -4,9 +4,11 @@
 //! `candidates.csv` and `summary.json` to the output folder and print a short summary.
 
 use crate::io::OutputSet;
+use crate::report::summary::{
+    candidates_csv_in_order, shortlist_csv_in_order, text_summary_in_order,
+};
 use crate::report::{
-    add_shift, candidates_csv, select_summary, shift_section, shortlist_csv, text_summary,
-    MemoryUse, PoolColumns, RunInputs,
+    add_shift, select_summary, shift_section, shortlist_order, MemoryUse, PoolColumns, RunInputs,
 };
 use crate::selection::pipeline::{run_selection, LabeledInput, PoolInput, SelectError};
 use crate::shift::weighting::WeightSource;
@@ -210,12 +212,22 @@ fn run_in_memory(config: SelectConfig, memory: MemoryUse) -> Result<(), Failure>
         summary.censored_outcome_count,
     ) = outcome_counts;
     let columns = PoolColumns::of(pool, config.direction);
+    // The shortlist's order, sorted once for candidates.csv, shortlist.csv and the summary.
+    let order = shortlist_order(columns.prediction, &outcome.selected, columns.direction);
     let mut files = OutputSet::new();
     files.add(
         "candidates.csv",
-        candidates_csv(&columns, &outcome, summary.unreliable_weights.is_some()),
+        candidates_csv_in_order(
+            &columns,
+            &outcome,
+            summary.unreliable_weights.is_some(),
+            &order,
+        ),
     );
-    files.add("shortlist.csv", shortlist_csv(&columns, &outcome));
+    files.add(
+        "shortlist.csv",
+        shortlist_csv_in_order(&columns, &outcome, &order),
+    );
     let json = serde_json::to_vec_pretty(&summary)
         .map_err(|e| Failure::Internal(format!("cannot serialize the summary: {e}")))?;
     files.add("summary.json", json);
@@ -239,7 +251,7 @@ fn run_in_memory(config: SelectConfig, memory: MemoryUse) -> Result<(), Failure>
     timer.mark("write outputs");
     drop(status);
     if !config.quiet {
-        let mut text = text_summary(&summary, &columns, &outcome);
+        let mut text = text_summary_in_order(&summary, &columns, &order);
         text.push_str(&format!(
             "wrote {} (the {} selected units, best first), {} and {}\n",
             config.out.join("shortlist.csv").display(),

@@ -552,22 +552,70 @@ pub fn candidates_csv(
     outcome: &SelectionOutcome,
     unreliable: bool,
 ) -> Vec<u8> {
+    let order = shortlist_order(pool.prediction, &outcome.selected, pool.direction);
+    candidates_csv_in_order(pool, outcome, unreliable, &order)
+}
+
+/// Rows of `candidates.csv` formatted together, in parallel with other pieces.
+const ROWS_PER_PIECE: usize = 1 << 13;
+
+/// [`candidates_csv`] given the shortlist's order ([`shortlist_order`]), for a caller that
+/// needs the order for more than one output. Rows are formatted in parallel pieces.
+///
+/// # Panics
+/// If the pool columns and the outcome differ in length.
+pub fn candidates_csv_in_order(
+    pool: &PoolColumns<'_>,
+    outcome: &SelectionOutcome,
+    unreliable: bool,
+    order: &[usize],
+) -> Vec<u8> {
+    use rayon::prelude::*;
     let ids = pool.ids;
     assert_eq!(ids.len(), outcome.scores.len(), "ids / outcome length");
     assert_eq!(ids.len(), pool.prediction.len(), "ids / predictions length");
-    let mut writer = csv::Writer::from_writer(Vec::with_capacity(ids.len() * 96));
+    let mut writer = csv::Writer::from_writer(Vec::new());
     let header = candidates_header(&pool.kept.names);
     writer.write_record(&header).expect("write to memory");
     let mut rank = vec![0usize; ids.len()];
-    for (r, &j) in shortlist_order(pool.prediction, &outcome.selected, pool.direction)
-        .iter()
-        .enumerate()
-    {
+    for (r, &j) in order.iter().enumerate() {
         rank[j] = r + 1;
     }
     let mut out = writer.into_inner().expect("flush to memory");
+    out.reserve(ids.len() * 112);
+    // A group of pieces at a time, so that the formatted pieces waiting to be appended
+    // stay a few megabytes (not a second copy of the file).
+    let starts: Vec<usize> = (0..ids.len()).step_by(ROWS_PER_PIECE).collect();
+    for group in starts.chunks(PIECES_PER_GROUP) {
+        let pieces: Vec<Vec<u8>> = group
+            .par_iter()
+            .map(|&from| {
+                let to = (from + ROWS_PER_PIECE).min(ids.len());
+                candidate_lines(pool, outcome, unreliable, &rank, from..to)
+            })
+            .collect();
+        for piece in pieces {
+            out.extend_from_slice(&piece);
+        }
+    }
+    out
+}
+
+/// Pieces formatted in parallel before they are appended.
+const PIECES_PER_GROUP: usize = 16;
+
+/// The candidates.csv lines of rows `rows` (`rank[j]`: shortlist rank, 0 if not selected).
+fn candidate_lines(
+    pool: &PoolColumns<'_>,
+    outcome: &SelectionOutcome,
+    unreliable: bool,
+    rank: &[usize],
+    rows: std::ops::Range<usize>,
+) -> Vec<u8> {
+    let mut out = Vec::with_capacity(rows.len() * 112);
     let mut cells = RowCells::new();
-    for (j, id) in ids.iter().enumerate() {
+    for j in rows {
+        let id = &pool.ids[j];
         let reason = outcome.unreachable[j].then(|| unselectable_reason(outcome, j));
         let row = CandidateRow {
             id,
@@ -832,8 +880,20 @@ pub const SHORTLIST_COLUMNS: [&str; 7] = [
 /// # Panics
 /// If the pool columns and the outcome differ in length.
 pub fn shortlist_csv(pool: &PoolColumns<'_>, outcome: &SelectionOutcome) -> Vec<u8> {
-    assert_eq!(pool.ids.len(), outcome.scores.len(), "ids / outcome length");
     let order = shortlist_order(pool.prediction, &outcome.selected, pool.direction);
+    shortlist_csv_in_order(pool, outcome, &order)
+}
+
+/// [`shortlist_csv`] given the shortlist's order ([`shortlist_order`]).
+///
+/// # Panics
+/// If the pool columns and the outcome differ in length.
+pub fn shortlist_csv_in_order(
+    pool: &PoolColumns<'_>,
+    outcome: &SelectionOutcome,
+    order: &[usize],
+) -> Vec<u8> {
+    assert_eq!(pool.ids.len(), outcome.scores.len(), "ids / outcome length");
     let mut writer = csv::Writer::from_writer(Vec::with_capacity(64 + order.len() * 96));
     let header = shortlist_header(&pool.kept.names);
     writer.write_record(&header).expect("write to memory");
@@ -872,15 +932,21 @@ pub fn text_summary(
     pool: &PoolColumns<'_>,
     outcome: &SelectionOutcome,
 ) -> String {
-    let top: Vec<&str> = if summary.selected_count > 0 {
-        shortlist_order(pool.prediction, &outcome.selected, pool.direction)
-            .iter()
-            .take(TOP_SHOWN)
-            .map(|&j| pool.ids[j].as_str())
-            .collect()
-    } else {
-        Vec::new()
-    };
+    let order = shortlist_order(pool.prediction, &outcome.selected, pool.direction);
+    text_summary_in_order(summary, pool, &order)
+}
+
+/// [`text_summary`] given the shortlist's order ([`shortlist_order`]).
+pub fn text_summary_in_order(
+    summary: &SelectSummary,
+    pool: &PoolColumns<'_>,
+    order: &[usize],
+) -> String {
+    let top: Vec<&str> = order
+        .iter()
+        .take(TOP_SHOWN)
+        .map(|&j| pool.ids[j].as_str())
+        .collect();
     summary_text(summary, &top)
 }
 

@@ -615,11 +615,7 @@ pub(crate) fn run(
         start: 0,
     };
     let draw = &outcome.draw;
-    let shape = RowShape {
-        kept_width,
-        total,
-        q,
-    };
+    let shape = RowShape { total, q };
     let probability_of = |first_step: bool, selected: bool, k: usize| {
         selection_probability(first_step, selected, k, draw)
     };
@@ -670,9 +666,7 @@ pub(crate) fn run(
                     // The writer stopped: its error is reported below.
                     break;
                 }
-                if m > 0 {
-                    status.progress("writing candidates.csv", done as f64 / m as f64);
-                }
+                status.progress("writing candidates.csv", done as f64 / m as f64);
             }
             Ok(())
         })();
@@ -872,9 +866,12 @@ fn write_cell(out: &mut impl Write, cell: &[u8]) -> io::Result<()> {
     out.write_all(cell)
 }
 
+/// Bytes of a [`UnitRecord`].
+const UNIT_BYTES: usize = 16;
+
 /// A unit's pass-3 result as 16 bytes: its p-value (f64) and a u64 holding `K_j` with the
 /// first-step flag in bit 63 and the selected flag in bit 62.
-struct UnitRecord([u8; 16]);
+struct UnitRecord([u8; UNIT_BYTES]);
 
 const FIRST_STEP_BIT: u64 = 1 << 63;
 const SELECTED_BIT: u64 = 1 << 62;
@@ -885,7 +882,7 @@ impl UnitRecord {
         assert!(k < SELECTED_BIT, "K_j below 2^62");
         let flags = if unit.first_step { FIRST_STEP_BIT } else { 0 }
             | if unit.selected { SELECTED_BIT } else { 0 };
-        let mut bytes = [0u8; 16];
+        let mut bytes = [0u8; UNIT_BYTES];
         bytes[..8].copy_from_slice(&p.to_le_bytes());
         bytes[8..].copy_from_slice(&(k | flags).to_le_bytes());
         UnitRecord(bytes)
@@ -912,7 +909,7 @@ struct Block {
     len: usize,
     /// `SIDE_BYTES` per row.
     side: Vec<u8>,
-    /// 16 bytes per row ([`UnitRecord`]).
+    /// `UNIT_BYTES` per row ([`UnitRecord`]).
     units: Vec<u8>,
     /// The rows' ids and kept cells, one after the other in one buffer ...
     text: Vec<u8>,
@@ -951,7 +948,7 @@ impl BlockReader<'_> {
     fn next(&mut self, len: usize) -> io::Result<Block> {
         let mut side = vec![0u8; len * SIDE_BYTES];
         self.side.read_exact(&mut side)?;
-        let mut units = vec![0u8; len * 16];
+        let mut units = vec![0u8; len * UNIT_BYTES];
         self.units.read_exact(&mut units)?;
         let fields = len * self.fields_per_row;
         let mut ends = Vec::with_capacity(fields + 1);
@@ -967,7 +964,7 @@ impl BlockReader<'_> {
             ends.push(text.len());
         }
         let ranks = units
-            .chunks_exact(16)
+            .chunks_exact(UNIT_BYTES)
             .map(|record| {
                 UnitRecord::read(record).2.then(|| {
                     self.selected_seen += 1;
@@ -995,7 +992,6 @@ const ROWS_PER_PIECE: usize = 1 << 13;
 
 /// What every candidates.csv row of a run shares.
 struct RowShape {
-    kept_width: usize,
     total: f64,
     q: f64,
 }
@@ -1022,10 +1018,10 @@ fn format_rows(
     let mut shortlist = Vec::new();
     let mut shortlist_rows = Vec::new();
     let mut cells = RowCells::new();
-    let mut kept: Vec<&[u8]> = Vec::with_capacity(shape.kept_width);
+    let mut kept: Vec<&[u8]> = Vec::with_capacity(block.fields_per_row - 1);
     for r in rows {
         let [prediction, score, w] = side_numbers(&block.side[r * SIDE_BYTES..]);
-        let (p, first_step, selected, k) = UnitRecord::read(&block.units[r * 16..]);
+        let (p, first_step, selected, k) = UnitRecord::read(&block.units[r * UNIT_BYTES..]);
         let q_value = q_values[block.start + r].0;
         let reason = (!within_level(w, total + w, q)).then(|| unreachable_text(w, total, q));
         let probability = probability_of(first_step, selected, k);

@@ -5,8 +5,8 @@
 //! collected by the caller ([`id_hash`]) and located by a second read
 //! ([`PoolChunks::locate_duplicate`]).
 //!
-//! A plain text file with `\n` line ends and no `"` or `\r` byte after its header (the
-//! usual export of predictions) can be read faster ([`PoolChunks::in_parallel`]): its bytes
+//! A plain text file with `\n` line ends and no `"` or `\r` byte (the usual export of
+//! predictions) can be read faster ([`PoolChunks::in_parallel`]): its bytes
 //! are cut into blocks at line ends and the blocks parsed on all cores, each by a csv reader
 //! of its own and the same `Rows::push`. Without quotes a line end always ends a record, so
 //! the rows are the same; any error sends the read back to the serial reader, from the
@@ -264,12 +264,9 @@ pub struct ParallelChunks {
 impl PoolChunks {
     /// The parallel reader of this file, when the file allows it: a regular, uncompressed
     /// file whose header ends with `\n` and whose bytes hold no `"` and no `\r` (one scan
-    /// of the file). Otherwise `Err(self)`, to read serially.
+    /// of the file). Otherwise this serial reader back, boxed, to read with.
     pub fn in_parallel(self) -> Result<ParallelChunks, Box<PoolChunks>> {
-        if !matches!(
-            self.reader.get_ref().format(),
-            super::super::source::Format::Text
-        ) {
+        if self.reader.get_ref().format() != crate::io::source::Format::Text {
             return Err(Box::new(self));
         }
         let Some((file, data_start)) = plain_data_start(&self.path) else {

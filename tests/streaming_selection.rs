@@ -17,8 +17,8 @@ use weighbridge::selection::conditional::conditional_calibration;
 use weighbridge::selection::pruning::Pruning;
 use weighbridge::selection::resolution::at_floor;
 use weighbridge::selection::streaming::{
-    run_streaming, PoolSource, SlicePool, SpillWriter, StreamingOptions, StreamingSummary,
-    UnitResult,
+    run_streaming_visiting, EarlyUnit, PoolSource, SlicePool, SpillWriter, StreamingOptions,
+    StreamingSummary, UnitResult,
 };
 
 const PRUNINGS: [Pruning; 3] = [
@@ -92,7 +92,67 @@ fn check(
     } else {
         &mut slices
     };
-    let mut streamed = run_streaming(&cal, pool, options).unwrap();
+    let mut early: Vec<EarlyUnit> = Vec::with_capacity(m);
+    let mut streamed = run_streaming_visiting(&cal, pool, options, |j, unit| {
+        assert_eq!(
+            j as usize,
+            early.len(),
+            "{label}: input order of the decide pass"
+        );
+        early.push(unit);
+    })
+    .unwrap();
+    // The decide pass's results, settled by the ranked units, without the last pass.
+    let mut settled: Vec<Option<(usize, bool)>> = early
+        .iter()
+        .map(|e| e.conditional_count.map(|k| (k, e.first_step)))
+        .collect();
+    let mut last_ranked = None;
+    let mut ranked_seen = 0usize;
+    streamed
+        .for_each_ranked(|j, k, first_step| {
+            assert!(
+                last_ranked < Some(j),
+                "{label}: ranked units in input order"
+            );
+            last_ranked = Some(j);
+            let slot = &mut settled[j as usize];
+            assert_eq!(
+                *slot, None,
+                "{label} unit {j}: ranked but K_j already known"
+            );
+            *slot = Some((k, first_step));
+            ranked_seen += 1;
+        })
+        .unwrap();
+    assert_eq!(
+        ranked_seen, streamed.counts.ranked_units,
+        "{label}: ranked units"
+    );
+    if pruning != Pruning::Heterogeneous {
+        assert!(streamed.shared_xi().is_some(), "{label}");
+    }
+    for (j, (e, s)) in early.iter().zip(&settled).enumerate() {
+        let (k, first_step) = s.unwrap_or_else(|| panic!("{label} unit {j}: K_j never settled"));
+        assert_eq!(
+            k, memory.conditional_count[j],
+            "{label} unit {j}: early K_j"
+        );
+        assert_eq!(
+            first_step, memory.first_step[j],
+            "{label} unit {j}: early first step"
+        );
+        assert_eq!(
+            streamed.selects(first_step, k, streamed.shared_xi().unwrap_or(e.xi)),
+            memory.selected[j],
+            "{label} unit {j}: selected from the early results"
+        );
+        assert_eq!(e.numerator, conservative.numerator[j], "{label} unit {j}");
+        assert_eq!(
+            e.denominator, conservative.denominator[j],
+            "{label} unit {j}"
+        );
+    }
     let mut units: Vec<UnitResult> = Vec::with_capacity(m);
     streamed
         .for_each_unit(pool, |j, unit| {

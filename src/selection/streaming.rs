@@ -256,6 +256,24 @@ pub struct UnitResult {
     pub denominator: f64,
 }
 
+/// One unit's results as the decide pass knows them, handed out in input order by
+/// [`run_streaming_visiting`]: before `r*` and before the exact ranks of the units that
+/// need one. [`StreamingSelection::for_each_ranked`] settles those, and
+/// [`StreamingSelection::selects`] gives the selection, so a caller can have every unit's
+/// results without the last pass of [`StreamingSelection::for_each_unit`].
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct EarlyUnit {
+    /// `K_j`; `None` when it needs the unit's exact rank among the pool scores.
+    pub conditional_count: Option<usize>,
+    /// `p_j <= q K_j / m` (false while `K_j` is not known).
+    pub first_step: bool,
+    /// Conservative p-value `p_j` as numerator over denominator.
+    pub numerator: f64,
+    pub denominator: f64,
+    /// The unit's pruning draw `xi_j` (the shared one unless pruning is heterogeneous).
+    pub xi: f64,
+}
+
 /// How the `K_j` search of one unit ends without the pool's ranks.
 #[derive(Clone, Copy, Debug, PartialEq)]
 enum Decision {
@@ -570,8 +588,11 @@ struct Queued {
     xi: f64,
 }
 
-/// `(input index, K_j)` of ranked units, in input order: in memory up to a budget, then in
-/// a temporary file.
+/// The first-step flag of a ranked unit, in the top bit of its stored `K_j`.
+const RANKED_FIRST_STEP: u64 = 1 << 63;
+
+/// `(input index, K_j)` of ranked units, in input order (the first-step flag in
+/// [`RANKED_FIRST_STEP`]): in memory up to a budget, then in a temporary file.
 struct RankedCounts {
     memory: Vec<(u64, u64)>,
     limit: usize,
@@ -748,6 +769,20 @@ pub fn run_streaming<'c>(
     pool: &mut dyn PoolSource,
     options: StreamingOptions,
 ) -> Result<StreamingSelection<'c>, StreamingError> {
+    run_streaming_visiting(calibration, pool, options, |_, _| {})
+}
+
+/// [`run_streaming`], handing every unit's [`EarlyUnit`] to `visit` in input order during
+/// the decide pass.
+///
+/// # Errors
+/// As [`run_streaming`].
+pub fn run_streaming_visiting<'c>(
+    calibration: &'c CalibrationSet,
+    pool: &mut dyn PoolSource,
+    options: StreamingOptions,
+    mut visit: impl FnMut(u64, EarlyUnit),
+) -> Result<StreamingSelection<'c>, StreamingError> {
     let q = check_fdr(options.q)?;
     let labeled = calibration.sorted_scores();
     let n = labeled.len();
@@ -852,11 +887,20 @@ pub fn run_streaming<'c>(
             if s < lowest {
                 floor_count += 1;
             }
+            let mut early = EarlyUnit {
+                conditional_count: None,
+                first_step: false,
+                numerator: at_or_below + w,
+                denominator: total + w,
+                xi: xi_j,
+            };
             match d.decision {
                 Decision::Known(k) => {
+                    early.conditional_count = Some(k);
                     if within_level(at_or_below + w, total + w, bh_level(q, k, m)) {
                         first_step_count += 1;
                         keys.add(k, xi_j);
+                        early.first_step = true;
                     }
                 }
                 Decision::NeedsRank { entry, fallback } => {
@@ -874,6 +918,7 @@ pub fn run_streaming<'c>(
                     }
                 }
             }
+            visit(j, early);
         }
         index += scores.len() as u64;
     })?;
@@ -888,15 +933,19 @@ pub fn run_streaming<'c>(
             for (unit, &rank) in queue.iter().zip(&ranks) {
                 let k = summary.resolve(unit.weight, unit.entry as usize, rank, unit.fallback);
                 let at_or_below = calibration.weight_at_or_below(unit.score);
-                if within_level(
+                let first_step = within_level(
                     at_or_below + unit.weight,
                     total + unit.weight,
                     bh_level(q, k, m),
-                ) {
+                );
+                if first_step {
                     first_step_count += 1;
                     keys.add(k, unit.xi);
                 }
-                ranked.push(unit.index, k as u64)?;
+                ranked.push(
+                    unit.index,
+                    k as u64 | if first_step { RANKED_FIRST_STEP } else { 0 },
+                )?;
             }
             ranked_units += queue.len();
             queue.clear();
@@ -1168,10 +1217,50 @@ fn fine_ranks(
     Ok(fine)
 }
 
+/// Pruning keeps a first-step unit when its key `xi_j K_j` is at most `r*`.
+#[inline]
+fn in_shortlist(first_step: bool, k: usize, xi: f64, r_star: usize) -> bool {
+    first_step && xi * k as f64 <= r_star as f64
+}
+
 impl StreamingSelection<'_> {
     /// `r*`.
     pub fn r_star(&self) -> usize {
         self.r_star
+    }
+
+    /// The units whose `K_j` needed their exact rank, in input order: `(j, K_j, first
+    /// step)`. With the [`EarlyUnit`]s of [`run_streaming_visiting`] this completes every
+    /// unit's `K_j` and first step without another pass over the pool.
+    ///
+    /// # Errors
+    /// Reading the temporary file of ranked units fails.
+    pub fn for_each_ranked(
+        &mut self,
+        mut visit: impl FnMut(u64, usize, bool),
+    ) -> Result<(), StreamingError> {
+        let mut ranked = self.ranked.reader()?;
+        while let Some((j, packed)) = ranked.next_pair()? {
+            visit(
+                j,
+                (packed & !RANKED_FIRST_STEP) as usize,
+                packed & RANKED_FIRST_STEP != 0,
+            );
+        }
+        Ok(())
+    }
+
+    /// Whether a unit with first step `first_step`, `K_j = k` and pruning draw `xi` (its
+    /// [`EarlyUnit::xi`]) is in the shortlist: the rule of [`Self::for_each_unit`].
+    #[inline]
+    pub fn selects(&self, first_step: bool, k: usize, xi: f64) -> bool {
+        in_shortlist(first_step, k, xi, self.r_star)
+    }
+
+    /// The pruning draw every unit shares (homogeneous and deterministic pruning, where it
+    /// is 1); `None` under heterogeneous pruning, whose draws are per unit.
+    pub fn shared_xi(&self) -> Option<f64> {
+        (self.options.pruning != Pruning::Heterogeneous).then_some(self.xi)
     }
 
     /// The last pass: every unit's results in input order.
@@ -1209,6 +1298,7 @@ impl StreamingSelection<'_> {
                     Decision::Known(k) => k,
                     Decision::NeedsRank { .. } => match next_ranked {
                         Some((at, k)) if at == j => {
+                            let k = k & !RANKED_FIRST_STEP;
                             next_ranked = match ranked.next_pair() {
                                 Ok(next) => next,
                                 Err(e) => {
@@ -1227,7 +1317,7 @@ impl StreamingSelection<'_> {
                 let numerator = d.at_or_below + w;
                 let denominator = total + w;
                 let first_step = within_level(numerator, denominator, bh_level(q, k, m));
-                let selected = first_step && xi_j * k as f64 <= r_star as f64;
+                let selected = in_shortlist(first_step, k, xi_j, r_star);
                 let p = match options.bh_pvalues {
                     PValueKind::Conservative => numerator / denominator,
                     PValueKind::Randomized => {

@@ -48,8 +48,8 @@ use crate::selection::pipeline::{
 use crate::selection::pruning::Pruning;
 use crate::selection::resolution;
 use crate::selection::streaming::{
-    run_streaming, ChunkVisitor, PoolSource, SpillWriter, SpilledPool, StreamingError,
-    StreamingOptions, UnitResult,
+    run_streaming_visiting, ChunkVisitor, PoolSource, SpillWriter, SpilledPool, StreamingError,
+    StreamingOptions,
 };
 use crate::shift::weighting::WeightSource;
 
@@ -187,8 +187,6 @@ struct Progressing<'s> {
     status: &'s StepStatus,
     pass: usize,
     m: u64,
-    /// What the progress line says; `None`: the selection's pass number.
-    label: Option<&'static str>,
 }
 
 impl PoolSource for Progressing<'_> {
@@ -196,10 +194,7 @@ impl PoolSource for Progressing<'_> {
         self.pass += 1;
         let (status, pass, m) = (self.status, self.pass, self.m.max(1));
         let mut seen = 0u64;
-        let label = match self.label {
-            Some(label) => label.to_string(),
-            None => format!("selection, pass {pass} over the scores"),
-        };
+        let label = format!("selection, pass {pass} over the scores");
         self.pool.pass(&mut |scores, weights| {
             visit(scores, weights);
             seen += scores.len() as u64;
@@ -432,7 +427,6 @@ pub(crate) fn run(
         status: &status,
         pass: 0,
         m: m as u64,
-        label: None,
     };
     let options = StreamingOptions {
         q,
@@ -441,68 +435,122 @@ pub(crate) fn run(
         bh_pvalues: settings.pvalues,
         memory_budget: (budget / 2) as usize,
     };
-    let mut selection =
-        run_streaming(&calibration, &mut pool, options).map_err(streaming_failure)?;
-    let counts = selection.counts.clone();
-    let r_star = selection.r_star();
-    timer.mark("pass 2: streamed selection");
-
-    // Pass 3: p-values, first-step counts, selected predictions.
+    // Each unit's p-value and decisions (`UnitRecord`), written during the selection's
+    // decide pass and read back when writing the outputs: the units whose K_j needs their
+    // exact rank are settled in place afterwards, and the selection itself (which needs
+    // r*) is decided when the outputs are written.
     use std::io::Seek;
     side_file
         .rewind()
         .map_err(internal("cannot read a temporary file"))?;
     let mut side = BufReader::with_capacity(1 << 20, side_file);
-    // Each unit's p-value and decisions (`UnitRecord`), read back when writing the outputs.
     let units_file =
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
     let mut units_out = BufWriter::with_capacity(1 << 20, units_file);
     // (p_j, j), turned into (q-value, j) in input order.
     let mut q_values: Vec<(f64, usize)> = Vec::with_capacity(m);
-    let mut first_counts: Vec<usize> = Vec::with_capacity(counts.first_step_count);
-    let mut chosen: Vec<(f64, u64)> = Vec::with_capacity(r_star);
+    // The first-step units' K_j, and (prediction, j) in the same order.
+    let mut first_counts: Vec<usize> = Vec::new();
+    let mut first_units: Vec<(f64, u64)> = Vec::new();
     let mut first_step_floor = 0usize;
+    let at_floor = |score: f64| lowest_labeled.map_or(true, |lowest| score < lowest);
     let mut side_error: Option<io::Error> = None;
     let mut record = [0u8; SIDE_BYTES];
-    status.step("p-values and the shortlist's order");
-    pool.label = Some("p-values and the shortlist's order");
-    selection
-        .for_each_unit(&mut pool, |j, unit| {
-            if side_error.is_some() {
-                return;
-            }
-            if let Err(e) = side.read_exact(&mut record) {
-                side_error = Some(e);
-                return;
-            }
-            let [prediction, score, _] = side_numbers(&record);
-            let p = unit.numerator / unit.denominator;
-            if let Err(e) = units_out.write_all(&UnitRecord::of(p, &unit).0) {
-                side_error = Some(e);
-                return;
-            }
-            q_values.push((p, j as usize));
-            if unit.first_step {
-                first_counts.push(unit.conditional_count);
-                if lowest_labeled.map_or(true, |lowest| score < lowest) {
-                    first_step_floor += 1;
-                }
-            }
-            if unit.selected {
-                chosen.push((prediction, j));
-            }
-        })
-        .map_err(streaming_failure)?;
+    let mut selection = run_streaming_visiting(&calibration, &mut pool, options, |j, unit| {
+        if side_error.is_some() {
+            return;
+        }
+        if let Err(e) = side.read_exact(&mut record) {
+            side_error = Some(e);
+            return;
+        }
+        let [prediction, score, _] = side_numbers(&record);
+        let p = unit.numerator / unit.denominator;
+        let k = unit.conditional_count.unwrap_or(0);
+        if let Err(e) = units_out.write_all(&UnitRecord::of(p, k, unit.first_step).0) {
+            side_error = Some(e);
+            return;
+        }
+        q_values.push((p, j as usize));
+        if unit.first_step {
+            first_counts.push(k);
+            first_units.push((prediction, j));
+            first_step_floor += usize::from(at_floor(score));
+        }
+    })
+    .map_err(streaming_failure)?;
     if let Some(e) = side_error {
         return Err(Failure::Internal(format!(
-            "cannot read a temporary file: {e}"
+            "cannot read or write a temporary file: {e}"
         )));
     }
-    let mut side_file = side.into_inner();
-    let mut units_file = units_out
+    let counts = selection.counts.clone();
+    let r_star = selection.r_star();
+    let side_file = side.into_inner();
+    let units_file = units_out
         .into_inner()
         .map_err(|e| Failure::Internal(format!("cannot write a temporary file: {e}")))?;
-    timer.mark("pass 3: the selection's last pass");
+    timer.mark("pass 2: streamed selection");
+
+    // The units that needed their exact rank: their records settled in place.
+    status.step("p-values and the shortlist's order");
+    {
+        use std::os::unix::fs::FileExt;
+        let mut io_error: Option<io::Error> = None;
+        selection
+            .for_each_ranked(|j, k, first_step| {
+                if io_error.is_some() {
+                    return;
+                }
+                let settled = units_file
+                    .write_all_at(
+                        &UnitRecord::packed(k, first_step).to_le_bytes(),
+                        j * UNIT_BYTES as u64 + 8,
+                    )
+                    .and_then(|()| {
+                        if first_step {
+                            side_file.read_exact_at(&mut record, j * SIDE_BYTES as u64)
+                        } else {
+                            Ok(())
+                        }
+                    });
+                if let Err(e) = settled {
+                    io_error = Some(e);
+                    return;
+                }
+                if first_step {
+                    let [prediction, score, _] = side_numbers(&record);
+                    first_counts.push(k);
+                    first_units.push((prediction, j));
+                    first_step_floor += usize::from(at_floor(score));
+                }
+            })
+            .map_err(streaming_failure)?;
+        if let Some(e) = io_error {
+            return Err(Failure::Internal(format!(
+                "cannot read or write a temporary file: {e}"
+            )));
+        }
+    }
+    let shared_xi = selection.shared_xi().ok_or_else(|| {
+        Failure::Internal("the streamed select runs with a shared pruning draw only".into())
+    })?;
+    let selects = |first_step: bool, k: usize| selection.selects(first_step, k, shared_xi);
+    let mut chosen: Vec<(f64, u64)> = first_units
+        .iter()
+        .zip(&first_counts)
+        .filter(|&(_, &k)| selects(true, k))
+        .map(|(&unit, _)| unit)
+        .collect();
+    drop(first_units);
+    if chosen.len() != r_star {
+        return Err(Failure::Internal(format!(
+            "{} units selected where pruning kept {r_star}",
+            chosen.len()
+        )));
+    }
+    let (mut side_file, mut units_file) = (side_file, units_file);
+    timer.mark("pass 3: the ranked units and the selection");
     bh_adjusted_in_place(&mut q_values, 1.0);
     timer.mark("pass 3: q-values");
     // The shortlist's order: best predicted first, ties in input order (`shortlist_order`).
@@ -611,6 +659,7 @@ pub(crate) fn run(
         text: BufReader::with_capacity(1 << 20, text_file),
         fields_per_row: 1 + kept_width,
         ranks: &ranks,
+        selects: &selects,
         selected_seen: 0,
         start: 0,
     };
@@ -874,30 +923,30 @@ const UNIT_BYTES: usize = 16;
 struct UnitRecord([u8; UNIT_BYTES]);
 
 const FIRST_STEP_BIT: u64 = 1 << 63;
-const SELECTED_BIT: u64 = 1 << 62;
 
 impl UnitRecord {
-    fn of(p: f64, unit: &UnitResult) -> Self {
-        let k = unit.conditional_count as u64;
-        assert!(k < SELECTED_BIT, "K_j below 2^62");
-        let flags = if unit.first_step { FIRST_STEP_BIT } else { 0 }
-            | if unit.selected { SELECTED_BIT } else { 0 };
+    fn of(p: f64, k: usize, first_step: bool) -> Self {
         let mut bytes = [0u8; UNIT_BYTES];
         bytes[..8].copy_from_slice(&p.to_le_bytes());
-        bytes[8..].copy_from_slice(&(k | flags).to_le_bytes());
+        bytes[8..].copy_from_slice(&Self::packed(k, first_step).to_le_bytes());
         UnitRecord(bytes)
     }
 
-    /// (p-value, first step, selected, `K_j`) of a record's bytes.
-    fn read(bytes: &[u8]) -> (f64, bool, bool, usize) {
+    /// The record's second half: `K_j` and the first-step flag.
+    fn packed(k: usize, first_step: bool) -> u64 {
+        let k = k as u64;
+        assert!(k < FIRST_STEP_BIT, "K_j below 2^63");
+        k | if first_step { FIRST_STEP_BIT } else { 0 }
+    }
+
+    /// (p-value, first step, `K_j`) of a record's bytes.
+    fn read(bytes: &[u8]) -> (f64, bool, usize) {
         let p = f64::from_le_bytes(bytes[..8].try_into().expect("8 bytes"));
         let packed = u64::from_le_bytes(bytes[8..16].try_into().expect("8 bytes"));
-        let k = packed & !(FIRST_STEP_BIT | SELECTED_BIT);
         (
             p,
             packed & FIRST_STEP_BIT != 0,
-            packed & SELECTED_BIT != 0,
-            k as usize,
+            (packed & !FIRST_STEP_BIT) as usize,
         )
     }
 }
@@ -939,6 +988,8 @@ struct BlockReader<'r> {
     fields_per_row: usize,
     /// Rank of each selected unit in input order.
     ranks: &'r [u32],
+    /// The pruning rule: selected from the first step and `K_j`.
+    selects: &'r dyn Fn(bool, usize) -> bool,
     selected_seen: usize,
     start: usize,
 }
@@ -966,7 +1017,8 @@ impl BlockReader<'_> {
         let ranks = units
             .chunks_exact(UNIT_BYTES)
             .map(|record| {
-                UnitRecord::read(record).2.then(|| {
+                let (_, first_step, k) = UnitRecord::read(record);
+                (self.selects)(first_step, k).then(|| {
                     self.selected_seen += 1;
                     self.ranks[self.selected_seen - 1] as usize
                 })
@@ -1021,7 +1073,8 @@ fn format_rows(
     let mut kept: Vec<&[u8]> = Vec::with_capacity(block.fields_per_row - 1);
     for r in rows {
         let [prediction, score, w] = side_numbers(&block.side[r * SIDE_BYTES..]);
-        let (p, first_step, selected, k) = UnitRecord::read(&block.units[r * UNIT_BYTES..]);
+        let (p, first_step, k) = UnitRecord::read(&block.units[r * UNIT_BYTES..]);
+        let selected = block.ranks[r].is_some();
         let q_value = q_values[block.start + r].0;
         let reason = (!within_level(w, total + w, q)).then(|| unreachable_text(w, total, q));
         let probability = probability_of(first_step, selected, k);

@@ -93,13 +93,13 @@ fn check(
         &mut slices
     };
     let mut early: Vec<EarlyUnit> = Vec::with_capacity(m);
-    let mut streamed = run_streaming_visiting(&cal, pool, options, |j, unit| {
+    let mut streamed = run_streaming_visiting(&cal, pool, options, |j, units| {
         assert_eq!(
             j as usize,
             early.len(),
             "{label}: input order of the decide pass"
         );
-        early.push(unit);
+        early.extend_from_slice(units);
     })
     .unwrap();
     // The decide pass's results, settled by the ranked units, without the last pass.

@@ -456,26 +456,37 @@ pub(crate) fn run(
     let at_floor = |score: f64| lowest_labeled.map_or(true, |lowest| score < lowest);
     let mut side_error: Option<io::Error> = None;
     let mut record = [0u8; SIDE_BYTES];
-    let mut selection = run_streaming_visiting(&calibration, &mut pool, options, |j, unit| {
+    let mut side_bytes: Vec<u8> = Vec::new();
+    let mut unit_bytes: Vec<u8> = Vec::new();
+    let mut selection = run_streaming_visiting(&calibration, &mut pool, options, |from, units| {
         if side_error.is_some() {
             return;
         }
-        if let Err(e) = side.read_exact(&mut record) {
+        side_bytes.resize(units.len() * SIDE_BYTES, 0);
+        if let Err(e) = side.read_exact(&mut side_bytes) {
             side_error = Some(e);
             return;
         }
-        let [prediction, score, _] = side_numbers(&record);
-        let p = unit.numerator / unit.denominator;
-        let k = unit.conditional_count.unwrap_or(0);
-        if let Err(e) = units_out.write_all(&UnitRecord::of(p, k, unit.first_step).0) {
-            side_error = Some(e);
-            return;
+        unit_bytes.clear();
+        for (i, (unit, side_record)) in units
+            .iter()
+            .zip(side_bytes.chunks_exact(SIDE_BYTES))
+            .enumerate()
+        {
+            let j = from + i as u64;
+            let p = unit.numerator / unit.denominator;
+            let k = unit.conditional_count.unwrap_or(0);
+            unit_bytes.extend_from_slice(&UnitRecord::of(p, k, unit.first_step).0);
+            q_values.push((p, j as usize));
+            if unit.first_step {
+                let [prediction, score, _] = side_numbers(side_record);
+                first_counts.push(k);
+                first_units.push((prediction, j));
+                first_step_floor += usize::from(at_floor(score));
+            }
         }
-        q_values.push((p, j as usize));
-        if unit.first_step {
-            first_counts.push(k);
-            first_units.push((prediction, j));
-            first_step_floor += usize::from(at_floor(score));
+        if let Err(e) = units_out.write_all(&unit_bytes) {
+            side_error = Some(e);
         }
     })
     .map_err(streaming_failure)?;

@@ -773,7 +773,7 @@ pub fn run_streaming<'c>(
 }
 
 /// [`run_streaming`], handing every unit's [`EarlyUnit`] to `visit` in input order during
-/// the decide pass.
+/// the decide pass: `visit(j, units)` with `units[i]` the results of unit `j + i`.
 ///
 /// # Errors
 /// As [`run_streaming`].
@@ -781,7 +781,7 @@ pub fn run_streaming_visiting<'c>(
     calibration: &'c CalibrationSet,
     pool: &mut dyn PoolSource,
     options: StreamingOptions,
-    mut visit: impl FnMut(u64, EarlyUnit),
+    mut visit: impl FnMut(u64, &[EarlyUnit]),
 ) -> Result<StreamingSelection<'c>, StreamingError> {
     let q = check_fdr(options.q)?;
     let labeled = calibration.sorted_scores();
@@ -863,8 +863,13 @@ pub fn run_streaming_visiting<'c>(
     let mut ties_rng = stream(options.seed, Stream::PValueTies);
     let mut index = 0u64;
     let mut passes = 2;
+    let mut early: Vec<EarlyUnit> = Vec::with_capacity(CHUNK);
+    let conservative = options.bh_pvalues == PValueKind::Conservative;
     pool.pass(&mut |scores, weights| {
-        let decided = decide_chunk(&summary, scores, weights);
+        // The per-unit work without sequential state in parallel (decide_chunk), the
+        // counts, draws and queue in input order here.
+        let decided = decide_chunk(&summary, scores, weights, conservative);
+        early.clear();
         for (offset, (&s, d)) in scores.iter().zip(&decided).enumerate() {
             let w = weights.map_or(1.0, |w| w[offset]);
             let j = index + offset as u64;
@@ -872,35 +877,33 @@ pub fn run_streaming_visiting<'c>(
                 Pruning::Heterogeneous => pruning_rng.gen::<f64>(),
                 _ => xi,
             };
-            let at_or_below = d.at_or_below;
-            let p = match options.bh_pvalues {
-                PValueKind::Conservative => (at_or_below + w) / (total + w),
-                PValueKind::Randomized => {
-                    let u: f64 = ties_rng.gen();
-                    (d.below + u * (w + (at_or_below - d.below))) / (total + w)
-                }
+            let rank = if conservative {
+                d.conservative_rank
+            } else {
+                let u: f64 = ties_rng.gen();
+                first_passing_rank(
+                    (d.below + u * (w + (d.at_or_below - d.below))) / (total + w),
+                    q,
+                    m,
+                )
             };
-            bh_hist.add(first_passing_rank(p, q, m));
-            if !within_level(w, total + w, q) {
-                unreachable_count += 1;
-            }
-            if s < lowest {
-                floor_count += 1;
-            }
-            let mut early = EarlyUnit {
+            bh_hist.add(rank);
+            unreachable_count += usize::from(d.unreachable);
+            floor_count += usize::from(s < lowest);
+            let mut unit = EarlyUnit {
                 conditional_count: None,
                 first_step: false,
-                numerator: at_or_below + w,
+                numerator: d.at_or_below + w,
                 denominator: total + w,
                 xi: xi_j,
             };
             match d.decision {
                 Decision::Known(k) => {
-                    early.conditional_count = Some(k);
-                    if within_level(at_or_below + w, total + w, bh_level(q, k, m)) {
+                    unit.conditional_count = Some(k);
+                    if d.first_step {
                         first_step_count += 1;
                         keys.add(k, xi_j);
-                        early.first_step = true;
+                        unit.first_step = true;
                     }
                 }
                 Decision::NeedsRank { entry, fallback } => {
@@ -918,8 +921,9 @@ pub fn run_streaming_visiting<'c>(
                     }
                 }
             }
-            visit(j, early);
+            early.push(unit);
         }
+        visit(index, &early);
         index += scores.len() as u64;
     })?;
     check_same(m, index)?;
@@ -1006,11 +1010,25 @@ struct Decided {
     decision: Decision,
     below: f64,
     at_or_below: f64,
+    /// `p_j <= q K_j / m` for a known `K_j` (false otherwise).
+    first_step: bool,
+    /// The first rank at which the conservative p-value passes BH's line (when asked).
+    conservative_rank: usize,
+    /// The p-value floor `w / (W + w)` is above `q`.
+    unreachable: bool,
 }
 
-fn decide_chunk(summary: &Summary<'_>, scores: &[f64], weights: Option<&[f64]>) -> Vec<Decided> {
+/// Decide a chunk's units; `conservative_ranks` asks for the conservative p-values' first
+/// passing ranks.
+fn decide_chunk(
+    summary: &Summary<'_>,
+    scores: &[f64],
+    weights: Option<&[f64]>,
+    conservative_ranks: bool,
+) -> Vec<Decided> {
     let cal = summary.calibration;
     let labeled = cal.sorted_scores();
+    let (q, m, total) = (summary.q, summary.m, summary.total);
     scores
         .par_iter()
         .enumerate()
@@ -1025,10 +1043,21 @@ fn decide_chunk(summary: &Summary<'_>, scores: &[f64], weights: Option<&[f64]>) 
             } else {
                 bucket
             };
+            let decision = summary.decide_in(bucket, s, w);
+            let at_or_below = cal.prefix_weight(at_or_below);
+            let (numerator, denominator) = (at_or_below + w, total + w);
             Decided {
-                decision: summary.decide_in(bucket, s, w),
+                first_step: matches!(decision, Decision::Known(k)
+                    if within_level(numerator, denominator, bh_level(q, k, m))),
+                conservative_rank: if conservative_ranks {
+                    first_passing_rank(numerator / denominator, q, m)
+                } else {
+                    0
+                },
+                unreachable: !within_level(w, denominator, q),
+                decision,
                 below: cal.prefix_weight(bucket),
-                at_or_below: cal.prefix_weight(at_or_below),
+                at_or_below,
             }
         })
         .collect()
@@ -1286,7 +1315,7 @@ impl StreamingSelection<'_> {
             if failure.is_some() {
                 return;
             }
-            let decided = decide_chunk(summary, scores, weights);
+            let decided = decide_chunk(summary, scores, weights, false);
             for (offset, d) in decided.iter().enumerate() {
                 let w = weights.map_or(1.0, |w| w[offset]);
                 let j = index + offset as u64;

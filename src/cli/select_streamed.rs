@@ -337,40 +337,44 @@ pub(crate) fn run(
     let mut hashes: Vec<u64> = Vec::new();
     let write_error = internal("cannot write a temporary file");
     let (has_threshold, has_weight) = (chunks.has_threshold(), chunks.has_weight());
-    let mut ahead = ReadAhead::start(chunks, pool_len);
-    while let Some((chunk, fraction)) = ahead.next()? {
-        let scores = chunk_scores(config, &settings, &chunk, has_threshold);
-        let weights = chunk.weight(has_weight);
-        for (r, id) in chunk.ids().iter().enumerate() {
-            let w = weights.map_or(1.0, |w| w[r]);
-            spill.push(scores[r], w).map_err(&write_error)?;
-            side.write_all(&chunk.prediction()[r].to_le_bytes())
-                .and_then(|()| side.write_all(&scores[r].to_le_bytes()))
-                .and_then(|()| side.write_all(&w.to_le_bytes()))
+    let prepare = Prepare {
+        config,
+        settings: &settings,
+        has_threshold,
+        has_weight,
+        kept_width,
+        labeled_ids: &labeled_ids,
+        labeled_hashes: &labeled_hashes,
+        first_weight,
+    };
+    std::thread::scope(|scope| -> Result<(), Failure> {
+        let mut ahead = ReadAhead::start(scope, chunks, pool_len, &prepare);
+        while let Some((chunk, fraction)) = ahead.next()? {
+            if chunk.too_long {
+                return Err(write_error(io::Error::other("a cell of 4 GiB or more")));
+            }
+            spill
+                .push_all(&chunk.scores, has_weight.then_some(&chunk.weights[..]))
                 .map_err(&write_error)?;
-            write_cell(&mut text, id.as_bytes()).map_err(&write_error)?;
-            for cell in chunk.kept_row(r, kept_width) {
-                write_cell(&mut text, cell.as_bytes()).map_err(&write_error)?;
-            }
-            let hash = pool_id_hash(id);
-            hashes.push(hash);
-            first.smallest_weight = first.smallest_weight.min(w);
-            first.largest_weight = first.largest_weight.max(w);
-            if weights.is_some() && Some(w) != first_weight.or(weights.map(|w| w[0])) {
-                first.weights_vary = true;
-            }
-            if labeled_hashes.contains(&hash) && labeled_ids.contains(id.as_str()) {
+            side.write_all(&chunk.side).map_err(&write_error)?;
+            text.write_all(&chunk.text).map_err(&write_error)?;
+            hashes.extend_from_slice(&chunk.hashes);
+            first.smallest_weight = first.smallest_weight.min(chunk.smallest_weight);
+            first.largest_weight = first.largest_weight.max(chunk.largest_weight);
+            first.weights_vary |= chunk.weights_vary;
+            for id in chunk.shared {
                 if first.shared_first.len() < super::common::SHARED_IDS_LISTED {
-                    first.shared_first.push(id.clone());
+                    first.shared_first.push(id);
                 }
                 first.shared_count += 1;
             }
+            first.m += chunk.scores.len();
+            if pool_len > 0 {
+                status.progress("reading the pool", fraction);
+            }
         }
-        first.m += chunk.len();
-        if pool_len > 0 {
-            status.progress("reading the pool", fraction);
-        }
-    }
+        Ok(())
+    })?;
     let m = first.m;
     hashes.par_sort_unstable();
     let repeated: HashSet<u64> = hashes
@@ -845,24 +849,117 @@ fn chunk_scores(
     )
 }
 
-/// The pool's chunks read on a second thread, ahead of their use, so that parsing the CSV
-/// overlaps the work done with each chunk. A plain file without quotes is parsed in
-/// parallel blocks ([`PoolChunks::in_parallel`]); other input by the serial reader.
-struct ReadAhead {
-    chunks: Receiver<Result<(PoolChunk, f64), InputError>>,
-    reader: Option<std::thread::JoinHandle<()>>,
+/// What read 1 needs from a chunk of the pool, computed off the main thread.
+struct PreparedChunk {
+    scores: Vec<f64>,
+    /// The chunk's weights (empty without a weight column).
+    weights: Vec<f64>,
+    /// The side-file records ([`SIDE_BYTES`] per row).
+    side: Vec<u8>,
+    /// The text-file cells: id and kept cells per row, each length-prefixed.
+    text: Vec<u8>,
+    /// [`pool_id_hash`] of each id.
+    hashes: Vec<u64>,
+    smallest_weight: f64,
+    largest_weight: f64,
+    weights_vary: bool,
+    /// Ids also in the labeled file, in input order.
+    shared: Vec<String>,
+    /// A cell too long for the text file.
+    too_long: bool,
 }
 
-impl ReadAhead {
-    fn start(chunks: PoolChunks, pool_len: u64) -> Self {
+/// How read 1 turns a parsed chunk into a [`PreparedChunk`] (the same for every chunk).
+struct Prepare<'a> {
+    config: &'a SelectConfig,
+    settings: &'a crate::selection::pipeline::SelectSettings,
+    has_threshold: bool,
+    has_weight: bool,
+    kept_width: usize,
+    labeled_ids: &'a HashSet<&'a str>,
+    labeled_hashes: &'a HashSet<u64, BuildHasherDefault<Prehashed>>,
+    first_weight: Option<f64>,
+}
+
+impl Prepare<'_> {
+    fn chunk(&self, chunk: PoolChunk) -> PreparedChunk {
+        let scores = chunk_scores(self.config, self.settings, &chunk, self.has_threshold);
+        let weights = chunk.weight(self.has_weight);
+        let rows = chunk.len();
+        let mut side = Vec::with_capacity(rows * SIDE_BYTES);
+        let mut text = Vec::with_capacity(rows * 16 * (1 + self.kept_width));
+        let mut hashes = Vec::with_capacity(rows);
+        let mut shared = Vec::new();
+        let (mut smallest_weight, mut largest_weight) = (f64::INFINITY, f64::NEG_INFINITY);
+        let mut weights_vary = false;
+        let mut too_long = false;
+        // A weight differing from the first labeled one (or the chunk's first).
+        let reference = self.first_weight.or(weights.map(|w| w[0]));
+        for (r, id) in chunk.ids().iter().enumerate() {
+            let w = weights.map_or(1.0, |w| w[r]);
+            side.extend_from_slice(&chunk.prediction()[r].to_le_bytes());
+            side.extend_from_slice(&scores[r].to_le_bytes());
+            side.extend_from_slice(&w.to_le_bytes());
+            let cells = std::iter::once(id).chain(chunk.kept_row(r, self.kept_width));
+            for cell in cells {
+                if push_cell(&mut text, cell.as_bytes()).is_err() {
+                    too_long = true;
+                }
+            }
+            let hash = pool_id_hash(id);
+            hashes.push(hash);
+            smallest_weight = smallest_weight.min(w);
+            largest_weight = largest_weight.max(w);
+            if weights.is_some() && Some(w) != reference {
+                weights_vary = true;
+            }
+            if self.labeled_hashes.contains(&hash) && self.labeled_ids.contains(id.as_str()) {
+                shared.push(id.clone());
+            }
+        }
+        PreparedChunk {
+            weights: weights.map_or_else(Vec::new, <[f64]>::to_vec),
+            scores,
+            side,
+            text,
+            hashes,
+            smallest_weight,
+            largest_weight,
+            weights_vary,
+            shared,
+            too_long,
+        }
+    }
+}
+
+/// The pool's chunks read and prepared on other threads, ahead of their use, so that
+/// parsing the CSV and preparing the temporary files' records overlap the writing. A plain
+/// file without quotes is parsed in parallel blocks ([`PoolChunks::in_parallel`]) and each
+/// round of blocks prepared in parallel; other input is parsed and prepared by one thread.
+struct ReadAhead<'scope> {
+    chunks: Receiver<Result<(PreparedChunk, f64), InputError>>,
+    reader: Option<std::thread::ScopedJoinHandle<'scope, ()>>,
+}
+
+impl<'scope> ReadAhead<'scope> {
+    fn start<'env>(
+        scope: &'scope std::thread::Scope<'scope, 'env>,
+        chunks: PoolChunks,
+        pool_len: u64,
+        prepare: &'scope Prepare<'env>,
+    ) -> Self {
         let (sender, receiver) = sync_channel(8);
-        let reader = std::thread::spawn(move || match chunks.in_parallel() {
+        let reader = scope.spawn(move || match chunks.in_parallel() {
             Ok(mut blocks) => loop {
                 match blocks.next_chunks() {
                     Ok(round) if round.is_empty() => return,
                     Ok(round) => {
                         let fraction = blocks.fraction_read(pool_len);
-                        for chunk in round {
+                        let prepared: Vec<PreparedChunk> = round
+                            .into_par_iter()
+                            .map(|chunk| prepare.chunk(chunk))
+                            .collect();
+                        for chunk in prepared {
                             if sender.send(Ok((chunk, fraction))).is_err() {
                                 return;
                             }
@@ -877,7 +974,7 @@ impl ReadAhead {
             Err(mut chunks) => loop {
                 let mut chunk = chunks.chunk();
                 let next = match chunks.next_chunk(&mut chunk, ROWS_PER_CHUNK) {
-                    Ok(true) => Ok((chunk, chunks.fraction_read(pool_len))),
+                    Ok(true) => Ok((prepare.chunk(chunk), chunks.fraction_read(pool_len))),
                     Ok(false) => return,
                     Err(e) => Err(e),
                 };
@@ -894,12 +991,12 @@ impl ReadAhead {
     }
 
     /// The next chunk and the fraction of the file read so far; `None` at the end.
-    fn next(&mut self) -> Result<Option<(PoolChunk, f64)>, Failure> {
+    fn next(&mut self) -> Result<Option<(PreparedChunk, f64)>, Failure> {
         match self.chunks.recv() {
             Ok(Ok(next)) => Ok(Some(next)),
             Ok(Err(e)) => Err(e.into()),
             // The reader has stopped: at the end of the file, or by a panic (not an end).
-            Err(_) => match self.reader.take().map(std::thread::JoinHandle::join) {
+            Err(_) => match self.reader.take().map(std::thread::ScopedJoinHandle::join) {
                 Some(Err(_)) => Err(Failure::Internal(
                     "the thread reading the pool stopped unexpectedly".to_string(),
                 )),
@@ -920,17 +1017,22 @@ fn side_numbers(record: &[u8]) -> [f64; 3] {
 }
 
 /// Append one cell to the pass-1 text file: its length (u32, little endian), its bytes.
-fn write_cell(out: &mut impl Write, cell: &[u8]) -> io::Result<()> {
-    let len = u32::try_from(cell.len()).map_err(|_| io::Error::other("a cell of 4 GiB or more"))?;
-    out.write_all(&len.to_le_bytes())?;
-    out.write_all(cell)
+fn push_cell(out: &mut Vec<u8>, cell: &[u8]) -> Result<(), CellTooLong> {
+    let len = u32::try_from(cell.len()).map_err(|_| CellTooLong)?;
+    out.extend_from_slice(&len.to_le_bytes());
+    out.extend_from_slice(cell);
+    Ok(())
 }
+
+/// A cell of 4 GiB or more, which the text file's length prefix cannot hold.
+#[derive(Clone, Copy, Debug)]
+struct CellTooLong;
 
 /// Bytes of a [`UnitRecord`].
 const UNIT_BYTES: usize = 16;
 
-/// A unit's pass-3 result as 16 bytes: its p-value (f64) and a u64 holding `K_j` with the
-/// first-step flag in bit 63 and the selected flag in bit 62.
+/// A unit's decide-pass result as 16 bytes: its p-value (f64) and a u64 holding `K_j` with
+/// the first-step flag in bit 63 (whether it is selected follows from these and `r*`).
 struct UnitRecord([u8; UNIT_BYTES]);
 
 const FIRST_STEP_BIT: u64 = 1 << 63;

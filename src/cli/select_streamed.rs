@@ -655,9 +655,10 @@ pub(crate) fn run(
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
     let shortlist_rows = BufWriter::with_capacity(1 << 20, shortlist_rows_file);
     let header = candidates_header(&first.kept_names);
-    // The header through the csv writer; the rows are formatted in pieces (format_rows).
+    // The header through the csv writer; the rows are formatted in pieces (format_rows),
+    // larger than this buffer, so that they go to the file without another copy.
     let mut with_header =
-        csv::Writer::from_writer(BufWriter::with_capacity(1 << 20, candidates_file));
+        csv::Writer::from_writer(BufWriter::with_capacity(1 << 16, candidates_file));
     with_header
         .write_record(&header)
         .map_err(|e| Failure::Internal(format!("cannot write candidates.csv: {e}")))?;

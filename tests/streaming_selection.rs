@@ -17,8 +17,8 @@ use weighbridge::selection::conditional::conditional_calibration;
 use weighbridge::selection::pruning::Pruning;
 use weighbridge::selection::resolution::at_floor;
 use weighbridge::selection::streaming::{
-    run_streaming_visiting, EarlyUnit, PoolSource, SlicePool, SpillWriter, StreamingOptions,
-    StreamingSummary, UnitResult,
+    run_streaming_visiting, run_streaming_with_histogram, EarlyUnit, PoolBuckets, PoolHistogram,
+    PoolSource, SlicePool, SpillWriter, StreamingOptions, StreamingSummary, UnitResult,
 };
 
 const PRUNINGS: [Pruning; 3] = [
@@ -196,6 +196,35 @@ fn check(
         "{label}: unreachable"
     );
     assert_eq!(c.floor_count, floor_count, "{label}: floor");
+
+    // The histogram built by the caller, in uneven pieces, gives the same selection with
+    // one pass over the pool fewer.
+    let buckets = PoolBuckets::new(&cal);
+    let mut histogram = PoolHistogram::new(&cal);
+    let mut at = 0;
+    for (i, piece) in [1usize, 999, 7, 4096].iter().cycle().enumerate() {
+        if at >= m {
+            break;
+        }
+        let to = (at + piece + i % 3).min(m);
+        let scores = &case.pool_scores[at..to];
+        histogram.add(
+            scores,
+            Some(&case.pool_weights[at..to]),
+            &buckets.of(scores),
+        );
+        at = to;
+    }
+    let mut given =
+        run_streaming_with_histogram(&cal, histogram, pool, options, |_, _| {}).unwrap();
+    let mut again: Vec<UnitResult> = Vec::with_capacity(m);
+    given
+        .for_each_unit(pool, |_, unit| again.push(unit))
+        .unwrap();
+    assert!(again == units, "{label}: the caller's histogram");
+    let mut expected = c.clone();
+    expected.passes -= 1;
+    assert_eq!(given.counts, expected, "{label}: the caller's histogram");
     c.clone()
 }
 

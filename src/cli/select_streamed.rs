@@ -48,8 +48,8 @@ use crate::selection::pipeline::{
 use crate::selection::pruning::Pruning;
 use crate::selection::resolution;
 use crate::selection::streaming::{
-    run_streaming_visiting, ChunkVisitor, PoolSource, SpillWriter, SpilledPool, StreamingError,
-    StreamingOptions,
+    run_streaming_with_histogram, ChunkVisitor, PoolBuckets, PoolHistogram, PoolSource,
+    SpillWriter, SpilledPool, StreamingError, StreamingOptions,
 };
 use crate::shift::weighting::WeightSource;
 
@@ -335,6 +335,9 @@ pub(crate) fn run(
         kept_names: chunks.kept_names(),
     };
     let mut hashes: Vec<u64> = Vec::new();
+    // The selection's first pass, done here.
+    let pool_buckets = PoolBuckets::new(&calibration);
+    let mut histogram = PoolHistogram::new(&calibration);
     let write_error = internal("cannot write a temporary file");
     let (has_threshold, has_weight) = (chunks.has_threshold(), chunks.has_weight());
     let prepare = Prepare {
@@ -346,6 +349,7 @@ pub(crate) fn run(
         labeled_ids: &labeled_ids,
         labeled_hashes: &labeled_hashes,
         first_weight,
+        buckets: &pool_buckets,
     };
     std::thread::scope(|scope| -> Result<(), Failure> {
         let mut ahead = ReadAhead::start(scope, chunks, pool_len, &prepare);
@@ -353,9 +357,11 @@ pub(crate) fn run(
             if chunk.too_long {
                 return Err(write_error(io::Error::other("a cell of 4 GiB or more")));
             }
+            let weights = has_weight.then_some(&chunk.weights[..]);
             spill
-                .push_all(&chunk.scores, has_weight.then_some(&chunk.weights[..]))
+                .push_all(&chunk.scores, weights)
                 .map_err(&write_error)?;
+            histogram.add(&chunk.scores, weights, &chunk.buckets);
             side.write_all(&chunk.side).map_err(&write_error)?;
             text.write_all(&chunk.text).map_err(&write_error)?;
             hashes.extend_from_slice(&chunk.hashes);
@@ -462,37 +468,43 @@ pub(crate) fn run(
     let mut record = [0u8; SIDE_BYTES];
     let mut side_bytes: Vec<u8> = Vec::new();
     let mut unit_bytes: Vec<u8> = Vec::new();
-    let mut selection = run_streaming_visiting(&calibration, &mut pool, options, |from, units| {
-        if side_error.is_some() {
-            return;
-        }
-        side_bytes.resize(units.len() * SIDE_BYTES, 0);
-        if let Err(e) = side.read_exact(&mut side_bytes) {
-            side_error = Some(e);
-            return;
-        }
-        unit_bytes.clear();
-        for (i, (unit, side_record)) in units
-            .iter()
-            .zip(side_bytes.chunks_exact(SIDE_BYTES))
-            .enumerate()
-        {
-            let j = from + i as u64;
-            let p = unit.numerator / unit.denominator;
-            let k = unit.conditional_count.unwrap_or(0);
-            unit_bytes.extend_from_slice(&UnitRecord::of(p, k, unit.first_step).0);
-            q_values.push((p, j as usize));
-            if unit.first_step {
-                let [prediction, score, _] = side_numbers(side_record);
-                first_counts.push(k);
-                first_units.push((prediction, j));
-                first_step_floor += usize::from(at_floor(score));
+    let mut selection = run_streaming_with_histogram(
+        &calibration,
+        histogram,
+        &mut pool,
+        options,
+        |from, units| {
+            if side_error.is_some() {
+                return;
             }
-        }
-        if let Err(e) = units_out.write_all(&unit_bytes) {
-            side_error = Some(e);
-        }
-    })
+            side_bytes.resize(units.len() * SIDE_BYTES, 0);
+            if let Err(e) = side.read_exact(&mut side_bytes) {
+                side_error = Some(e);
+                return;
+            }
+            unit_bytes.clear();
+            for (i, (unit, side_record)) in units
+                .iter()
+                .zip(side_bytes.chunks_exact(SIDE_BYTES))
+                .enumerate()
+            {
+                let j = from + i as u64;
+                let p = unit.numerator / unit.denominator;
+                let k = unit.conditional_count.unwrap_or(0);
+                unit_bytes.extend_from_slice(&UnitRecord::of(p, k, unit.first_step).0);
+                q_values.push((p, j as usize));
+                if unit.first_step {
+                    let [prediction, score, _] = side_numbers(side_record);
+                    first_counts.push(k);
+                    first_units.push((prediction, j));
+                    first_step_floor += usize::from(at_floor(score));
+                }
+            }
+            if let Err(e) = units_out.write_all(&unit_bytes) {
+                side_error = Some(e);
+            }
+        },
+    )
     .map_err(streaming_failure)?;
     if let Some(e) = side_error {
         return Err(Failure::Internal(format!(
@@ -789,7 +801,7 @@ pub(crate) fn run(
     summary.memory = Some(crate::report::MemoryUse {
         mode: "streamed",
         pool_reads: Some(pool_reads),
-        score_passes: Some(counts.passes + 1),
+        score_passes: Some(counts.passes),
         ranked_units: Some(counts.ranked_units),
         ranked_units_spilled: Some(counts.spilled),
         ..crate::report::MemoryUse::in_memory(budget, estimate)
@@ -807,10 +819,10 @@ pub(crate) fn run(
     if !config.quiet {
         let mut text = text_summary_of_top(&summary, &top);
         text.push_str(&format!(
-            "streamed selection ({why}): the pool was read {} and its scores passed {} \
-             times; {} units needed their exact rank{}\n",
-            if pool_reads == 1 { "once" } else { "twice" },
-            counts.passes + 1,
+            "streamed selection ({why}): the pool was read {} and the selection went over \
+             its scores {}; {} units needed their exact rank{}\n",
+            times(pool_reads),
+            times(counts.passes),
             counts.ranked_units,
             if counts.spilled {
                 ", held in a temporary file"
@@ -850,6 +862,15 @@ fn chunk_scores(
     )
 }
 
+/// "once", "twice", "3 times".
+fn times(n: usize) -> String {
+    match n {
+        1 => "once".to_string(),
+        2 => "twice".to_string(),
+        n => format!("{n} times"),
+    }
+}
+
 /// What read 1 needs from a chunk of the pool, computed off the main thread.
 struct PreparedChunk {
     scores: Vec<f64>,
@@ -861,6 +882,8 @@ struct PreparedChunk {
     text: Vec<u8>,
     /// [`pool_id_hash`] of each id.
     hashes: Vec<u64>,
+    /// [`PoolBuckets::of`] the scores.
+    buckets: Vec<u32>,
     smallest_weight: f64,
     largest_weight: f64,
     weights_vary: bool,
@@ -880,6 +903,8 @@ struct Prepare<'a> {
     labeled_ids: &'a HashSet<&'a str>,
     labeled_hashes: &'a HashSet<u64, BuildHasherDefault<Prehashed>>,
     first_weight: Option<f64>,
+    /// The selection's buckets of the scores (its histogram is built during read 1).
+    buckets: &'a PoolBuckets<'a>,
 }
 
 impl Prepare<'_> {
@@ -919,6 +944,7 @@ impl Prepare<'_> {
             }
         }
         PreparedChunk {
+            buckets: self.buckets.of(&scores),
             weights: weights.map_or_else(Vec::new, <[f64]>::to_vec),
             scores,
             side,

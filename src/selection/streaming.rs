@@ -800,52 +800,135 @@ pub fn run_streaming_visiting<'c>(
     calibration: &'c CalibrationSet,
     pool: &mut dyn PoolSource,
     options: StreamingOptions,
-    mut visit: impl FnMut(u64, &[EarlyUnit]),
+    visit: impl FnMut(u64, &[EarlyUnit]),
 ) -> Result<StreamingSelection<'c>, StreamingError> {
-    let q = check_fdr(options.q)?;
-    let labeled = calibration.sorted_scores();
-    let n = labeled.len();
-    let total = calibration.total_weight();
-
-    let index = BucketIndex::new(labeled);
+    check_fdr(options.q)?;
 
     // Pass 1: bucket histogram and largest score per bucket; checks.
-    let mut bucket_count = vec![0u64; n + 1];
-    let mut bucket_max = vec![f64::NEG_INFINITY; n + 1];
-    let mut seen = 0u64;
-    let mut failure: Option<SelectionError> = None;
+    let buckets = PoolBuckets::new(calibration);
+    let mut histogram = PoolHistogram::new(calibration);
     pool.pass(&mut |scores, weights| {
-        if failure.is_some() {
+        let of_chunk: Vec<u32> = scores
+            .par_chunks(4096)
+            .flat_map_iter(|part| buckets.of(part))
+            .collect();
+        histogram.add(scores, weights, &of_chunk);
+    })?;
+    decide_from_histogram(calibration, histogram, pool, options, visit, 2)
+}
+
+/// `#{i : V_i < s}`, a pool score's bucket among the labeled scores (0..=n), for
+/// [`PoolHistogram`]; shared by the threads that compute it.
+pub struct PoolBuckets<'c> {
+    index: BucketIndex,
+    labeled: &'c [f64],
+}
+
+impl<'c> PoolBuckets<'c> {
+    pub fn new(calibration: &'c CalibrationSet) -> Self {
+        let labeled = calibration.sorted_scores();
+        PoolBuckets {
+            index: BucketIndex::new(labeled),
+            labeled,
+        }
+    }
+
+    /// The bucket of each score.
+    pub fn of(&self, scores: &[f64]) -> Vec<u32> {
+        scores
+            .iter()
+            .map(|&s| self.index.below(self.labeled, s) as u32)
+            .collect()
+    }
+}
+
+/// The selection's first pass, the bucket histogram and the largest pool score per bucket,
+/// built by the caller while it reads the pool for its own purposes (then
+/// [`run_streaming_with_histogram`] needs one pass over the pool fewer).
+pub struct PoolHistogram {
+    bucket_count: Vec<u64>,
+    bucket_max: Vec<f64>,
+    seen: u64,
+    failure: Option<SelectionError>,
+}
+
+impl PoolHistogram {
+    pub fn new(calibration: &CalibrationSet) -> Self {
+        let n = calibration.sorted_scores().len();
+        PoolHistogram {
+            bucket_count: vec![0; n + 1],
+            bucket_max: vec![f64::NEG_INFINITY; n + 1],
+            seen: 0,
+            failure: None,
+        }
+    }
+
+    /// Add the next units in input order: scores, weights (`None` = every weight 1) and
+    /// buckets ([`PoolBuckets::of`] of the scores). A NaN score or a weight that is not
+    /// finite and positive is kept as the error the selection then returns.
+    pub fn add(&mut self, scores: &[f64], weights: Option<&[f64]>, buckets: &[u32]) {
+        if self.failure.is_some() {
             return;
         }
+        let seen = self.seen as usize;
         if let Some(i) = scores.iter().position(|v| v.is_nan()) {
-            failure = Some(SelectionError::NanPoolScore {
-                index: (seen as usize) + i,
-            });
+            self.failure = Some(SelectionError::NanPoolScore { index: seen + i });
             return;
         }
         if let Some(w) = weights {
             if let Some(i) = w.iter().position(|w| !(w.is_finite() && *w > 0.0)) {
-                failure = Some(SelectionError::PValue(PValueError::BadWeight {
+                self.failure = Some(SelectionError::PValue(PValueError::BadWeight {
                     what: "pool",
-                    index: (seen as usize) + i,
+                    index: seen + i,
                     value: w[i],
                 }));
                 return;
             }
         }
-        let buckets: Vec<u32> = scores
-            .par_iter()
-            .map(|&s| index.below(labeled, s) as u32)
-            .collect();
+        assert_eq!(buckets.len(), scores.len(), "a bucket per score");
         for (&b, &s) in buckets.iter().zip(scores) {
-            bucket_count[b as usize] += 1;
-            if s > bucket_max[b as usize] {
-                bucket_max[b as usize] = s;
+            self.bucket_count[b as usize] += 1;
+            if s > self.bucket_max[b as usize] {
+                self.bucket_max[b as usize] = s;
             }
         }
-        seen += scores.len() as u64;
-    })?;
+        self.seen += scores.len() as u64;
+    }
+}
+
+/// [`run_streaming_visiting`] with the first pass done by the caller: `histogram` holds
+/// every unit of `pool`, added in input order.
+///
+/// # Errors
+/// As [`run_streaming`]; also the pool changing from the one the histogram saw.
+pub fn run_streaming_with_histogram<'c>(
+    calibration: &'c CalibrationSet,
+    histogram: PoolHistogram,
+    pool: &mut dyn PoolSource,
+    options: StreamingOptions,
+    visit: impl FnMut(u64, &[EarlyUnit]),
+) -> Result<StreamingSelection<'c>, StreamingError> {
+    decide_from_histogram(calibration, histogram, pool, options, visit, 1)
+}
+
+/// The passes after the histogram; `passes` counts those done so far, this one included.
+fn decide_from_histogram<'c>(
+    calibration: &'c CalibrationSet,
+    histogram: PoolHistogram,
+    pool: &mut dyn PoolSource,
+    options: StreamingOptions,
+    mut visit: impl FnMut(u64, &[EarlyUnit]),
+    mut passes: usize,
+) -> Result<StreamingSelection<'c>, StreamingError> {
+    let q = check_fdr(options.q)?;
+    let labeled = calibration.sorted_scores();
+    let total = calibration.total_weight();
+    let PoolHistogram {
+        bucket_count,
+        bucket_max,
+        seen,
+        failure,
+    } = histogram;
     if let Some(e) = failure {
         return Err(e.into());
     }
@@ -881,7 +964,6 @@ pub fn run_streaming_visiting<'c>(
     let mut unqueued_from: Option<u64> = None; // first queued-but-not-held unit
     let mut ties_rng = stream(options.seed, Stream::PValueTies);
     let mut index = 0u64;
-    let mut passes = 2;
     let mut early: Vec<EarlyUnit> = Vec::with_capacity(CHUNK);
     let conservative = options.bh_pvalues == PValueKind::Conservative;
     pool.pass(&mut |scores, weights| {

@@ -321,21 +321,35 @@ impl MinTree {
         MinTree { size, tree }
     }
 
+    /// Without recursion: from leaf `hi` up to the nearest subtree on the left whose
+    /// minimum is `<= x`, then down its rightmost such path. Only indices `<= hi` are
+    /// looked at, so the padding leaves (`+inf`) never count. The filters are finite or
+    /// infinite, never NaN.
     fn rightmost_at_most(&self, hi: usize, x: f64) -> Option<usize> {
-        self.descend(1, 0, self.size - 1, hi, x)
-    }
-
-    fn descend(&self, node: usize, lo: usize, top: usize, hi: usize, x: f64) -> Option<usize> {
-        // The filters are finite or infinite, never NaN.
-        if lo > hi || self.tree[node] > x {
-            return None;
+        let mut node = self.size + hi;
+        if self.tree[node] <= x {
+            return Some(hi);
         }
-        if lo == top {
-            return Some(lo);
+        loop {
+            // Up while a left child: the parent starts where this node starts.
+            while node & 1 == 0 {
+                node >>= 1;
+            }
+            if node == 1 {
+                return None;
+            }
+            // The left sibling: the subtree just left of everything looked at so far.
+            node -= 1;
+            if self.tree[node] <= x {
+                while node < self.size {
+                    node = 2 * node + 1;
+                    if self.tree[node] > x {
+                        node -= 1;
+                    }
+                }
+                return Some(node - self.size);
+            }
         }
-        let mid = lo + (top - lo) / 2;
-        self.descend(2 * node + 1, mid + 1, top, hi, x)
-            .or_else(|| self.descend(2 * node, lo, mid, hi, x))
     }
 }
 
@@ -401,6 +415,22 @@ impl BucketIndex {
         let c = self.cell(s);
         let (from, to) = (self.start[c] as usize, self.start[c + 1] as usize);
         from + sorted[from..to].partition_point(|&v| v < s)
+    }
+
+    /// `(#{v < s}, #{v <= s})`: the labeled scores equal to `s` lie in `s`'s cell, so both
+    /// searches stay within it.
+    #[inline]
+    fn below_and_at_or_below(&self, sorted: &[f64], s: f64) -> (usize, usize) {
+        let c = self.cell(s);
+        let (from, to) = (self.start[c] as usize, self.start[c + 1] as usize);
+        let cell = &sorted[from..to];
+        let below = cell.partition_point(|&v| v < s);
+        let at_or_below = if cell.get(below).is_some_and(|&v| v <= s) {
+            below + cell[below..].partition_point(|&v| v <= s)
+        } else {
+            below
+        };
+        (from + below, from + at_or_below)
     }
 }
 
@@ -1135,15 +1165,10 @@ fn decide_chunk(
         .enumerate()
         .map(|(i, &s)| {
             let w = weights.map_or(1.0, |w| w[i]);
-            // One search: #{V_i < s} is the bucket, #{V_i <= s} adds the labeled scores
-            // equal to s (usually none). The same counts as weight_below and
+            // #{V_i < s} is the bucket, #{V_i <= s} adds the labeled scores equal to s
+            // (both within s's cell of the grid). The same counts as weight_below and
             // weight_at_or_below, so the same prefix sums.
-            let bucket = summary.bucket_of(s);
-            let at_or_below = if labeled.get(bucket).is_some_and(|&v| v <= s) {
-                bucket + labeled[bucket..].partition_point(|&v| v <= s)
-            } else {
-                bucket
-            };
+            let (bucket, at_or_below) = summary.index.below_and_at_or_below(labeled, s);
             let decision = summary.decide_in(bucket, s, w);
             let at_or_below = cal.prefix_weight(at_or_below);
             let (numerator, denominator) = (at_or_below + w, total + w);
@@ -1526,10 +1551,17 @@ mod tests {
                 queries.push(a + (b - a) * rng.gen::<f64>());
             }
             for s in queries {
+                let below = sorted.partition_point(|&v| v < s);
                 assert_eq!(
                     index.below(sorted, s),
-                    sorted.partition_point(|&v| v < s),
+                    below,
                     "query {s:e} in {} values",
+                    sorted.len()
+                );
+                assert_eq!(
+                    index.below_and_at_or_below(sorted, s),
+                    (below, sorted.partition_point(|&v| v <= s)),
+                    "query {s:e} in {} values: at or below",
                     sorted.len()
                 );
             }
@@ -1538,14 +1570,36 @@ mod tests {
 
     #[test]
     fn min_tree_finds_the_rightmost_passing_index() {
-        let values = [3.0, 1.0, 4.0, 1.0, 5.0, 9.0, 2.0];
-        let tree = MinTree::new(&values);
-        for hi in 0..values.len() {
-            for x in 0..10 {
-                let x = f64::from(x);
-                let expected = (0..=hi).rev().find(|&i| values[i] <= x);
-                assert_eq!(tree.rightmost_at_most(hi, x), expected, "hi {hi} x {x}");
+        use rand::{Rng, SeedableRng};
+        let check = |values: &[f64], xs: &[f64]| {
+            let tree = MinTree::new(values);
+            for hi in 0..values.len() {
+                for &x in xs {
+                    let expected = (0..=hi).rev().find(|&i| values[i] <= x);
+                    assert_eq!(
+                        tree.rightmost_at_most(hi, x),
+                        expected,
+                        "hi {hi} x {x} in {values:?}"
+                    );
+                }
             }
+        };
+        let xs: Vec<f64> = (0..10).map(f64::from).collect();
+        check(&[3.0, 1.0, 4.0, 1.0, 5.0, 9.0, 2.0], &xs);
+        // Every size up to 70 (powers of two and the ones past them), with infinite values
+        // and queries: the brute-force scan is the reference.
+        let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(11);
+        let (inf, ninf) = (f64::INFINITY, f64::NEG_INFINITY);
+        for len in 1..=70 {
+            let values: Vec<f64> = (0..len)
+                .map(|_| match rng.gen_range(0..10) {
+                    0 => inf,
+                    1 => ninf,
+                    _ => f64::from(rng.gen_range(0..20)),
+                })
+                .collect();
+            let xs: Vec<f64> = [ninf, inf, -1.0, 0.0, 0.5, 7.0, 19.0, 25.0].to_vec();
+            check(&values, &xs);
         }
     }
 

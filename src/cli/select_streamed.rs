@@ -9,13 +9,17 @@
 //! 1. the CSV, once, with every check of the in-memory reader: each unit's score and weight
 //!    go to an unnamed temporary file (16 bytes), its prediction, score and weight to a
 //!    second one (24 bytes), its id and kept cells to a third, and its id to an 8-byte hash
-//!    (repeated ids are then located by one more read);
-//! 2. the selection's own passes ([`crate::selection::streaming`]) over the binary file;
-//! 3. one more pass over the binary files collecting the p-values (sorted for the
-//!    q-values), the first-step counts (the draw's consequences) and the selected units'
-//!    predictions (the shortlist's order), and writing each unit's result (16 bytes);
-//! 4. the temporary files of passes 1 and 3 read back, writing candidates.csv in input
-//!    order and the shortlist rows, which are then put in their order.
+//!    (repeated ids are then located by one more read); each score's bucket goes into the
+//!    selection's histogram, so the selection needs no pass of its own for it;
+//! 2. the selection's own passes ([`crate::selection::streaming`]) over the binary file:
+//!    the decide pass hands over each unit's p-value, `K_j` and first step, written to a
+//!    fourth file (16 bytes per unit) and collected as `(p, j)` pairs for the q-values;
+//!    the units that needed their exact rank are settled in place after the rank rounds;
+//! 3. no pass: the q-values (the pairs sorted), the first-step counts (the draw's
+//!    consequences) and the selected units' predictions (the shortlist's order);
+//! 4. the temporary files of passes 1 and 2 read back, writing candidates.csv in input
+//!    order (the selection decided from each record and `r*`) and the shortlist rows, which
+//!    are then put in their order.
 //!
 //! Every number written is computed by the same functions as the in-memory path, so the
 //! files are byte-identical (tests/cli_streamed_select.rs).
@@ -655,7 +659,7 @@ pub(crate) fn run(
     };
     outcome.warnings = selection_warnings(&outcome);
 
-    // Pass 4: the temporary files of passes 1 and 3 read back in blocks of rows, each
+    // Pass 4: the temporary files of passes 1 and 2 read back in blocks of rows, each
     // block's rows formatted in parallel pieces and written in order by a second thread.
     status.step("writing candidates.csv");
     // Written in place under the commit's temporary name: renamed, not copied, at the end

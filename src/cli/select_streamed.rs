@@ -6,14 +6,14 @@
 //! deterministic pruning, no report); docs/streaming.md has the passes and their costs.
 //!
 //! The passes over the pool:
-//! 1. the CSV, once, with every check of the in-memory reader: each unit's score and weight
-//!    go to an unnamed temporary file (16 bytes), its prediction, score and weight to a
-//!    second one (24 bytes), its id and kept cells to a third, and its id to an 8-byte hash
+//! 1. the CSV, once, with every check of the in-memory reader: each unit's prediction,
+//!    score and weight go to an unnamed temporary file (24 bytes, the side file, which the
+//!    selection's passes read), its id and kept cells to a second, and its id to an 8-byte hash
 //!    (repeated ids are then located by one more read); each score's bucket goes into the
 //!    selection's histogram, so the selection needs no pass of its own for it;
-//! 2. the selection's own passes ([`crate::selection::streaming`]) over the binary file:
+//! 2. the selection's own passes ([`crate::selection::streaming`]) over the side file:
 //!    the decide pass hands over each unit's p-value, `K_j` and first step, written to a
-//!    fourth file (16 bytes per unit) and collected as `(p, j)` pairs for the q-values;
+//!    third file (16 bytes per unit) and collected as `(p, j)` pairs for the q-values;
 //!    the units that needed their exact rank are settled in place after the rank rounds;
 //! 3. no pass: the q-values (the pairs sorted), the first-step counts (the draw's
 //!    consequences) and the selected units' predictions (the shortlist's order);
@@ -25,6 +25,7 @@
 //! files are byte-identical (tests/cli_streamed_select.rs).
 
 use rayon::prelude::*;
+use std::cell::RefCell;
 use std::collections::HashSet;
 use std::fs::File;
 use std::hash::BuildHasherDefault;
@@ -53,7 +54,7 @@ use crate::selection::pruning::Pruning;
 use crate::selection::resolution;
 use crate::selection::streaming::{
     run_streaming_with_histogram, ChunkVisitor, PoolBuckets, PoolHistogram, PoolSource,
-    SpillWriter, SpilledPool, StreamingError, StreamingOptions,
+    StreamingError, StreamingOptions, CHUNK,
 };
 use crate::shift::weighting::WeightSource;
 
@@ -185,25 +186,47 @@ fn streaming_failure(e: StreamingError) -> Failure {
     }
 }
 
-/// A spilled binary pool read pass by pass, with progress on the terminal.
-struct Progressing<'s> {
-    pool: SpilledPool,
+/// The side file of read 1 read as the selection's pool (the score and weight of each
+/// record), pass by pass, with progress on the terminal. The records of the chunk being
+/// visited stay in `current`, where the decide pass's visitor finds each unit's prediction.
+struct SidePool<'s> {
+    file: &'s File,
+    units: u64,
+    has_weight: bool,
+    current: &'s RefCell<Vec<u8>>,
     status: &'s StepStatus,
     pass: usize,
-    m: u64,
 }
 
-impl PoolSource for Progressing<'_> {
+impl PoolSource for SidePool<'_> {
     fn pass(&mut self, visit: &mut ChunkVisitor<'_>) -> Result<(), StreamingError> {
+        use std::os::unix::fs::FileExt;
         self.pass += 1;
-        let (status, pass, m) = (self.status, self.pass, self.m.max(1));
-        let mut seen = 0u64;
-        let label = format!("selection, pass {pass} over the scores");
-        self.pool.pass(&mut |scores, weights| {
-            visit(scores, weights);
-            seen += scores.len() as u64;
-            status.progress(&label, seen as f64 / m as f64);
-        })
+        let label = format!("selection, pass {} over the scores", self.pass);
+        let mut scores = Vec::with_capacity(CHUNK);
+        let mut weights = Vec::with_capacity(CHUNK);
+        let mut done = 0u64;
+        while done < self.units {
+            let take = (self.units - done).min(CHUNK as u64) as usize;
+            {
+                let mut records = self.current.borrow_mut();
+                records.resize(take * SIDE_BYTES, 0);
+                self.file
+                    .read_exact_at(&mut records, done * SIDE_BYTES as u64)?;
+                scores.clear();
+                weights.clear();
+                for record in records.chunks_exact(SIDE_BYTES) {
+                    let [_, score, weight] = side_numbers(record);
+                    scores.push(score);
+                    weights.push(weight);
+                }
+            }
+            visit(&scores, self.has_weight.then_some(&weights[..]));
+            done += take as u64;
+            self.status
+                .progress(&label, done as f64 / self.units.max(1) as f64);
+        }
+        Ok(())
     }
 }
 
@@ -307,8 +330,6 @@ pub(crate) fn run(
     // Pass 1: the CSV.
     let chunks = open_pool()?;
     let kept_width = chunks.kept_names().len();
-    let mut spill = SpillWriter::new(Some(&temp_dir), chunks.has_weight())
-        .map_err(internal("cannot create a temporary file"))?;
     let side_file =
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
     let mut side = BufWriter::with_capacity(1 << 20, side_file);
@@ -361,11 +382,11 @@ pub(crate) fn run(
             if chunk.too_long {
                 return Err(write_error(io::Error::other("a cell of 4 GiB or more")));
             }
-            let weights = has_weight.then_some(&chunk.weights[..]);
-            spill
-                .push_all(&chunk.scores, weights)
-                .map_err(&write_error)?;
-            histogram.add(&chunk.scores, weights, &chunk.buckets);
+            histogram.add(
+                &chunk.scores,
+                has_weight.then_some(&chunk.weights[..]),
+                &chunk.buckets,
+            );
             side.write_all(&chunk.side).map_err(&write_error)?;
             text.write_all(&chunk.text).map_err(&write_error)?;
             hashes.extend_from_slice(&chunk.hashes);
@@ -409,10 +430,7 @@ pub(crate) fn run(
             config.pool_read.weight_column.as_deref().unwrap_or("w")
         )));
     }
-    let pool_spill = spill
-        .finish()
-        .map_err(internal("cannot write a temporary file"))?;
-    let mut side_file = side
+    let side_file = side
         .into_inner()
         .map_err(|e| Failure::Internal(format!("cannot write a temporary file: {e}")))?;
     let mut text_file = text
@@ -436,11 +454,14 @@ pub(crate) fn run(
 
     // Pass 2: the streamed selection.
     let pruning = settings.pruning.unwrap_or(Pruning::Homogeneous);
-    let mut pool = Progressing {
-        pool: pool_spill,
+    let current_records = RefCell::new(Vec::new());
+    let mut pool = SidePool {
+        file: &side_file,
+        units: m as u64,
+        has_weight,
+        current: &current_records,
         status: &status,
         pass: 0,
-        m: m as u64,
     };
     let options = StreamingOptions {
         q,
@@ -453,11 +474,6 @@ pub(crate) fn run(
     // decide pass and read back when writing the outputs: the units whose K_j needs their
     // exact rank are settled in place afterwards, and the selection itself (which needs
     // r*) is decided when the outputs are written.
-    use std::io::Seek;
-    side_file
-        .rewind()
-        .map_err(internal("cannot read a temporary file"))?;
-    let mut side = BufReader::with_capacity(1 << 20, side_file);
     let units_file =
         tempfile::tempfile_in(&temp_dir).map_err(internal("cannot create a temporary file"))?;
     let mut units_out = BufWriter::with_capacity(1 << 20, units_file);
@@ -470,7 +486,6 @@ pub(crate) fn run(
     let at_floor = |score: f64| lowest_labeled.map_or(true, |lowest| score < lowest);
     let mut side_error: Option<io::Error> = None;
     let mut record = [0u8; SIDE_BYTES];
-    let mut side_bytes: Vec<u8> = Vec::new();
     let mut unit_bytes: Vec<u8> = Vec::new();
     let mut selection = run_streaming_with_histogram(
         &calibration,
@@ -481,9 +496,10 @@ pub(crate) fn run(
             if side_error.is_some() {
                 return;
             }
-            side_bytes.resize(units.len() * SIDE_BYTES, 0);
-            if let Err(e) = side.read_exact(&mut side_bytes) {
-                side_error = Some(e);
+            // The records of the chunk the decide pass is visiting (SidePool).
+            let side_bytes = current_records.borrow();
+            if side_bytes.len() != units.len() * SIDE_BYTES {
+                side_error = Some(io::Error::other("the decide pass is out of step"));
                 return;
             }
             unit_bytes.clear();
@@ -517,7 +533,6 @@ pub(crate) fn run(
     }
     let counts = selection.counts.clone();
     let r_star = selection.r_star();
-    let side_file = side.into_inner();
     let units_file = units_out
         .into_inner()
         .map_err(|e| Failure::Internal(format!("cannot write a temporary file: {e}")))?;
@@ -581,6 +596,7 @@ pub(crate) fn run(
         )));
     }
     let (mut side_file, mut units_file) = (side_file, units_file);
+    use std::io::Seek;
     timer.mark("pass 3: the ranked units and the selection");
     bh_adjusted_in_place(&mut q_values, 1.0);
     timer.mark("pass 3: q-values");

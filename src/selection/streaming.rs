@@ -146,25 +146,6 @@ impl SpillWriter {
         Ok(())
     }
 
-    /// Append a run of units: `scores[i]` with `weights[i]` (ignored for a file without
-    /// weights; every weight 1 when `None`).
-    ///
-    /// # Errors
-    /// Writing fails.
-    pub fn push_all(&mut self, scores: &[f64], weights: Option<&[f64]>) -> io::Result<()> {
-        let per_unit = if self.with_weights { 16 } else { 8 };
-        let mut bytes = Vec::with_capacity(scores.len() * per_unit);
-        for (i, &score) in scores.iter().enumerate() {
-            bytes.extend_from_slice(&score.to_le_bytes());
-            if self.with_weights {
-                bytes.extend_from_slice(&weights.map_or(1.0, |w| w[i]).to_le_bytes());
-            }
-        }
-        self.out.write_all(&bytes)?;
-        self.units += scores.len() as u64;
-        Ok(())
-    }
-
     /// Finish writing; the result can be read any number of times.
     ///
     /// # Errors

@@ -775,6 +775,16 @@ impl RankHistogram {
             self.counts[(rank - 1) / self.block] += 1;
         }
     }
+
+    /// [`Self::add`] for a chunk's ranks at once, in increasing order: the counts (8 bytes
+    /// per rank, 80 MB at 10^7 units) are then touched front to back once per chunk instead
+    /// of at random. `ranks` is left sorted.
+    fn add_all(&mut self, ranks: &mut [usize]) {
+        ranks.sort_unstable();
+        for &rank in ranks.iter() {
+            self.add(rank);
+        }
+    }
 }
 
 /// A streamed selection after its passes: counts, and [`Self::for_each_unit`] for the
@@ -976,6 +986,7 @@ fn decide_from_histogram<'c>(
     let mut ties_rng = stream(options.seed, Stream::PValueTies);
     let mut index = 0u64;
     let mut early: Vec<EarlyUnit> = Vec::with_capacity(CHUNK);
+    let mut chunk_ranks: Vec<usize> = Vec::with_capacity(CHUNK);
     let conservative = options.bh_pvalues == PValueKind::Conservative;
     pool.pass(&mut |scores, weights| {
         // The per-unit work without sequential state in parallel (decide_chunk), the
@@ -999,7 +1010,9 @@ fn decide_from_histogram<'c>(
                     m,
                 )
             };
-            bh_hist.add(rank);
+            if rank < bh_hist.limit {
+                chunk_ranks.push(rank);
+            }
             unreachable_count += usize::from(d.unreachable);
             floor_count += usize::from(s < lowest);
             let mut unit = EarlyUnit {
@@ -1035,6 +1048,8 @@ fn decide_from_histogram<'c>(
             }
             early.push(unit);
         }
+        bh_hist.add_all(&mut chunk_ranks);
+        chunk_ranks.clear();
         visit(index, &early);
         index += scores.len() as u64;
     })?;

@@ -840,10 +840,18 @@ pub(crate) fn run(
         let mut text = text_summary_of_top(&summary, &top);
         text.push_str(&format!(
             "streamed selection ({why}): the pool was read {} and the selection went over \
-             its scores {}; {} units needed their exact rank{}\n",
+             its scores {}; {} needed {} exact rank{}\n",
             times(pool_reads),
             times(counts.passes),
-            counts.ranked_units,
+            match counts.ranked_units {
+                1 => "1 unit".to_string(),
+                k => format!("{k} units"),
+            },
+            if counts.ranked_units == 1 {
+                "its"
+            } else {
+                "their"
+            },
             if counts.spilled {
                 ", held in a temporary file"
             } else {

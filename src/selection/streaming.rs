@@ -846,6 +846,7 @@ pub struct PoolBuckets<'c> {
 }
 
 impl<'c> PoolBuckets<'c> {
+    /// The buckets of `calibration`'s sorted labeled scores.
     pub fn new(calibration: &'c CalibrationSet) -> Self {
         let labeled = calibration.sorted_scores();
         PoolBuckets {
@@ -874,6 +875,7 @@ pub struct PoolHistogram {
 }
 
 impl PoolHistogram {
+    /// An empty histogram over `calibration`'s `n + 1` buckets.
     pub fn new(calibration: &CalibrationSet) -> Self {
         let n = calibration.sorted_scores().len();
         PoolHistogram {
@@ -887,6 +889,9 @@ impl PoolHistogram {
     /// Add the next units in input order: scores, weights (`None` = every weight 1) and
     /// buckets ([`PoolBuckets::of`] of the scores). A NaN score or a weight that is not
     /// finite and positive is kept as the error the selection then returns.
+    ///
+    /// # Panics
+    /// When `buckets` and `scores` differ in length.
     pub fn add(&mut self, scores: &[f64], weights: Option<&[f64]>, buckets: &[u32]) {
         if self.failure.is_some() {
             return;
@@ -918,7 +923,8 @@ impl PoolHistogram {
 }
 
 /// [`run_streaming_visiting`] with the first pass done by the caller: `histogram` holds
-/// every unit of `pool`, added in input order.
+/// every unit of `pool`, added in input order. `counts.passes` then counts this
+/// function's passes only, not the caller's read.
 ///
 /// # Errors
 /// As [`run_streaming`]; also the pool changing from the one the histogram saw.

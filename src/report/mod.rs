@@ -6,6 +6,7 @@
 //! - [`html`]: the self-contained `report.html` (inline CSS and SVG, no scripts);
 //! - [`plots`]: the SVG plots of the shift diagnostics.
 
+pub mod float_text;
 pub mod html;
 pub mod plots;
 pub mod summary;

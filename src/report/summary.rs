@@ -9,6 +9,7 @@ use std::fmt::Write as _;
 
 use serde::Serialize;
 
+use super::float_text::{ColumnHint, FloatText};
 use crate::conformal::score::Direction;
 use crate::io::read::KeptColumns;
 use crate::io::{ReadOptions, UnitTable};
@@ -764,7 +765,10 @@ impl FieldSink for CsvLine<'_> {
 
 /// Number buffers reused for writing output rows.
 pub struct RowCells {
-    floats: ryu::Buffer,
+    floats: FloatText,
+    /// candidates.csv's score, weight, selection_probability and prediction, then
+    /// shortlist.csv's prediction, selection_probability and weight.
+    columns: [ColumnHint; 7],
     integers: itoa::Buffer,
 }
 
@@ -777,7 +781,8 @@ impl Default for RowCells {
 impl RowCells {
     pub fn new() -> Self {
         RowCells {
-            floats: ryu::Buffer::new(),
+            floats: FloatText::new(),
+            columns: [ColumnHint::default(); 7],
             integers: itoa::Buffer::new(),
         }
     }
@@ -802,11 +807,16 @@ impl RowCells {
         row: &CandidateRow<'_, K>,
         sink: &mut impl FieldSink,
     ) {
-        let RowCells { floats, integers } = self;
+        let RowCells {
+            floats,
+            columns,
+            integers,
+        } = self;
         sink.text(row.id.as_bytes());
-        for value in [row.score, row.weight, row.p_value] {
-            sink.plain(floats.format(value).as_bytes());
-        }
+        // Scores, weights and predictions are often short decimals; p- and q-values rarely.
+        sink.plain(floats.format_column(row.score, &mut columns[0]));
+        sink.plain(floats.format_column(row.weight, &mut columns[1]));
+        sink.plain(floats.format_long(row.p_value));
         sink.plain(bool_text(row.selected));
         match row.conditional {
             Some((first, count)) => {
@@ -819,14 +829,14 @@ impl RowCells {
             }
         }
         sink.text(row.unreachable_reason.unwrap_or("").as_bytes());
-        sink.plain(floats.format(row.selection_probability).as_bytes());
-        sink.plain(floats.format(row.q_value).as_bytes());
+        sink.plain(floats.format_column(row.selection_probability, &mut columns[2]));
+        sink.plain(floats.format_long(row.q_value));
         match row.q_value_by {
-            Some(by) => sink.plain(floats.format(by).as_bytes()),
+            Some(by) => sink.plain(floats.format_long(by)),
             None => sink.plain(b""),
         }
         sink.plain(bool_text(row.unreliable));
-        sink.plain(floats.format(row.prediction).as_bytes());
+        sink.plain(floats.format_column(row.prediction, &mut columns[3]));
         match row.shortlist_rank {
             Some(rank) => sink.plain(integers.format(rank).as_bytes()),
             None => sink.plain(b""),
@@ -842,18 +852,18 @@ impl RowCells {
         row: &ShortlistRow<'_, K>,
         sink: &mut impl FieldSink,
     ) {
-        let RowCells { floats, integers } = self;
+        let RowCells {
+            floats,
+            columns,
+            integers,
+        } = self;
         sink.plain(integers.format(row.rank).as_bytes());
         sink.text(row.id.as_bytes());
-        for value in [
-            row.prediction,
-            row.p_value,
-            row.q_value,
-            row.selection_probability,
-            row.weight,
-        ] {
-            sink.plain(floats.format(value).as_bytes());
-        }
+        sink.plain(floats.format_column(row.prediction, &mut columns[4]));
+        sink.plain(floats.format_long(row.p_value));
+        sink.plain(floats.format_long(row.q_value));
+        sink.plain(floats.format_column(row.selection_probability, &mut columns[5]));
+        sink.plain(floats.format_column(row.weight, &mut columns[6]));
         for cell in row.kept {
             sink.text(cell.as_ref());
         }

@@ -45,7 +45,7 @@ use crate::report::summary::{
     RowCells, ShortlistRow, TOP_SHOWN,
 };
 use crate::report::{select_summary, RunInputs};
-use crate::selection::bh::{bh_adjusted_in_place, within_level};
+use crate::selection::bh::{bh_adjusted_pairs, within_level};
 use crate::selection::draw::{fixed_selection, homogeneous_draw, DrawSummary};
 use crate::selection::pipeline::{
     kish_ess, selection_warnings, Procedure, SelectError, SelectionOutcome,
@@ -598,7 +598,7 @@ pub(crate) fn run(
     let (mut side_file, mut units_file) = (side_file, units_file);
     use std::io::Seek;
     timer.mark("pass 3: the ranked units and the selection");
-    bh_adjusted_in_place(&mut q_values, 1.0);
+    let q_values = bh_adjusted_pairs(q_values, 1.0);
     timer.mark("pass 3: q-values");
     // The shortlist's order: best predicted first, ties in input order (`shortlist_order`).
     match config.direction {
@@ -1230,7 +1230,7 @@ fn format_rows(
     shape: &RowShape,
     block: &Block,
     rows: std::ops::Range<usize>,
-    q_values: &[(f64, usize)],
+    q_values: &[f64],
     probability_of: impl Fn(bool, bool, usize) -> f64,
 ) -> Result<FormattedRows, Failure> {
     let (total, q) = (shape.total, shape.q);
@@ -1243,7 +1243,7 @@ fn format_rows(
         let [prediction, score, w] = side_numbers(&block.side[r * SIDE_BYTES..]);
         let (p, first_step, k) = UnitRecord::read(&block.units[r * UNIT_BYTES..]);
         let selected = block.ranks[r].is_some();
-        let q_value = q_values[block.start + r].0;
+        let q_value = q_values[block.start + r];
         let reason = (!within_level(w, total + w, q)).then(|| unreachable_text(w, total, q));
         let probability = probability_of(first_step, selected, k);
         let id = std::str::from_utf8(block.id(r)).map_err(|_| {

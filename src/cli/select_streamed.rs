@@ -26,7 +26,7 @@
 
 use rayon::prelude::*;
 use std::cell::RefCell;
-use std::collections::HashSet;
+use std::collections::{HashSet, VecDeque};
 use std::fs::File;
 use std::hash::BuildHasherDefault;
 use std::io::{self, BufReader, BufWriter, Read, Write};
@@ -187,15 +187,24 @@ fn streaming_failure(e: StreamingError) -> Failure {
 }
 
 /// The side file of read 1 read as the selection's pool (the score and weight of each
-/// record), pass by pass, with progress on the terminal. The records of the chunk being
-/// visited stay in `current`, where the decide pass's visitor finds each unit's prediction.
+/// record), pass by pass, with progress on the terminal. The records of the last two
+/// chunks handed out stay in `recent` (with each chunk's first unit), where the decide
+/// pass's visitor, which comes one chunk late, finds each unit's prediction.
 struct SidePool<'s> {
     file: &'s File,
     units: u64,
     has_weight: bool,
-    current: &'s RefCell<Vec<u8>>,
+    recent: &'s RefCell<VecDeque<(u64, Vec<u8>)>>,
     status: &'s StepStatus,
     pass: usize,
+}
+
+/// The records [`SidePool`] kept for the chunk starting at unit `from`.
+fn recent_records(recent: &VecDeque<(u64, Vec<u8>)>, from: u64) -> Option<&[u8]> {
+    recent
+        .iter()
+        .find(|(start, _)| *start == from)
+        .map(|(_, records)| records.as_slice())
 }
 
 impl PoolSource for SidePool<'_> {
@@ -209,7 +218,11 @@ impl PoolSource for SidePool<'_> {
         while done < self.units {
             let take = (self.units - done).min(CHUNK as u64) as usize;
             {
-                let mut records = self.current.borrow_mut();
+                let mut recent = self.recent.borrow_mut();
+                let mut records = match recent.len() {
+                    0 | 1 => Vec::new(),
+                    _ => recent.pop_front().map(|(_, r)| r).unwrap_or_default(),
+                };
                 records.resize(take * SIDE_BYTES, 0);
                 self.file
                     .read_exact_at(&mut records, done * SIDE_BYTES as u64)?;
@@ -220,6 +233,7 @@ impl PoolSource for SidePool<'_> {
                     scores.push(score);
                     weights.push(weight);
                 }
+                recent.push_back((done, records));
             }
             visit(&scores, self.has_weight.then_some(&weights[..]));
             done += take as u64;
@@ -454,12 +468,12 @@ pub(crate) fn run(
 
     // Pass 2: the streamed selection.
     let pruning = settings.pruning.unwrap_or(Pruning::Homogeneous);
-    let current_records = RefCell::new(Vec::new());
+    let recent_chunks = RefCell::new(VecDeque::new());
     let mut pool = SidePool {
         file: &side_file,
         units: m as u64,
         has_weight,
-        current: &current_records,
+        recent: &recent_chunks,
         status: &status,
         pass: 0,
     };
@@ -497,7 +511,8 @@ pub(crate) fn run(
                 return;
             }
             // The records of the chunk the decide pass is visiting (SidePool).
-            let side_bytes = current_records.borrow();
+            let recent = recent_chunks.borrow();
+            let side_bytes = recent_records(&recent, from).unwrap_or_default();
             if side_bytes.len() != units.len() * SIDE_BYTES {
                 side_error = Some(io::Error::other("the decide pass is out of step"));
                 return;

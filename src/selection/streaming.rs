@@ -436,6 +436,10 @@ struct Summary<'c> {
     tau: Vec<f64>,
     high_stairs: Vec<usize>,
     high_values: Vec<f64>,
+    /// `#{t in high_values : t < w}` by a grid, as `index` does for the labeled scores
+    /// (the search of every unit's weight among the stairs was the decide pass's largest
+    /// cost).
+    high_index: BucketIndex,
     /// Low-region filter of the candidate `k = E + 1` (`w >= sigma`), widened.
     sigma: Vec<f64>,
     low_tree: MinTree,
@@ -493,7 +497,9 @@ impl<'c> Summary<'c> {
             })
             .collect();
         let high_stairs = right_to_left_maxima(&tau);
-        let high_values = high_stairs.iter().map(|&i| tau[i]).collect();
+        let high_values: Vec<f64> = high_stairs.iter().map(|&i| tau[i]).collect();
+        debug_assert!(high_values.windows(2).all(|p| p[0] <= p[1]));
+        let high_index = BucketIndex::new(&high_values);
         let low_tree = MinTree::new(&sigma);
         Summary {
             index: BucketIndex::new(calibration.sorted_scores()),
@@ -509,6 +515,7 @@ impl<'c> Summary<'c> {
             tau,
             high_stairs,
             high_values,
+            high_index,
             sigma,
             low_tree,
         }
@@ -551,7 +558,7 @@ impl<'c> Summary<'c> {
             own + 1
         };
         if lo < self.ends.len() {
-            let step = self.high_values.partition_point(|&t| t < w);
+            let step = self.high_index.below(&self.high_values, w);
             if let Some(&e) = self.high_stairs.get(step) {
                 if e >= lo {
                     let found = if self.verify_high(w, e) {
@@ -813,7 +820,10 @@ pub fn run_streaming<'c>(
 }
 
 /// [`run_streaming`], handing every unit's [`EarlyUnit`] to `visit` in input order during
-/// the decide pass: `visit(j, units)` with `units[i]` the results of unit `j + i`.
+/// the decide pass: `visit(j, units)` with `units[i]` the results of unit `j + i`. A
+/// chunk's `visit` comes one chunk late: after the pool has handed out the next chunk (the
+/// last chunk's, after the pass), so a visitor reading the pool's own records must keep
+/// the last two chunks.
 ///
 /// # Errors
 /// As [`run_streaming`].
@@ -990,17 +1000,20 @@ fn decide_from_histogram<'c>(
     let mut queue: Vec<Queued> = Vec::new();
     let mut unqueued_from: Option<u64> = None; // first queued-but-not-held unit
     let mut ties_rng = stream(options.seed, Stream::PValueTies);
-    let mut index = 0u64;
     let mut early: Vec<EarlyUnit> = Vec::with_capacity(CHUNK);
     let mut chunk_ranks: Vec<usize> = Vec::with_capacity(CHUNK);
     let conservative = options.bh_pvalues == PValueKind::Conservative;
-    pool.pass(&mut |scores, weights| {
-        // The per-unit work without sequential state in parallel (decide_chunk), the
-        // counts, draws and queue in input order here.
-        let decided = decide_chunk(&summary, scores, weights, conservative);
+    // The bookkeeping of one decided chunk, in input order: counts, draws, queue, visit.
+    let mut book = |chunk: DecidedChunk| {
+        let DecidedChunk {
+            index,
+            scores,
+            weights,
+            decided,
+        } = chunk;
         early.clear();
         for (offset, (&s, d)) in scores.iter().zip(&decided).enumerate() {
-            let w = weights.map_or(1.0, |w| w[offset]);
+            let w = weights.as_ref().map_or(1.0, |w| w[offset]);
             let j = index + offset as u64;
             let xi_j = match options.pruning {
                 Pruning::Heterogeneous => pruning_rng.gen::<f64>(),
@@ -1057,8 +1070,33 @@ fn decide_from_histogram<'c>(
         bh_hist.add_all(&mut chunk_ranks);
         chunk_ranks.clear();
         visit(index, &early);
+    };
+    // Each chunk's decisions (decide_chunk, in parallel) are made on a helper thread while
+    // this thread books the chunk before it, so the bookkeeping does not leave the cores
+    // idle; `visit` for a chunk therefore comes after the pool has handed out the next.
+    let mut index = 0u64;
+    let mut pending: Option<DecidedChunk> = None;
+    pool.pass(&mut |scores, weights| {
+        let decided = std::thread::scope(|scope| {
+            let deciding = scope.spawn(|| decide_chunk(&summary, scores, weights, conservative));
+            if let Some(chunk) = pending.take() {
+                book(chunk);
+            }
+            deciding
+                .join()
+                .unwrap_or_else(|panic| std::panic::resume_unwind(panic))
+        });
+        pending = Some(DecidedChunk {
+            index,
+            scores: scores.to_vec(),
+            weights: weights.map(<[f64]>::to_vec),
+            decided,
+        });
         index += scores.len() as u64;
     })?;
+    if let Some(chunk) = pending.take() {
+        book(chunk);
+    }
     check_same(m, index)?;
 
     // Rank rounds: rank the queue, then collect the next part of the queue if any.
@@ -1149,6 +1187,15 @@ struct Decided {
     conservative_rank: usize,
     /// The p-value floor `w / (W + w)` is above `q`.
     unreachable: bool,
+}
+
+/// A chunk of the decide pass with its units' decisions, waiting for its bookkeeping.
+struct DecidedChunk {
+    /// Input index of the chunk's first unit.
+    index: u64,
+    scores: Vec<f64>,
+    weights: Option<Vec<f64>>,
+    decided: Vec<Decided>,
 }
 
 /// Decide a chunk's units; `conservative_ranks` asks for the conservative p-values' first

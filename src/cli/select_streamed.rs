@@ -969,7 +969,11 @@ impl Prepare<'_> {
             side.extend_from_slice(&chunk.prediction()[r].to_le_bytes());
             side.extend_from_slice(&scores[r].to_le_bytes());
             side.extend_from_slice(&w.to_le_bytes());
-            let cells = std::iter::once(id).chain(chunk.kept_row(r, self.kept_width));
+            let kept = chunk
+                .kept_row(r, self.kept_width)
+                .iter()
+                .map(String::as_str);
+            let cells = std::iter::once(id).chain(kept);
             for cell in cells {
                 if push_cell(&mut text, cell.as_bytes()).is_err() {
                     too_long = true;
@@ -982,8 +986,8 @@ impl Prepare<'_> {
             if weights.is_some() && Some(w) != reference {
                 weights_vary = true;
             }
-            if self.labeled_hashes.contains(&hash) && self.labeled_ids.contains(id.as_str()) {
-                shared.push(id.clone());
+            if self.labeled_hashes.contains(&hash) && self.labeled_ids.contains(id) {
+                shared.push(id.to_owned());
             }
         }
         PreparedChunk {

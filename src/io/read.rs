@@ -431,12 +431,12 @@ fn weight_cell(
 /// line break inside an id is almost always a damaged file, and would garble every output
 /// that lists ids).
 #[inline]
-fn id_cell(
+fn id_cell<'r>(
     path: &Path,
     line: u64,
-    record: &csv::ByteRecord,
+    record: &'r csv::ByteRecord,
     column: &Column,
-) -> Result<String, InputError> {
+) -> Result<&'r str, InputError> {
     let cell = record.get(column.index).unwrap_or_default().trim_ascii();
     match std::str::from_utf8(cell) {
         Ok(id) if !id.is_empty() => {
@@ -449,7 +449,7 @@ fn id_cell(
                     code: bad as u32,
                 });
             }
-            Ok(id.to_owned())
+            Ok(id)
         }
         Ok(_) => Err(InputError::EmptyId {
             path: path.to_path_buf(),
@@ -655,7 +655,7 @@ fn read_header<'a>(
 
 /// The chosen columns' values, gathered row by row.
 struct Rows {
-    ids: Vec<String>,
+    ids: IdColumn,
     prediction: Vec<f64>,
     /// NaN for the untested rows of a one-table read.
     outcome: Vec<f64>,
@@ -669,6 +669,55 @@ struct Rows {
     dropped_missing_outcome: usize,
     censored_outcomes: usize,
     lines: RowLines,
+}
+
+/// The ids of a table's rows in one text buffer (no allocation per id, which the streamed
+/// read of 10^7 rows felt); the in-memory reader turns them into strings at the end.
+#[derive(Default)]
+pub struct IdColumn {
+    text: String,
+    /// `ends[r]`: where row r's id ends in `text`.
+    ends: Vec<usize>,
+}
+
+impl IdColumn {
+    fn push(&mut self, id: &str) {
+        self.text.push_str(id);
+        self.ends.push(self.text.len());
+    }
+
+    fn reserve(&mut self, rows: usize) {
+        self.ends.reserve(rows);
+        self.text.reserve(rows.saturating_mul(8));
+    }
+
+    /// Rows held.
+    pub fn len(&self) -> usize {
+        self.ends.len()
+    }
+
+    /// True when no row is held.
+    pub fn is_empty(&self) -> bool {
+        self.ends.is_empty()
+    }
+
+    /// Row `r`'s id.
+    ///
+    /// # Panics
+    /// If `r >= self.len()`.
+    pub fn get(&self, r: usize) -> &str {
+        let start = if r == 0 { 0 } else { self.ends[r - 1] };
+        &self.text[start..self.ends[r]]
+    }
+
+    /// The ids in row order.
+    pub fn iter(&self) -> impl Iterator<Item = &str> + '_ {
+        (0..self.len()).map(|r| self.get(r))
+    }
+
+    fn into_strings(self) -> Vec<String> {
+        self.iter().map(str::to_owned).collect()
+    }
 }
 
 /// How a row's outcome cell is read: the assay conventions and, in a one-table read, the
@@ -712,7 +761,7 @@ const MAX_RESERVED_ROWS: u64 = 1 << 22;
 impl Rows {
     fn new(feature_count: usize) -> Self {
         Rows {
-            ids: Vec::new(),
+            ids: IdColumn::default(),
             prediction: Vec::new(),
             outcome: Vec::new(),
             threshold: Vec::new(),
@@ -975,7 +1024,7 @@ fn finish_table(
     rows: Rows,
 ) -> Result<(UnitTable, Option<UnitTable>), InputError> {
     let Rows {
-        mut ids,
+        ids,
         mut prediction,
         outcome,
         threshold,
@@ -987,6 +1036,7 @@ fn finish_table(
         censored_outcomes,
         lines,
     } = rows;
+    let mut ids = ids.into_strings();
     if ids.is_empty() {
         return Err(InputError::NoRows {
             path: path.to_path_buf(),

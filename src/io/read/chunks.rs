@@ -20,8 +20,8 @@ use std::path::{Path, PathBuf};
 use rayon::prelude::*;
 
 use super::{
-    display_path, editor_line, id_hash as hash_of, open_table, read_header, ChosenColumns, Role,
-    RowRules, Rows, Source,
+    display_path, editor_line, id_hash as hash_of, open_table, read_header, ChosenColumns,
+    IdColumn, Role, RowRules, Rows, Source,
 };
 use crate::io::errors::{shown, InputError};
 use crate::io::ReadOptions;
@@ -56,7 +56,7 @@ impl PoolChunk {
         self.rows.ids.is_empty()
     }
 
-    pub fn ids(&self) -> &[String] {
+    pub fn ids(&self) -> &IdColumn {
         &self.rows.ids
     }
 
@@ -235,7 +235,7 @@ impl PoolChunks {
                         id: shown(id.as_bytes()),
                     }));
                 }
-                first_line.insert(id.clone(), line);
+                first_line.insert(id.to_owned(), line);
             }
         }
         Ok(None)
@@ -504,7 +504,7 @@ mod tests {
             .flat_map(|c| {
                 (0..c.len()).map(move |r| {
                     (
-                        c.ids()[r].clone(),
+                        c.ids().get(r).to_string(),
                         c.prediction()[r],
                         c.weight(true).unwrap()[r],
                         c.kept_row(r, 1).join("|"),

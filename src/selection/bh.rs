@@ -266,6 +266,7 @@ mod tests {
     /// q-values are bit for bit those of the plain loop over `ascending_order`.
     #[test]
     fn bh_adjusted_equals_the_stable_index_order_walk() {
+        use rand::seq::SliceRandom;
         use rand::{Rng, SeedableRng};
         let mut rng = rand_chacha::ChaCha8Rng::seed_from_u64(4);
         for case in 0..200 {
@@ -292,6 +293,18 @@ mod tests {
                 got.iter().map(|x| x.to_bits()).collect::<Vec<_>>(),
                 expected.iter().map(|x| x.to_bits()).collect::<Vec<_>>(),
                 "case {case}"
+            );
+            // bh_adjusted_pairs takes the pairs in any order.
+            let mut pairs: Vec<(f64, usize)> = p.iter().copied().zip(0..m).collect();
+            pairs.shuffle(&mut rng);
+            let from_shuffled = bh_adjusted_pairs(pairs, factor);
+            assert_eq!(
+                from_shuffled
+                    .iter()
+                    .map(|x| x.to_bits())
+                    .collect::<Vec<_>>(),
+                expected.iter().map(|x| x.to_bits()).collect::<Vec<_>>(),
+                "case {case}, shuffled pairs"
             );
         }
     }

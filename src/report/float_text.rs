@@ -47,7 +47,7 @@ pub struct ColumnHint {
     misses: u8,
 }
 
-/// Reusable buffers for [`FloatText::format`].
+/// Reusable buffers for [`FloatText::format_column`] and [`FloatText::format_long`].
 pub struct FloatText {
     ryu: ryu::Buffer,
     short: [u8; 48],
@@ -67,21 +67,12 @@ impl FloatText {
         }
     }
 
-    /// `v` as `ryu::Buffer::format` writes it (`NaN`, `inf` and `-inf` included), trying
-    /// the short-decimal path first. Use it for values that are often short decimals; for
-    /// values that rarely are (a ratio such as a p-value), [`FloatText::format_long`]
-    /// skips the attempt.
-    pub fn format(&mut self, v: f64) -> &[u8] {
-        match short_decimal(v, &mut self.short) {
-            Some(len) => &self.short[..len],
-            None => self.ryu.format(v).as_bytes(),
-        }
-    }
-
-    /// [`FloatText::format`] for one column's values in turn: after 8 values in a row that
-    /// were not short decimals, the column goes straight to ryu, trying the quick path again
-    /// every 256 values (full-precision columns then pay almost nothing for the attempt).
-    /// The bytes are the same either way.
+    /// `v` as `ryu::Buffer::format` writes it (`NaN`, `inf` and `-inf` included), for one
+    /// column's values in turn, trying the short-decimal path first. After 8 values in a row
+    /// that were not short decimals, the column goes straight to ryu, trying the quick path
+    /// again every 256 values (full-precision columns then pay almost nothing for the
+    /// attempt). The bytes are the same either way. For values that are rarely short
+    /// decimals (a ratio such as a p-value), [`FloatText::format_long`] skips the attempt.
     pub fn format_column(&mut self, v: f64, column: &mut ColumnHint) -> &[u8] {
         let try_short = column.misses < 8 || column.misses == u8::MAX;
         if try_short {
@@ -173,7 +164,7 @@ mod tests {
         let mut text = FloatText::new();
         let expected = ryu::Buffer::new().format(v).to_string();
         assert_eq!(
-            std::str::from_utf8(text.format(v)).unwrap(),
+            std::str::from_utf8(text.format_column(v, &mut ColumnHint::default())).unwrap(),
             expected,
             "value bits {:#x}",
             v.to_bits()
